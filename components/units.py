@@ -8,7 +8,7 @@ weights from :mod:`periodictable`.
 from __future__ import annotations
 
 import re
-from functools import lru_cache
+from functools import cache
 
 import periodictable
 
@@ -73,7 +73,7 @@ def to_mass_fraction_factor(unit: str) -> float:
 _SPECIES = re.compile(r"^([A-Z][a-z]?)(\d*)(?:O(\d*))?$")
 
 
-@lru_cache(maxsize=None)
+@cache
 def parse_species(name: str) -> tuple[str, int, int] | None:
     """Split an element or oxide name into (element, cations, oxygens).
 
@@ -114,7 +114,7 @@ def _is_element(symbol: str) -> bool:
     return 0 < el.number <= 94
 
 
-@lru_cache(maxsize=None)
+@cache
 def atomic_weight(symbol: str) -> float:
     """Standard atomic weight in g/mol from :mod:`periodictable`.
 
@@ -126,7 +126,7 @@ def atomic_weight(symbol: str) -> float:
     return float(periodictable.elements.symbol(symbol).mass)
 
 
-@lru_cache(maxsize=None)
+@cache
 def oxide_to_element_factor(element: str, n_cat: int, n_ox: int) -> float:
     """Mass of element per unit mass of the oxide ``element_{n_cat} O_{n_ox}``.
 

@@ -1,0 +1,307 @@
+"""The reference library: building blocks, element properties, solar and isotope tables.
+
+Every table lives as plain CSV in ``components/data`` (formats in ``data/FORMAT.md``);
+each value carries its unit, uncertainty and source key, and a source key must exist in
+the sources table for the table to load.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from functools import cache, lru_cache
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import periodictable
+
+from ._tables import check_composition_frame, read_csv_checked, read_header
+from .exceptions import InputError
+
+__all__ = [
+    "Component",
+    "available",
+    "load",
+    "read_component",
+    "elements",
+    "solar",
+    "solar_tables",
+    "isotopes",
+    "sources",
+    "atomic_weight_series",
+    "DATA_DIR",
+]
+
+DATA_DIR = Path(__file__).resolve().parent / "data"
+
+COMPONENT_KINDS = ("chondrite", "silicate_reference", "user")
+
+
+@dataclass(frozen=True)
+class Component:
+    """A composition with its provenance.
+
+    Attributes
+    ----------
+    name : str
+        Library name (``CI``, ``EH``, ``BSE_MS95``...) or the user's name.
+    kind : str
+        ``chondrite``, ``silicate_reference`` or ``user``.
+    description : str
+        One line saying what it is.
+    composition : pandas.Series
+        Mass fractions (kg/kg) indexed by element symbol.
+    uncertainty : pandas.Series
+        1-sigma mass fractions, NaN where the source gives none.
+    sources : pandas.Series
+        Source key per element (see :func:`sources`).
+    recalled : pandas.Series
+        True where the value was typed from memory of the publication.
+    path : str
+        File the component was read from.
+    """
+
+    name: str
+    kind: str
+    description: str
+    composition: pd.Series
+    uncertainty: pd.Series
+    sources: pd.Series
+    recalled: pd.Series
+    path: str = ""
+    source_keys: tuple[str, ...] = field(default=())
+
+    def ratio_to(self, reference: str) -> pd.Series:
+        """Mass ratios C_i / C_ref of every element.
+
+        Examples
+        --------
+        >>> ci = load("CI")
+        >>> float(ci.ratio_to("Mg")["Mg"])
+        1.0
+        """
+        if reference not in self.composition.index:
+            raise InputError(f"component {self.name} has no {reference}; choose another "
+                             "reference element", field="reference_element", value=reference)
+        return self.composition / self.composition[reference]
+
+    def to_dataframe(self) -> pd.DataFrame:
+        """Tidy view: one row per element with value, uncertainty, source, recalled."""
+        return pd.DataFrame({
+            "mass_fraction": self.composition,
+            "uncertainty": self.uncertainty,
+            "source": self.sources,
+            "recalled": self.recalled,
+        })
+
+
+@lru_cache(maxsize=1)
+def sources() -> pd.DataFrame:
+    """All citations, indexed by source key (columns ``citation``, ``doi``)."""
+    frames = []
+    for path in sorted((DATA_DIR / "sources").glob("*.csv")):
+        df = read_csv_checked(path, ["key", "citation"], what="sources")
+        df["file"] = path.name
+        frames.append(df)
+    if not frames:
+        return pd.DataFrame(columns=["citation", "doi", "file"]).rename_axis("key")
+    table = pd.concat(frames, ignore_index=True)
+    dup = table["key"][table["key"].duplicated()]
+    if len(dup):
+        raise InputError(f"source key defined twice: {sorted(set(dup))}",
+                         file=str(DATA_DIR / "sources"), field="key")
+    if "doi" not in table.columns:
+        table["doi"] = ""
+    return table.set_index("key")[["citation", "doi", "file"]]
+
+
+def _check_sources(keys: pd.Series, file: str) -> None:
+    known = sources().index
+    for i, key in enumerate(keys):
+        for k in str(key).split(";"):
+            k = k.strip()
+            if k and k not in known:
+                raise InputError("source key not in the sources table; add it to "
+                                 "components/data/sources/", file=file, row=i + 2,
+                                 field="source", value=k)
+            if not k:
+                raise InputError("every value needs a source key", file=file, row=i + 2,
+                                 field="source")
+
+
+def _component_from_file(path: Path, *, require_sources: bool, name: str | None = None,
+                         kind: str | None = None) -> Component:
+    meta = read_header(path)
+    df = read_csv_checked(path, ["element", "value", "unit"], what="component")
+    file = str(path)
+    parsed = check_composition_frame(df, file=file, allow_oxides=not require_sources,
+                                     default_source=meta.get("source", ""))
+    if require_sources:
+        _check_sources(parsed.sources, file)
+    kind = kind or meta.get("kind", "user")
+    if kind not in COMPONENT_KINDS:
+        raise InputError(f"unknown component kind; use one of {list(COMPONENT_KINDS)}",
+                         file=file, field="kind", value=kind)
+    keys = tuple(sorted({k.strip() for s in parsed.sources for k in str(s).split(";")
+                         if k.strip()}))
+    return Component(
+        name=name or meta.get("name") or path.stem,
+        kind=kind,
+        description=meta.get("description", ""),
+        composition=parsed.composition,
+        uncertainty=parsed.uncertainty,
+        sources=parsed.sources,
+        recalled=parsed.recalled,
+        path=file,
+        source_keys=keys,
+    )
+
+
+@lru_cache(maxsize=1)
+def _catalogue() -> dict[str, Path]:
+    names: dict[str, Path] = {}
+    for path in sorted((DATA_DIR / "compositions").glob("*.csv")):
+        name = read_header(path).get("name", path.stem)
+        if name in names:
+            raise InputError(f"two library files use the name {name}: {names[name].name}",
+                             file=str(path), field="name", value=name)
+        names[name] = path
+    return names
+
+
+def available(kind: str | None = None) -> list[str]:
+    """Names of the components the library can load.
+
+    Parameters
+    ----------
+    kind : str, optional
+        Restrict to ``chondrite`` or ``silicate_reference``.
+
+    Examples
+    --------
+    >>> "CI" in available()
+    True
+    """
+    cat = _catalogue()
+    if kind is None:
+        return list(cat)
+    return [n for n, p in cat.items() if read_header(p).get("kind") == kind]
+
+
+@cache
+def load(name: str) -> Component:
+    """Load a library component by name (``CI``, ``CV``, ``EH``, ``BSE_MS95``...).
+
+    Raises
+    ------
+    InputError
+        When the name is unknown; the message lists the valid names.
+
+    Examples
+    --------
+    >>> ci = load("CI")
+    >>> 0.09 < float(ci.composition["Mg"]) < 0.10
+    True
+    """
+    cat = _catalogue()
+    if name not in cat:
+        raise InputError(f"unknown component; the library holds {list(cat)} "
+                         "(or give the path of your own component CSV)",
+                         field="component", value=name)
+    return _component_from_file(cat[name], require_sources=True)
+
+
+def read_component(path: str | Path, *, name: str | None = None) -> Component:
+    """Read a user's own component from CSV, through the library's validation.
+
+    The file has columns ``element``, ``value``, ``unit`` (wt%, ppm, ppb; oxides such as
+    ``MgO`` in wt% are converted to the element) and optionally ``uncertainty`` or
+    ``uncertainty_pct`` and ``source``. ``# name:`` and ``# description:`` header lines
+    are read when present.
+    """
+    return _component_from_file(Path(path), require_sources=False, name=name, kind=None)
+
+
+@lru_cache(maxsize=1)
+def elements() -> pd.DataFrame:
+    """Element properties indexed by symbol.
+
+    Columns: ``Z``, ``atomic_weight`` (g/mol, from :mod:`periodictable`),
+    ``tc50_lodders2003`` and ``tc50_wood2019`` (K, 1e-4 bar), ``geochemical_class``,
+    ``cosmochemical_class``, ``oxide``, ``valence``, ``oxide_factor`` (mass of oxide per
+    unit mass of element), ``source``, ``recalled``.
+    """
+    path = DATA_DIR / "elements.csv"
+    cols = ["symbol", "tc50_lodders2003", "tc50_wood2019", "geochemical_class",
+            "cosmochemical_class", "oxide", "valence", "source", "recalled"]
+    df = read_csv_checked(path, cols, what="element properties")
+    df["symbol"] = df["symbol"].str.strip()
+    df = df.set_index("symbol")
+    for col in ("tc50_lodders2003", "tc50_wood2019"):
+        df[col] = pd.to_numeric(df[col].replace("", np.nan), errors="raise").astype(float)
+    df["valence"] = pd.to_numeric(df["valence"].replace("", "0")).astype(int)
+    df["recalled"] = df["recalled"].str.strip().str.lower().isin(["yes", "true", "1"])
+    z, aw, ofac = [], [], []
+    from .units import atomic_weight, parse_species
+
+    for sym, ox in zip(df.index, df["oxide"], strict=True):
+        el = periodictable.elements.symbol(sym)
+        z.append(el.number)
+        aw.append(float(el.mass))
+        sp = parse_species(ox)
+        if sp is None or sp[0] != sym:
+            raise InputError("oxide does not match the element", file=str(path), row=sym,
+                             field="oxide", value=ox)
+        _, n_cat, n_ox = sp
+        ofac.append((n_cat * atomic_weight(sym) + n_ox * atomic_weight("O"))
+                    / (n_cat * atomic_weight(sym)))
+    df.insert(0, "Z", z)
+    df.insert(1, "atomic_weight", aw)
+    df["oxide_factor"] = ofac
+    return df
+
+
+@cache
+def solar(name: str = "asplund2021") -> pd.DataFrame:
+    """Solar photospheric abundances A(X) (dex, A(H) = 12) with 1-sigma.
+
+    Parameters
+    ----------
+    name : str
+        Table name; see :func:`solar_tables`.
+    """
+    names = solar_tables()
+    if name not in names:
+        raise InputError(f"unknown solar table; choose one of {names}", field="solar",
+                         value=name)
+    path = DATA_DIR / "solar" / f"{name}.csv"
+    df = read_csv_checked(path, ["element", "A", "uncertainty", "source"], what="solar")
+    df["element"] = df["element"].str.strip()
+    df = df.set_index("element")
+    df["A"] = pd.to_numeric(df["A"]).astype(float)
+    df["uncertainty"] = pd.to_numeric(df["uncertainty"].replace("", np.nan)).astype(float)
+    return df
+
+
+def solar_tables() -> list[str]:
+    """Names of the solar abundance tables held."""
+    return sorted(p.stem for p in (DATA_DIR / "solar").glob("*.csv"))
+
+
+@lru_cache(maxsize=1)
+def isotopes() -> pd.DataFrame:
+    """Isotope anomalies by body: columns body, quantity, value, uncertainty, unit, source."""
+    path = DATA_DIR / "isotopes.csv"
+    df = read_csv_checked(path, ["body", "quantity", "value", "uncertainty", "unit", "source"],
+                          what="isotope anomalies")
+    for c in ("body", "quantity", "unit", "source"):
+        df[c] = df[c].str.strip()
+    df["value"] = pd.to_numeric(df["value"]).astype(float)
+    df["uncertainty"] = pd.to_numeric(df["uncertainty"].replace("", np.nan)).astype(float)
+    return df
+
+
+def atomic_weight_series(symbols: list[str] | pd.Index) -> pd.Series:
+    """Atomic weights (g/mol) from :mod:`periodictable`, indexed by symbol."""
+    return pd.Series([float(periodictable.elements.symbol(s).mass) for s in symbols],
+                     index=pd.Index(list(symbols), name="element"), name="atomic_weight")

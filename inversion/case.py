@@ -1,0 +1,320 @@
+"""The case file: one TOML file that describes one inversion problem.
+
+:func:`load_case` is the single entry point that reads and checks a case; everything
+downstream trusts the :class:`Case` it returns. Every error names the file and the key.
+"""
+
+from __future__ import annotations
+
+import math
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import pandas as pd
+
+import components
+from components._tables import check_composition_frame, read_csv_checked
+
+from .exceptions import InputError
+from .options import check_option
+from .volatility import FORMS
+
+__all__ = ["Case", "Target", "CoreSettings", "load_case", "read_target", "ISOTOPE_CARRIERS",
+           "CONDENSATION_TABLES"]
+
+#: Isotope anomaly -> element that carries it (MODEL.md section 6).
+ISOTOPE_CARRIERS: dict[str, str] = {"D17O": "O", "e50Ti": "Ti", "e54Cr": "Cr", "e48Ca": "Ca"}
+CONDENSATION_TABLES = {"lodders2003": "tc50_lodders2003", "wood2019": "tc50_wood2019"}
+
+_ALLOWED: dict[str, set[str]] = {
+    "": {"title", "target", "building_blocks", "volatility", "core", "late_accretion",
+         "isotopes", "elements", "priors", "sampler", "fit"},
+    "target": {"table", "reference_element", "planet_mass_kg", "mantle_mass_kg",
+               "default_uncertainty_pct", "minimum_uncertainty_dex"},
+    "building_blocks": {"candidates", "max_mixture_size"},
+    "volatility": {"form", "condensation_table"},
+    "core": {"mantle_FeO_wt", "dIW", "D"},
+    "late_accretion": {"component", "max_fraction"},
+    "elements": {"exclude"},
+    "fit": {"isotope_window_sigma", "cmf_range", "refine"},
+    "sampler": {"draws", "tune", "chains", "seed", "target_accept"},
+}
+
+
+@dataclass(frozen=True)
+class Target:
+    """The silicate composition to explain (mass fractions, element basis)."""
+
+    composition: pd.Series
+    uncertainty: pd.Series
+    path: str
+    reference_element: str
+    planet_mass_kg: float | None
+    mantle_mass_kg: float | None
+    uncertainty_defaulted: tuple[str, ...]
+
+
+@dataclass(frozen=True)
+class CoreSettings:
+    """Core formation: the iron split (mantle FeO or dIW) and effective D overrides."""
+
+    mantle_FeO_wt: float | None
+    dIW: float | None
+    D: dict[str, float]
+
+
+@dataclass(frozen=True)
+class Case:
+    """A parsed, validated case file."""
+
+    title: str
+    path: str
+    target: Target
+    candidates: tuple[components.Component, ...]
+    max_mixture_size: int
+    volatility_form: str
+    condensation_table: str
+    core: CoreSettings
+    late_component: components.Component | None
+    late_max_fraction: float
+    isotopes: dict[str, tuple[float, float]]
+    exclude: tuple[str, ...]
+    priors: dict[str, Any] = field(default_factory=dict)
+    sampler: dict[str, Any] = field(default_factory=dict)
+    isotope_window_sigma: float = 2.0
+    cmf_range: tuple[float, float] = (0.0, 0.7)
+
+    @property
+    def candidate_names(self) -> list[str]:
+        """Names of the building-block candidates, in case order."""
+        return [c.name for c in self.candidates]
+
+
+def _check_keys(section: str, table: dict, file: str) -> None:
+    allowed = _ALLOWED.get(section)
+    if allowed is None:
+        return
+    for key in table:
+        if key not in allowed:
+            where = f"[{section}] " if section else ""
+            raise InputError(f"unknown key {where}'{key}'; allowed keys: {sorted(allowed)}",
+                             file=file, field=key)
+
+
+def _num(value: Any, *, file: str, field: str, positive: bool = False,
+         nonneg: bool = False) -> float:
+    if isinstance(value, bool) or not isinstance(value, int | float):
+        raise InputError("must be a number", file=file, field=field, value=value)
+    v = float(value)
+    if not math.isfinite(v) or (positive and v <= 0) or (nonneg and v < 0):
+        kind = "positive" if positive else "non-negative" if nonneg else "finite"
+        raise InputError(f"must be a {kind} number", file=file, field=field, value=value)
+    return v
+
+
+def read_target(path: str | Path, *, reference_element: str = "Mg",
+                default_uncertainty_pct: float | None = None) -> tuple[pd.Series, pd.Series,
+                                                                       tuple[str, ...]]:
+    """Read a target composition table (elements or oxides) into mass fractions.
+
+    Returns composition, 1-sigma uncertainty (mass fractions) and the elements whose
+    uncertainty was defaulted.
+    """
+    file = str(path)
+    df = read_csv_checked(path, ["element", "value", "unit"], what="target composition")
+    parsed = check_composition_frame(df, file=file, allow_oxides=True)
+    comp, unc = parsed.composition, parsed.uncertainty.copy()
+    if reference_element not in comp.index:
+        raise InputError(f"the reference element {reference_element} is missing from the "
+                         "target table; add it or choose another [target] reference_element",
+                         file=file, field="element", value=reference_element)
+    if comp[reference_element] <= 0:
+        raise InputError("the reference element must have a positive concentration",
+                         file=file, field="value", value=float(comp[reference_element]))
+    missing = unc.index[unc.isna() | (unc <= 0)]
+    if len(missing) and default_uncertainty_pct is None:
+        first = list(comp.index).index(missing[0]) + 2
+        raise InputError("no uncertainty given; add an 'uncertainty' or 'uncertainty_pct' "
+                         "column or set [target] default_uncertainty_pct", file=file,
+                         row=first, field="uncertainty", value=missing[0])
+    if len(missing):
+        unc[missing] = comp[missing] * default_uncertainty_pct / 100.0
+    return comp, unc, tuple(missing)
+
+
+def _resolve_component(item: Any, base: Path, file: str, field: str) -> components.Component:
+    if not isinstance(item, str) or not item:
+        raise InputError("must be a library name or a CSV path", file=file, field=field,
+                         value=item)
+    if item in components.available():
+        return components.load(item)
+    p = Path(item)
+    if p.suffix.lower() == ".csv" or "/" in item:
+        p = p if p.is_absolute() else base / p
+        if not p.exists():
+            raise InputError("component file not found", file=file, field=field, value=item)
+        return components.read_component(p)
+    raise InputError(f"unknown component; the library holds {components.available()} or "
+                     "give the path of a component CSV", file=file, field=field, value=item)
+
+
+def load_case(path: str | Path) -> Case:
+    """Read and validate a case file.
+
+    Parameters
+    ----------
+    path : str or Path
+        The TOML case file. Relative paths inside it resolve against its folder.
+
+    Returns
+    -------
+    Case
+
+    Raises
+    ------
+    InputError
+        For any problem, naming the file and the key.
+    """
+    path = Path(path)
+    file = str(path)
+    if not path.exists():
+        raise InputError("case file not found", file=file)
+    try:
+        raw = tomllib.loads(path.read_text(encoding="utf-8"))
+    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as err:
+        raise InputError(f"not valid TOML: {err}", file=file) from err
+    if not raw:
+        raise InputError("case file is empty", file=file)
+    base = path.parent
+    _check_keys("", raw, file)
+    for sec in _ALLOWED:
+        if sec and sec in raw:
+            if not isinstance(raw[sec], dict):
+                raise InputError("must be a table (a [section])", file=file, field=sec)
+            _check_keys(sec, raw[sec], file)
+
+    tgt = raw.get("target")
+    if not tgt or "table" not in tgt:
+        raise InputError("the case needs [target] table = 'file.csv'", file=file,
+                         field="target.table")
+    ref = tgt.get("reference_element", "Mg")
+    if not isinstance(ref, str) or components.parse_species(ref) is None:
+        raise InputError("not an element symbol", file=file, field="target.reference_element",
+                         value=ref)
+    if ref not in components.elements().index or components.elements().loc[
+            ref, "geochemical_class"] != "lithophile":
+        raise InputError("the reference element must be a lithophile element such as Mg or "
+                         "Al", file=file, field="target.reference_element", value=ref)
+    dflt = tgt.get("default_uncertainty_pct")
+    if dflt is not None:
+        dflt = _num(dflt, file=file, field="target.default_uncertainty_pct", positive=True)
+    tpath = Path(tgt["table"])
+    tpath = tpath if tpath.is_absolute() else base / tpath
+    comp, unc, defaulted = read_target(tpath, reference_element=ref,
+                                       default_uncertainty_pct=dflt)
+    planet_mass = tgt.get("planet_mass_kg")
+    if planet_mass is not None:
+        planet_mass = _num(planet_mass, file=file, field="target.planet_mass_kg", positive=True)
+    mantle_mass = tgt.get("mantle_mass_kg")
+    if mantle_mass is not None:
+        mantle_mass = _num(mantle_mass, file=file, field="target.mantle_mass_kg", positive=True)
+    target = Target(comp, unc, str(tpath), ref, planet_mass, mantle_mass, defaulted)
+
+    bb = raw.get("building_blocks", {})
+    cands = bb.get("candidates")
+    if not isinstance(cands, list) or not cands:
+        raise InputError("give a non-empty list of building blocks", file=file,
+                         field="building_blocks.candidates", value=cands)
+    if len(set(map(str, cands))) != len(cands):
+        raise InputError("a candidate is listed twice", file=file,
+                         field="building_blocks.candidates", value=cands)
+    candidates = tuple(_resolve_component(c, base, file, "building_blocks.candidates")
+                       for c in cands)
+    mms = bb.get("max_mixture_size", min(3, len(candidates)))
+    if isinstance(mms, bool) or not isinstance(mms, int) or mms < 1:
+        raise InputError("must be a positive whole number", file=file,
+                         field="building_blocks.max_mixture_size", value=mms)
+
+    vol = raw.get("volatility", {})
+    form = check_option("volatility form", vol.get("form", "kinked"), FORMS, file=file,
+                        field="volatility.form")
+    ctab = check_option("condensation table", vol.get("condensation_table", "lodders2003"),
+                        CONDENSATION_TABLES, file=file, field="volatility.condensation_table")
+
+    core_raw = raw.get("core", {})
+    feo = core_raw.get("mantle_FeO_wt")
+    diw = core_raw.get("dIW")
+    if feo is not None and diw is not None:
+        raise InputError("give either mantle_FeO_wt or dIW, not both", file=file, field="core")
+    if feo is not None:
+        feo = _num(feo, file=file, field="core.mantle_FeO_wt", positive=True)
+        if feo >= 60:
+            raise InputError("mantle FeO must be below 60 wt%", file=file,
+                             field="core.mantle_FeO_wt", value=feo)
+    if diw is not None:
+        diw = _num(diw, file=file, field="core.dIW")
+    D = {}
+    for el, val in (core_raw.get("D") or {}).items():
+        if components.parse_species(el) is None or components.parse_species(el)[2]:
+            raise InputError("unknown element", file=file, field=f"core.D.{el}", value=el)
+        D[el] = _num(val, file=file, field=f"core.D.{el}", nonneg=True)
+    if feo is None and diw is None and "Fe" in comp.index:
+        # the observed mantle iron sets the split; recorded as such
+        from components import oxide_to_element_factor
+
+        feo = float(comp["Fe"] / oxide_to_element_factor("Fe", 1, 1) * 100.0)
+    if feo is None and diw is None:
+        raise InputError("the iron split is unknown: give [core] mantle_FeO_wt or dIW, or Fe "
+                         "in the target table", file=file, field="core")
+    core = CoreSettings(feo, diw, D)
+
+    la = raw.get("late_accretion", {})
+    la_name = la.get("component", "CI")
+    late = None if la_name == "none" else _resolve_component(la_name, base, file,
+                                                             "late_accretion.component")
+    la_max = _num(la.get("max_fraction", 0.05), file=file, field="late_accretion.max_fraction",
+                  positive=True)
+
+    iso = {}
+    for name, pair in (raw.get("isotopes") or {}).items():
+        check_option("isotope anomaly", name, ISOTOPE_CARRIERS, file=file,
+                     field=f"isotopes.{name}")
+        if (not isinstance(pair, list) or len(pair) != 2
+                or not all(isinstance(x, int | float) and not isinstance(x, bool)
+                           for x in pair)):
+            raise InputError("give [value, 1-sigma]", file=file, field=f"isotopes.{name}",
+                             value=pair)
+        if pair[1] <= 0:
+            raise InputError("the 1-sigma must be positive", file=file,
+                             field=f"isotopes.{name}", value=pair)
+        iso[name] = (float(pair[0]), float(pair[1]))
+
+    excl = (raw.get("elements") or {}).get("exclude", [])
+    if not isinstance(excl, list):
+        raise InputError("give a list of element symbols", file=file, field="elements.exclude",
+                         value=excl)
+    for el in excl:
+        if not isinstance(el, str) or el not in components.elements().index:
+            raise InputError("unknown element", file=file, field="elements.exclude", value=el)
+
+    fit = raw.get("fit", {})
+    window = _num(fit.get("isotope_window_sigma", 2.0), file=file,
+                  field="fit.isotope_window_sigma", positive=True)
+    cmf_range = fit.get("cmf_range", [0.0, 0.7])
+    if (not isinstance(cmf_range, list) or len(cmf_range) != 2
+            or not 0 <= cmf_range[0] < cmf_range[1] < 1):
+        raise InputError("give [low, high] with 0 <= low < high < 1", file=file,
+                         field="fit.cmf_range", value=cmf_range)
+    title = raw.get("title", path.stem)
+    if not isinstance(title, str):
+        raise InputError("must be text", file=file, field="title", value=title)
+    return Case(
+        title=title, path=file, target=target, candidates=candidates,
+        max_mixture_size=int(min(mms, len(candidates))), volatility_form=form,
+        condensation_table=ctab, core=core, late_component=late, late_max_fraction=la_max,
+        isotopes=iso, exclude=tuple(excl), priors=dict(raw.get("priors") or {}),
+        sampler=dict(raw.get("sampler") or {}), isotope_window_sigma=window,
+        cmf_range=(float(cmf_range[0]), float(cmf_range[1])),
+    )

@@ -1,0 +1,285 @@
+"""The ``planetmix`` command line.
+
+Exit status: 0 success; 2 bad input (one line naming file, row and field); 3 the best
+hypothesis is infeasible; 4 a Bayesian run failed its diagnostics gate.
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+from collections.abc import Callable
+from pathlib import Path
+
+import numpy as np
+
+from .exceptions import InputError, PlanetmixError
+
+__all__ = ["main", "register", "EXIT_OK", "EXIT_INPUT", "EXIT_INFEASIBLE", "EXIT_GATE"]
+
+EXIT_OK = 0
+EXIT_INPUT = 2
+EXIT_INFEASIBLE = 3
+EXIT_GATE = 4
+
+# Sub-commands register themselves here: name -> (configure parser, run).
+_COMMANDS: dict[str, tuple[str, Callable[[argparse.ArgumentParser], None],
+                           Callable[[argparse.Namespace], int]]] = {}
+
+
+def register(name: str, help_text: str):
+    """Decorator pair: ``@register(name, help)`` on a function ``(parser) -> run``."""
+
+    def deco(configure: Callable[[argparse.ArgumentParser], Callable[[argparse.Namespace], int]]):
+        def conf(parser: argparse.ArgumentParser) -> None:
+            parser.set_defaults(_run=configure(parser))
+
+        _COMMANDS[name] = (help_text, conf, lambda a: a._run(a))
+        return configure
+
+    return deco
+
+
+# --------------------------------------------------------------------------- library
+@register("library", "list the reference library, or show one table with its sources")
+def _library(parser: argparse.ArgumentParser):
+    parser.add_argument("name", nargs="?", help="a component name (CI, EH, BSE_MS95...), "
+                        "'elements', 'solar', 'isotopes' or 'sources'")
+
+    def run(args: argparse.Namespace) -> int:
+        import pandas as pd
+
+        import components
+
+        srcs = components.sources()
+        if args.name is None:
+            print("Building blocks and reference compositions:")
+            for name in components.available():
+                c = components.load(name)
+                cites = ", ".join(c.source_keys)
+                print(f"  {name:<10} {c.kind:<19} {len(c.composition):>3} elements  [{cites}]")
+            print(f"\nElement properties: {len(components.elements())} elements "
+                  "(Tc50 Lodders 2003 / Wood et al. 2019, classes, oxides)")
+            print(f"Solar abundance tables: {', '.join(components.solar_tables())}")
+            iso = components.isotopes()
+            print(f"Isotope anomalies: {len(iso)} values for {iso['body'].nunique()} bodies "
+                  f"({', '.join(sorted(iso['quantity'].unique()))})")
+            print("\nShow one with: planetmix library NAME")
+            return EXIT_OK
+        with pd.option_context("display.max_rows", 200, "display.width", 120):
+            if args.name == "elements":
+                print(components.elements().drop(columns=["source"]).to_string())
+                keys = set()
+                for s in components.elements()["source"]:
+                    keys |= {k.strip() for k in str(s).split(";")}
+            elif args.name == "solar":
+                tab = components.solar()
+                print(tab.to_string())
+                keys = set(tab["source"])
+            elif args.name == "isotopes":
+                tab = components.isotopes()
+                print(tab.to_string(index=False))
+                keys = set(tab["source"])
+            elif args.name == "sources":
+                print(srcs.to_string())
+                return EXIT_OK
+            else:
+                c = components.load(args.name)
+                print(f"{c.name}: {c.description}\n")
+                df = c.to_dataframe()
+                df["mass_fraction"] = df["mass_fraction"].map(lambda v: f"{v:.4g}")
+                df["uncertainty"] = df["uncertainty"].map(lambda v: f"{v:.2g}")
+                print(df.to_string())
+                keys = set(c.source_keys)
+        print("\nSources:")
+        for k in sorted(keys):
+            for kk in str(k).split(";"):
+                kk = kk.strip()
+                if kk in srcs.index:
+                    print(f"  [{kk}] {srcs.loc[kk, 'citation']}")
+        return EXIT_OK
+
+    return run
+
+
+# --------------------------------------------------------------------------- fit
+def _write_fit(out: Path, case, p, result, findings: dict) -> None:
+    from .fit import planet_of
+    from .output import atomic_folder, provenance, write_json
+
+    planet = planet_of(p, result) if result.status == "optimal" else None
+    data = {
+        "title": case.title,
+        "status": result.status,
+        "reasons": list(result.reasons),
+        "components": list(result.components),
+        "weights": result.weights,
+        "weights_basis": f"{p.reference} (reference-element) basis",
+        "mass_fractions": result.mass_fractions,
+        "volatility": {"form": result.volatility_form, **result.volatility},
+        "late_accretion_component": p.late_name,
+        "late_accretion_fraction": result.late_accretion_fraction,
+        "core_mass_fraction": result.core_mass_fraction,
+        "chi2": result.chi2,
+        "aic": result.aic,
+        "bic": result.bic,
+        "n_elements": result.n_elements,
+        "n_params": result.n_params,
+        "fit_elements": p.fit_elements,
+        "isotopes_predicted": result.isotopes,
+        "findings": findings,
+        "notes": list(p.notes),
+        "provenance": provenance(
+            tables=[p.condensation_table, "mcdonough2003", "mcdonoughsun1995"],
+            component_names=list(result.components) + ([p.late_name] if p.late_name else [])
+            + ["CI"],
+            extra={"case_file": case.path, "target_table": case.target.path,
+                   "reference_element": p.reference,
+                   "condensation_table": p.condensation_table,
+                   "iron_split": ({"mantle_FeO_wt": case.core.mantle_FeO_wt}
+                                  if case.core.mantle_FeO_wt is not None
+                                  else {"dIW": case.core.dIW}),
+                   "partition_coefficients": dict(zip(p.elements, map(float, p.D),
+                                                      strict=True)),
+                   "solver": {"method": result.settings.solver,
+                              "gauss_newton_passes": result.settings.passes,
+                              "zoom_levels": result.settings.zoom_levels},
+                   "uncertainty_defaulted": list(case.target.uncertainty_defaulted)}),
+    }
+    with atomic_folder(out) as tmp:
+        write_json(tmp / "fit.json", data)
+        result.residuals.to_csv(tmp / "residuals.csv", index=False)
+        if planet is not None:
+            planet.to_csv(tmp / "planet.csv", index=False)
+
+
+@register("fit", "fit a case with all its building blocks (convex inversion)")
+def _fit(parser: argparse.ArgumentParser):
+    parser.add_argument("case", help="case file (TOML)")
+    parser.add_argument("--out", required=True, help="result folder")
+
+    def run(args: argparse.Namespace) -> int:
+        from .case import load_case
+        from .findings import findings, summary_lines
+        from .fit import fit_problem
+        from .model import compile_problem
+
+        case = load_case(args.case)
+        p = compile_problem(case)
+        result = fit_problem(p)
+        f = findings(p, result, planet_mass_kg=case.target.planet_mass_kg)
+        _write_fit(Path(args.out), case, p, result, f)
+        print(f"{case.title}: {'+'.join(result.components)} -> {result.status}")
+        if result.status != "optimal":
+            for r in result.reasons:
+                print(f"  infeasible: {r}")
+            return EXIT_INFEASIBLE
+        print("  weights (" + p.reference + " basis): " + ", ".join(
+            f"{k} {v:.3f}" for k, v in result.weights.items()))
+        print("  mass fractions: " + ", ".join(f"{k} {v:.3f}"
+                                               for k, v in result.mass_fractions.items()))
+        print(f"  volatility ({result.volatility_form}): " + ", ".join(
+            f"{k} = {v:.4g}" for k, v in result.volatility.items()))
+        print(f"  core mass fraction {result.core_mass_fraction:.3f}; chi2 {result.chi2:.1f} "
+              f"on {result.n_elements} elements; AIC {result.aic:.1f}; BIC {result.bic:.1f}")
+        for line in summary_lines(f):
+            print("  " + line)
+        print(f"  written to {args.out}/fit.json, residuals.csv, planet.csv")
+        return EXIT_OK
+
+    return run
+
+
+@register("rank", "screen every mixture of up to max_mixture_size candidates")
+def _rank(parser: argparse.ArgumentParser):
+    parser.add_argument("case", help="case file (TOML)")
+    parser.add_argument("--out", required=True, help="result folder")
+    parser.add_argument("--workers", type=int, default=None,
+                        help="processes (default: the machine's cores)")
+    parser.add_argument("--top", type=int, default=10, help="rows to print")
+
+    def run(args: argparse.Namespace) -> int:
+        import os
+
+        from .case import load_case
+        from .fit import screen
+        from .output import atomic_folder, provenance, write_json
+
+        case = load_case(args.case)
+        workers = args.workers or os.cpu_count() or 1
+        if workers < 1:
+            raise InputError("must be at least 1", field="--workers", value=args.workers)
+        ranking = screen(case, workers=workers, progress=True)
+        table = ranking.table
+        with atomic_folder(args.out) as tmp:
+            table.to_csv(tmp / "ranking.csv", index=False)
+            write_json(tmp / "ranking.json", {
+                "title": case.title, "n_hypotheses": len(table),
+                "best": table.iloc[0]["components"],
+                "provenance": provenance(tables=[case.condensation_table],
+                                         component_names=case.candidate_names + ["CI"],
+                                         extra={"case_file": case.path})})
+        cols = ["rank", "components", "status", "chi2", "aic", "bic",
+                "late_accretion_fraction", "core_mass_fraction"]
+        show = table[cols].head(args.top).copy()
+        with np.printoptions(precision=3):
+            print(show.to_string(index=False, float_format=lambda v: f"{v:.4g}"))
+        print(f"{len(table)} hypotheses; written to {args.out}/ranking.csv")
+        if table.iloc[0]["status"] != "optimal":
+            print("the best hypothesis is infeasible: " + str(table.iloc[0]["reasons"]))
+            return EXIT_INFEASIBLE
+        return EXIT_OK
+
+    return run
+
+
+def _load_plugins() -> None:
+    """Import modules that register further sub-commands (sample, star, report...)."""
+    import importlib
+
+    for mod in ("inversion.bayes_cli", "inversion.star_cli", "inversion.report_cli"):
+        try:
+            importlib.import_module(mod)
+        except ModuleNotFoundError as err:
+            if err.name != mod:
+                raise
+
+
+def build_parser() -> argparse.ArgumentParser:
+    """The argument parser with every registered sub-command."""
+    _load_plugins()
+    parser = argparse.ArgumentParser(
+        prog="planetmix",
+        description="Planetary bulk composition from chondritic building blocks, volatile "
+                    "loss, core formation and late accretion.")
+    from .output import package_version
+
+    parser.add_argument("--version", action="version", version=f"planetmix {package_version()}")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND")
+    for name, (help_text, conf, _run) in _COMMANDS.items():
+        conf(sub.add_parser(name, help=help_text, description=help_text))
+    return parser
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Entry point of the ``planetmix`` command."""
+    parser = build_parser()
+    try:
+        args = parser.parse_args(argv)
+    except SystemExit as exc:  # argparse usage errors exit 2 already
+        return int(exc.code or 0)
+    if not getattr(args, "command", None):
+        parser.print_help()
+        return EXIT_INPUT
+    try:
+        return int(args._run(args))
+    except InputError as err:
+        print(f"planetmix: error: {err}", file=sys.stderr)
+        return EXIT_INPUT
+    except PlanetmixError as err:
+        print(f"planetmix: failed: {err}", file=sys.stderr)
+        return 1
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

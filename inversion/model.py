@@ -1,0 +1,386 @@
+"""The forward model (MODEL.md sections 2-7), vectorised over parameter sets.
+
+A :class:`Problem` holds a case compiled to arrays on named element and component axes.
+:func:`forward` maps parameters (reference-element weights of the building blocks,
+volatility parameters, late-accretion fraction) to the normalised abundances of the
+silicate body and everything needed to assemble the whole planet.
+
+Notes
+-----
+Work per unit mass of the reference element R in the bulk planet. With R-basis weights
+``w`` (on the simplex) and component ratios ``Q[k, i] = (C_i / C_R)_k``, the bulk after
+volatile loss is ``a_i = (w @ Q)_i * r_i / r_R``. Core formation by mass balance with
+effective metal/silicate partition coefficients ``D_i`` (mass basis) leaves
+``m_i = a_i / (1 + D_i k)`` in the mantle, where ``k = M_c / M_s`` is the core-to-mantle
+mass ratio. The iron split is set either by the mantle FeO (mantle Fe mass fraction F,
+``m_Fe = F M_s``) or by the redox state ``dIW = 2 log10(x_FeO / x_Fe)`` with ideal mixing
+on a formula-unit basis, which gives ``D_Fe = 10**(-dIW/2) * Mbar_sil / Mbar_met`` (mean
+molar masses of silicate oxide units and of metal). ``M_s`` (mantle, as oxides) and
+``M_c`` (metal) depend on k, so k is found by a short fixed-point iteration (unrolled, so
+a gradient can pass through it). Late accretion adds a mass fraction ``lam`` of the final
+mantle with the late component's ratios:
+``v = lam C_LV,R / ((1 - lam) C_s,R + lam C_LV,R)`` and
+``ratio_final = (1 - v) ratio_mantle + v ratio_LV``.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+import components
+
+from .case import CONDENSATION_TABLES, ISOTOPE_CARRIERS, Case
+from .exceptions import InputError
+from .volatility import get_form, log10_retained
+
+__all__ = ["Problem", "compile_problem", "forward", "default_partition", "CORE_ITERATIONS",
+           "MODEL_EXCLUDED"]
+
+#: Fixed-point iterations for the core-to-mantle mass ratio (converges to < 1e-10
+#: relative in well under this many steps for chondritic bulk compositions).
+CORE_ITERATIONS = 30
+#: Elements kept out of the mass balance: oxygen comes from stoichiometry; H, C, N and
+#: the noble gases are not part of a rocky mantle's oxide budget.
+MODEL_EXCLUDED = frozenset({"O", "H", "C", "N", "He", "Ne", "Ar", "Kr", "Xe"})
+_LN10 = np.log(10.0)
+
+
+def default_partition() -> pd.DataFrame:
+    """Effective mass-basis D = c_core / c_mantle and log10 spread, indexed by element.
+
+    Earth-calibrated: core of McDonough (2003) over mantle of McDonough & Sun (1995).
+    """
+    path = components.DATA_DIR / "partitioning" / "earth_core_mantle.csv"
+    df = pd.read_csv(path, comment="#").set_index("element")
+    df["D"] = df["D"].fillna(df["core_ppm"] / df["mantle_ppm"])
+    return df
+
+
+@dataclass(frozen=True)
+class Problem:
+    """A case compiled to arrays. Axes are named: ``elements`` and ``components``.
+
+    Attributes (n elements in the mass balance, K building blocks)
+    ----------
+    elements : tuple of str
+    components : tuple of str
+    Q : (K, n) building-block mass ratios to the reference element.
+    imputed : (K, n) bool, True where a block lacked the element and it was imputed.
+    q_late : (n,) late component ratios (zeros when there is none).
+    q_ci : (n,) CI ratios, the normaliser.
+    tc : (n,) condensation temperatures [K].
+    D : (n,) effective partition coefficients (0 lithophile; Fe handled separately).
+    oxide_factor : (n,) oxide mass per element mass in the mantle.
+    atomic_weight : (n,) g/mol.
+    cations : (n,) cations per oxide formula unit.
+    fit_index : indices of elements used in the fit; y, sigma on those.
+    """
+
+    elements: tuple[str, ...]
+    components: tuple[str, ...]
+    Q: np.ndarray
+    imputed: np.ndarray
+    q_late: np.ndarray
+    late_name: str | None
+    c_late_R: float
+    c_comp_R: np.ndarray
+    q_ci: np.ndarray
+    tc: np.ndarray
+    D: np.ndarray
+    D_spread: np.ndarray
+    oxide_factor: np.ndarray
+    atomic_weight: np.ndarray
+    cations: np.ndarray
+    reference: str
+    ref_index: int
+    fe_index: int
+    mantle_Fe: float | None
+    dIW: float | None
+    fit_index: np.ndarray
+    y: np.ndarray
+    sigma: np.ndarray
+    y_all: np.ndarray
+    sigma_all: np.ndarray
+    observed: np.ndarray
+    volatility_form: str
+    condensation_table: str
+    late_max_fraction: float
+    isotopes: tuple[dict[str, Any], ...]
+    isotope_window_sigma: float
+    notes: tuple[str, ...] = field(default=())
+
+    @property
+    def n_fit(self) -> int:
+        """Number of elements in the fit."""
+        return int(self.fit_index.size)
+
+    @property
+    def fit_elements(self) -> list[str]:
+        """Symbols of the fitted elements."""
+        return [self.elements[i] for i in self.fit_index]
+
+    @property
+    def n_params_nonlinear(self) -> int:
+        """Number of volatility parameters."""
+        return len(get_form(self.volatility_form).params)
+
+    def subset(self, names: list[str] | tuple[str, ...]) -> Problem:
+        """The same problem with only the named building blocks."""
+        idx = [self.components.index(n) for n in names]
+        iso = tuple({**d, "eps": d["eps"][idx], "q_carrier": d["q_carrier"][idx]}
+                    for d in self.isotopes)
+        return _replace(self, components=tuple(names), Q=self.Q[idx], imputed=self.imputed[idx],
+                        c_comp_R=self.c_comp_R[idx], isotopes=iso)
+
+
+def _replace(p: Problem, **kw: Any) -> Problem:
+    from dataclasses import replace
+
+    return replace(p, **kw)
+
+
+def _impute(comp: pd.Series, ci: pd.Series, els: list[str], classes: pd.Series) -> tuple[
+        np.ndarray, np.ndarray]:
+    """Fill missing elements with CI times the component's median CI-normalised level of
+    the same cosmochemical class (recorded as imputed; imputed elements are not fitted)."""
+    vals = np.empty(len(els))
+    imp = np.zeros(len(els), dtype=bool)
+    present = [e for e in els if e in comp.index and comp[e] > 0]
+    norm = pd.Series({e: comp[e] / ci[e] for e in present})
+    for j, e in enumerate(els):
+        if e in comp.index and comp[e] > 0:
+            vals[j] = comp[e]
+            continue
+        same = [x for x in present if classes[x] == classes[e]]
+        level = float(np.median(norm[same])) if same else float(np.median(norm))
+        vals[j] = ci[e] * level
+        imp[j] = True
+    return vals, imp
+
+
+def compile_problem(case: Case, *, minimum_sigma_dex: float = 0.02) -> Problem:
+    """Compile a case into a :class:`Problem`.
+
+    Elements in the mass balance: those with a CI value and a condensation temperature,
+    held by at least one candidate, except :data:`MODEL_EXCLUDED`. Fitted: those among
+    them in the target, not excluded, held by every candidate (not imputed), other than
+    the reference element.
+
+    Parameters
+    ----------
+    case : Case
+    minimum_sigma_dex : float
+        Floor on each element's uncertainty [dex] (model imperfection; recorded).
+    """
+    ci = components.load("CI").composition
+    props = components.elements()
+    tc_col = CONDENSATION_TABLES[case.condensation_table]
+    ref = case.target.reference_element
+    names = [c.name for c in case.candidates]
+    union = set()
+    for c in case.candidates:
+        union |= set(c.composition.index[c.composition > 0])
+    for c in case.candidates:
+        if ref not in c.composition.index or c.composition[ref] <= 0:
+            raise InputError(f"building block {c.name} has no {ref}, the reference element",
+                             file=c.path or None, field="element", value=ref)
+    els = [e for e in props.index if e in union and e in ci.index and ci[e] > 0
+           and e not in MODEL_EXCLUDED and np.isfinite(props.loc[e, tc_col])]
+    if "Fe" not in els:
+        raise InputError("no building block holds Fe", file=case.path,
+                         field="building_blocks.candidates")
+    tgt = case.target.composition
+    for e in tgt.index:
+        if e in MODEL_EXCLUDED or e in case.exclude:
+            continue
+        if e not in union:
+            raise InputError(f"element {e} of the target is absent from every building block;"
+                             " add it to [elements] exclude or choose other candidates",
+                             file=case.target.path, field="element", value=e)
+    classes = props["cosmochemical_class"]
+    Q = np.empty((len(names), len(els)))
+    imputed = np.zeros_like(Q, dtype=bool)
+    c_R = np.empty(len(names))
+    for k, c in enumerate(case.candidates):
+        vals, imp = _impute(c.composition, ci, els, classes)
+        Q[k] = vals / c.composition[ref]
+        imputed[k] = imp
+        c_R[k] = c.composition[ref]
+    q_ci = np.array([ci[e] for e in els]) / ci[ref]
+    if case.late_component is not None:
+        lv = case.late_component
+        vals, _ = _impute(lv.composition, ci, els, classes)
+        q_late = vals / lv.composition[ref]
+        c_late_R = float(lv.composition[ref])
+        late_name = lv.name
+    else:
+        q_late, c_late_R, late_name = np.zeros(len(els)), 1.0, None
+    part = default_partition()
+    D = np.array([case.core.D.get(e, part["D"].get(e, 0.0)) for e in els], dtype=float)
+    spread = np.array([part["log10_spread"].get(e, 0.0) for e in els], dtype=float)
+    fe = els.index("Fe")
+    D[fe] = 0.0
+    mantle_Fe = None
+    if case.core.mantle_FeO_wt is not None:
+        mantle_Fe = case.core.mantle_FeO_wt / 100.0 * components.oxide_to_element_factor(
+            "Fe", 1, 1)
+    cations = np.array([components.parse_species(props.loc[e, "oxide"])[1] for e in els])
+    # observations
+    y_all = np.full(len(els), np.nan)
+    s_all = np.full(len(els), np.nan)
+    obs = np.full(len(els), np.nan)
+    unc = case.target.uncertainty
+    for j, e in enumerate(els):
+        if e in tgt.index and tgt[e] > 0:
+            obs[j] = tgt[e]
+            y_all[j] = np.log10(tgt[e] / tgt[ref] / q_ci[j])
+            rel = float(np.hypot(unc[e] / tgt[e], unc[ref] / tgt[ref])) if e != ref else 0.0
+            s_all[j] = max(np.log10(1.0 + rel), minimum_sigma_dex)
+    fit = np.array([j for j, e in enumerate(els) if np.isfinite(y_all[j]) and e != ref
+                    and e not in case.exclude and not imputed[:, j].any()], dtype=int)
+    notes = []
+    zero_in_target = [e for e in tgt.index if tgt[e] <= 0]
+    if zero_in_target:
+        notes.append(f"target elements with zero concentration not fitted: {zero_in_target}")
+    held_out = [e for j, e in enumerate(els) if np.isfinite(y_all[j]) and imputed[:, j].any()
+                and e not in case.exclude]
+    if held_out:
+        notes.append("target elements missing from some building block (imputed, not "
+                     f"fitted): {held_out}")
+    if fit.size < 3:
+        raise InputError(f"only {fit.size} elements can be fitted; the target and the "
+                         "building blocks share too few elements", file=case.target.path)
+    iso = []
+    iso_table = components.isotopes()
+    for qname, (val, sig) in case.isotopes.items():
+        carrier = ISOTOPE_CARRIERS[qname]
+        eps, qc = [], []
+        for c in list(case.candidates) + ([case.late_component] if case.late_component
+                                          else []):
+            rows = iso_table[(iso_table["body"] == c.name) & (iso_table["quantity"] == qname)]
+            if rows.empty:
+                raise InputError(f"no {qname} value for building block {c.name} in the "
+                                 "library; remove the constraint or the candidate",
+                                 file=case.path, field=f"isotopes.{qname}", value=c.name)
+            if carrier not in c.composition.index:
+                raise InputError(f"building block {c.name} has no {carrier}, the carrier of "
+                                 f"{qname}", file=case.path, field=f"isotopes.{qname}")
+            eps.append(float(rows["value"].iloc[0]))
+            qc.append(float(c.composition[carrier] / c.composition[ref]))
+        K = len(case.candidates)
+        iso.append({"name": qname, "carrier": carrier, "value": val, "sigma": sig,
+                    "eps": np.array(eps[:K]), "q_carrier": np.array(qc[:K]),
+                    "eps_late": eps[K] if len(eps) > K else 0.0,
+                    "q_late": qc[K] if len(qc) > K else 0.0,
+                    "range": (float(min(eps)), float(max(eps)))})
+    return Problem(
+        elements=tuple(els), components=tuple(names), Q=Q, imputed=imputed, q_late=q_late,
+        late_name=late_name, c_late_R=c_late_R, c_comp_R=c_R, q_ci=q_ci,
+        tc=props.loc[els, tc_col].to_numpy(float), D=D, D_spread=spread,
+        oxide_factor=props.loc[els, "oxide_factor"].to_numpy(float),
+        atomic_weight=props.loc[els, "atomic_weight"].to_numpy(float), cations=cations,
+        reference=ref, ref_index=els.index(ref), fe_index=fe, mantle_Fe=mantle_Fe,
+        dIW=case.core.dIW, fit_index=fit, y=y_all[fit], sigma=s_all[fit], y_all=y_all,
+        sigma_all=s_all, observed=obs, volatility_form=case.volatility_form,
+        condensation_table=case.condensation_table,
+        late_max_fraction=case.late_max_fraction if late_name else 0.0,
+        isotopes=tuple(iso), isotope_window_sigma=case.isotope_window_sigma,
+        notes=tuple(notes),
+    )
+
+
+def _core_split(a: np.ndarray, p: Problem, D: np.ndarray, k0: np.ndarray | None = None
+                ) -> dict[str, np.ndarray]:
+    """Mass balance between mantle and core for bulk ``a`` (B, n) per unit mass of R."""
+    B = a.shape[0]
+    fe = p.fe_index
+    f = p.oxide_factor
+    is_fe = np.zeros(a.shape[1])
+    is_fe[fe] = 1.0
+    k = np.full((B, 1), 0.5) if k0 is None else np.asarray(k0, float).reshape(B, 1)
+    D = np.broadcast_to(D, a.shape).copy()
+    aw = p.atomic_weight
+    D_fe = np.full((B, 1), np.nan)
+    if p.dIW is not None:
+        D_fe = np.full((B, 1), 10 ** (-p.dIW / 2.0) * 50.0 / 55.0)
+    for _ in range(CORE_ITERATIONS):
+        if p.mantle_Fe is not None:
+            m = a / (1.0 + D * k) * (1.0 - is_fe)
+            s1 = (m * f).sum(axis=1, keepdims=True)
+            M_s = s1 / (1.0 - f[fe] * p.mantle_Fe)
+            m = m + is_fe * p.mantle_Fe * M_s
+        else:
+            Dk = D * (1.0 - is_fe) + is_fe * D_fe
+            m = a / (1.0 + Dk * k)
+            M_s = (m * f).sum(axis=1, keepdims=True)
+        core = a - m
+        M_c = core.sum(axis=1, keepdims=True)
+        if p.dIW is not None:
+            mol_sil = (m / (aw * p.cations)).sum(axis=1, keepdims=True)
+            mol_met = (np.clip(core, 0, None) / aw).sum(axis=1, keepdims=True)
+            mbar_sil = M_s / mol_sil
+            mbar_met = np.where(mol_met > 0, M_c / np.maximum(mol_met, 1e-300), aw[fe])
+            D_fe = 10 ** (-p.dIW / 2.0) * mbar_sil / mbar_met
+        k = np.maximum(M_c, 0.0) / M_s
+    return {"mantle": m, "core": core, "M_s": M_s[:, 0], "M_c": M_c[:, 0], "k": k[:, 0],
+            "D_Fe": D_fe[:, 0]}
+
+
+def forward(p: Problem, w: np.ndarray, vol: np.ndarray, lam: np.ndarray | float = 0.0,
+            *, D: np.ndarray | None = None) -> dict[str, np.ndarray]:
+    """Run the forward model for a batch of parameter sets.
+
+    Parameters
+    ----------
+    p : Problem
+    w : ndarray, shape (B, K)
+        R-basis weights of the building blocks (rows on the simplex).
+    vol : ndarray, shape (B, p)
+        Volatility parameters of ``p.volatility_form``.
+    lam : float or ndarray, shape (B,)
+        Late-accretion mass fraction of the final mantle.
+    D : ndarray, shape (n,) or (B, n), optional
+        Effective partition coefficients (defaults to ``p.D``).
+
+    Returns
+    -------
+    dict of ndarray
+        ``log10N`` (B, n) CI- and R-normalised abundances of the final silicate;
+        ``ratio`` (B, n) final mantle mass ratios to R; ``bulk`` (B, n) bulk planet per
+        unit R; ``mantle`` and ``core`` (B, n) element masses per unit R before late
+        accretion; ``M_s``, ``M_c``, ``k``, ``cmf`` (B,); ``v`` (B,) R-basis late weight;
+        ``x`` (B, K) bulk mass fractions of the building blocks; ``D_Fe`` (B,).
+    """
+    w = np.atleast_2d(np.asarray(w, float))
+    vol = np.atleast_2d(np.asarray(vol, float))
+    B = max(w.shape[0], vol.shape[0])
+    w = np.broadcast_to(w, (B, w.shape[1]))
+    vol = np.broadcast_to(vol, (B, vol.shape[1]))
+    lam = np.broadcast_to(np.asarray(lam, float), (B,))
+    logr = log10_retained(p.volatility_form, vol, p.tc)
+    logr = logr - logr[:, p.ref_index:p.ref_index + 1]
+    a = (w @ p.Q) * 10.0 ** logr
+    split = _core_split(a, p, p.D if D is None else D)
+    c_R = 1.0 / split["M_s"]
+    v = lam * p.c_late_R / ((1.0 - lam) * c_R + lam * p.c_late_R)
+    ratio = (1.0 - v)[:, None] * split["mantle"] + v[:, None] * p.q_late[None, :]
+    x = w / p.c_comp_R[None, :]
+    x = x / x.sum(axis=1, keepdims=True)
+    M_tot = split["M_s"] + split["M_c"]
+    with np.errstate(divide="ignore"):
+        log10N = np.log10(ratio / p.q_ci[None, :])
+    return {"log10N": log10N, "ratio": ratio, "bulk": a, "mantle": split["mantle"],
+            "core": split["core"], "M_s": split["M_s"], "M_c": split["M_c"],
+            "k": split["k"], "cmf": split["M_c"] / M_tot, "v": v, "x": x, "lam": lam,
+            "D_Fe": split["D_Fe"], "logr": logr}
+
+
+def lam_from_v(p: Problem, v: np.ndarray, M_s: np.ndarray) -> np.ndarray:
+    """Late-accretion mass fraction from its R-basis weight ``v`` (inverse of the above)."""
+    c_R = 1.0 / np.asarray(M_s)
+    num = v * c_R
+    return num / (num + (1.0 - v) * p.c_late_R)

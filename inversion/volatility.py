@@ -1,0 +1,103 @@
+"""Volatile depletion against 50% condensation temperature: the declared forms.
+
+Each form maps parameters to log10 of the retained fraction r(Tc) in (0, 1]. All are
+vectorised: parameters have shape (B, p), temperatures (n,), the result (B, n).
+
+References
+----------
+Wang H. S., Lineweaver C. H., Ireland T. R. (2019) Icarus 328, 287 (power law in Tc).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from .options import check_option
+
+__all__ = ["VolatilityForm", "FORMS", "get_form", "log10_retained"]
+
+
+@dataclass(frozen=True)
+class VolatilityForm:
+    """A volatility form: parameter names, units, bounds and a coarse profiling grid."""
+
+    name: str
+    params: tuple[str, ...]
+    units: tuple[str, ...]
+    lower: tuple[float, ...]
+    upper: tuple[float, ...]
+    grid: tuple[tuple[float, ...], ...]
+    description: str
+
+
+FORMS: dict[str, VolatilityForm] = {
+    "kinked": VolatilityForm(
+        "kinked", ("T0", "slope"), ("K", "dex/K"), (700.0, 0.0), (1800.0, 0.02),
+        (tuple(np.linspace(900, 1700, 9)), (0.0, 0.0005, 0.001, 0.002, 0.003, 0.005, 0.008)),
+        "log10 r = min(0, slope * (Tc - T0))",
+    ),
+    "power": VolatilityForm(
+        "power", ("a", "b"), ("1", "1"), (0.0, -40.0), (12.0, 0.0),
+        ((1.0, 2.0, 3.0, 3.7, 4.5, 6.0, 8.0), (-28.0, -22.0, -17.0, -14.0, -11.5, -9.0, -6.0, -3.0)),
+        "log10 r = min(0, a * log10(Tc) + b); pivot at Tc = 10**(-b/a)",
+    ),
+    "logistic": VolatilityForm(
+        "logistic", ("T50", "width"), ("K", "K"), (200.0, 5.0), (1800.0, 800.0),
+        (tuple(np.linspace(300, 1500, 9)), (20.0, 50.0, 100.0, 200.0, 400.0)),
+        "r = 1 / (1 + exp(-(Tc - T50) / width))",
+    ),
+    "kinked-floor": VolatilityForm(
+        "kinked-floor", ("T0", "slope", "log10_floor"), ("K", "dex/K", "dex"),
+        (700.0, 0.0, -6.0), (1800.0, 0.02, 0.0),
+        (tuple(np.linspace(900, 1700, 7)), (0.0, 0.001, 0.002, 0.004, 0.008),
+         (-4.0, -2.5, -1.5, -0.7)),
+        "log10 r = max(log10_floor, min(0, slope * (Tc - T0)))",
+    ),
+}
+
+
+def get_form(name: str) -> VolatilityForm:
+    """Return a declared form; an unknown name lists the valid ones."""
+    check_option("volatility form", name, FORMS)
+    return FORMS[name]
+
+
+def log10_retained(form: str, params: np.ndarray, tc: np.ndarray) -> np.ndarray:
+    """log10 of the retained fraction for each parameter set and element.
+
+    Parameters
+    ----------
+    form : str
+        One of :data:`FORMS`.
+    params : ndarray, shape (B, p)
+        Parameters in the order of ``FORMS[form].params``.
+    tc : ndarray, shape (n,)
+        50% condensation temperatures [K].
+
+    Returns
+    -------
+    ndarray, shape (B, n)
+        log10 r, always <= 0.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> log10_retained("kinked", np.array([[1200.0, 0.002]]), np.array([1500.0, 700.0]))
+    array([[ 0., -1.]])
+    """
+    p = np.atleast_2d(np.asarray(params, dtype=float))
+    tc = np.asarray(tc, dtype=float)[None, :]
+    if form == "kinked":
+        return np.minimum(0.0, p[:, 1:2] * (tc - p[:, 0:1]))
+    if form == "power":
+        return np.minimum(0.0, p[:, 0:1] * np.log10(tc) + p[:, 1:2])
+    if form == "logistic":
+        z = (tc - p[:, 0:1]) / p[:, 1:2]
+        # log10(1/(1+exp(-z))) computed stably
+        return -np.logaddexp(0.0, -z) / np.log(10.0)
+    if form == "kinked-floor":
+        return np.maximum(p[:, 2:3], np.minimum(0.0, p[:, 1:2] * (tc - p[:, 0:1])))
+    check_option("volatility form", form, FORMS)
+    raise AssertionError("unreachable")
