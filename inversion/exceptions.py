@@ -1,4 +1,4 @@
-"""planetmix errors and warnings (defined in :mod:`components.exceptions`, shared by both packages)."""
+"""planetmix errors and warnings (defined once in :mod:`components.exceptions`)."""
 
 from components.exceptions import (
     DiagnosticWarning,

@@ -90,7 +90,7 @@ def planet_table(p: Problem, planet: dict[str, object], index: int = 0) -> pd.Da
     mo = planet["mantle_oxides_wt"][index]
     cf = planet["mantle_mass_fraction"][index]
     ox_total = float((cf * p.oxide_factor).sum())
-    for j, e in enumerate(els):
+    for j in range(len(els)):
         if ox[j] in MAJOR_OXIDES:
             rows.append(("mantle", ox[j], mo[j], "wt%"))
     for j, e in enumerate(els):
