@@ -212,6 +212,9 @@ def load_case(path: str | Path) -> Case:
         dflt = _num(dflt, file=file, field="target.default_uncertainty_pct", positive=True)
     tpath = Path(tgt["table"])
     tpath = tpath if tpath.is_absolute() else base / tpath
+    if not tpath.exists():
+        raise InputError(f"target table not found at {tpath}; paths are relative to the case "
+                         "file's folder", file=file, field="target.table", value=tgt["table"])
     comp, unc, defaulted = read_target(tpath, reference_element=ref,
                                        default_uncertainty_pct=dflt)
     planet_mass = tgt.get("planet_mass_kg")

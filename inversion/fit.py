@@ -40,7 +40,7 @@ class FitSettings:
     """Settings of the convex inversion (recorded in every result)."""
 
     passes: int = 5
-    zoom_levels: int = 2
+    zoom_levels: int = 6
     zoom_points: int = 5
     solver: str = "active-set enumeration (exact); cvxpy/CLARABEL above 7 variables"
 

@@ -194,13 +194,13 @@ def compile_problem(case: Case, *, minimum_sigma_dex: float = 0.02) -> Problem:
         raise InputError("no building block holds Fe", file=case.path,
                          field="building_blocks.candidates")
     tgt = case.target.composition
-    for e in tgt.index:
-        if e in MODEL_EXCLUDED or e in case.exclude:
-            continue
-        if e not in union:
-            raise InputError(f"element {e} of the target is absent from every building block;"
-                             " add it to [elements] exclude or choose other candidates",
-                             file=case.target.path, field="element", value=e)
+    absent = [e for e in tgt.index
+              if e not in MODEL_EXCLUDED and e not in case.exclude and e not in union]
+    if absent:
+        row = list(tgt.index).index(absent[0]) + 2
+        raise InputError(f"target element(s) {absent} are absent from every building block; "
+                         "add them to [elements] exclude or choose other candidates",
+                         file=case.target.path, row=row, field="element", value=absent[0])
     classes = props["cosmochemical_class"]
     Q = np.empty((len(names), len(els)))
     imputed = np.zeros_like(Q, dtype=bool)

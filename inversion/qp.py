@@ -95,7 +95,8 @@ def solve_batch(A: np.ndarray, b: np.ndarray, G: np.ndarray | None = None,
     n_ineq = Gall.shape[1]
     H = np.einsum("bni,bnj->bij", A, A)
     c = np.einsum("bni,bn->bi", A, b)
-    ridge = 1e-12 * (np.trace(H, axis1=1, axis2=2) / m + 1e-300)
+    hscale = np.trace(H, axis1=1, axis2=2) / m + 1e-300
+    ridge = 1e-12 * hscale
     H = H + ridge[:, None, None] * np.eye(m)
     const = np.einsum("bn,bn->b", b, b)
 
@@ -121,10 +122,16 @@ def solve_batch(A: np.ndarray, b: np.ndarray, G: np.ndarray | None = None,
             K[:, :, m + 1:, :m] = rows
             K[:, :, :m, m + 1:] = np.swapaxes(rows, 2, 3)
             rhs[:, :, m + 1:] = hall[:, idx]
-        try:
-            sol = np.linalg.solve(K, rhs[..., None])[..., 0]
-        except np.linalg.LinAlgError:
-            sol = np.einsum("bsij,bsj->bsi", np.linalg.pinv(K), rhs)
+        # quasi-definite regularisation of the multiplier block keeps every KKT matrix
+        # nonsingular (H is positive definite); active sets whose constraints contradict
+        # each other then fail the equality check below instead of raising
+        diag = np.arange(m, k)
+        Kreg = K.copy()
+        Kreg[:, :, diag, diag] = -1e-10 / hscale[:, None, None]
+        sol = np.linalg.solve(Kreg, rhs[..., None])[..., 0]
+        for _ in range(2):  # iterative refinement towards the unregularised solution
+            r = rhs - np.einsum("bsij,bsj->bsi", K, sol)
+            sol = sol + np.linalg.solve(Kreg, r[..., None])[..., 0]
         u = sol[:, :, :m]
         eq_ok = np.abs(u.sum(axis=2) - 1.0) < 1e-7
         if size:

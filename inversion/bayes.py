@@ -1,0 +1,722 @@
+"""Bayesian inversion with PyMC (MODEL.md sections 8-9): priors, model, sampling, gate.
+
+The model is the pytensor twin of :func:`inversion.model.forward`: R-basis weights of
+the building blocks on the simplex, the chosen volatility form, core formation by an
+unrolled fixed point of the core-to-mantle mass ratio, late accretion, isotope mass
+balance, and a Student-t likelihood with a model-scatter term on the fitted elements.
+:func:`sample` runs NUTS from the convex optimum, applies the diagnostics gate and
+returns a :class:`SampleResult`; the posterior draws of the whole planet come from the
+numpy forward model, vectorised over draws (:func:`planet_draws`).
+
+Notes
+-----
+Likelihood of the fitted elements (observed ``y_i``, 1-sigma ``sigma_i`` dex)::
+
+    y_i ~ StudentT(nu = 4, mu_i(theta), sqrt(sigma_i**2 + tau**2))
+
+with ``tau`` a model-scatter term (HalfNormal(0.05) dex). Each isotope anomaly of the
+case adds ``eps_obs ~ Normal(eps_planet(w, v), sigma_obs)`` with ``eps_planet`` the
+carrier-weighted mass balance of the building blocks and the late component.
+
+References
+----------
+Vehtari A., Gelman A., Simpson D., Carpenter B., Buerkner P.-C. (2021) Rank-normalization,
+folding, and localization: an improved R-hat for assessing convergence of MCMC. Bayesian
+Analysis 16, 667 (the gate thresholds: R-hat <= 1.01, bulk ESS >= 400).
+Talts S., Betancourt M., Simpson D., Vehtari A., Gelman A. (2018) Validating Bayesian
+inference algorithms with simulation-based calibration. arXiv:1804.06788.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import time
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from .exceptions import InputError
+from .model import Problem, forward
+from .volatility import get_form
+
+__all__ = ["SamplerSettings", "Diagnostics", "SampleResult", "PRIOR_DISTRIBUTIONS",
+           "GATE_RHAT_MAX", "GATE_ESS_BULK_MIN", "GATE_DIVERGENCES_MAX", "CORE_UNROLL",
+           "STUDENT_NU", "default_priors", "check_priors", "check_sampler_settings",
+           "build_model", "pt_log10_retained", "model_log10N", "sample", "diagnose",
+           "summary_table", "planet_draws", "outliers", "posterior_arrays",
+           "main_parameters", "compare_runs"]
+
+#: Gate thresholds (Vehtari et al. 2021).
+GATE_RHAT_MAX = 1.01
+GATE_ESS_BULK_MIN = 400.0
+GATE_DIVERGENCES_MAX = 0
+#: Unrolled fixed-point iterations of the core split in the PyMC model (the numpy model
+#: runs :data:`inversion.model.CORE_ITERATIONS`; a test checks they agree to 1e-6 dex).
+#: The mantle-FeO split converges to ~1e-14 in 15 steps; the redox (dIW) split, whose
+#: D_Fe moves with the mean molar masses, needs ~25 for 1e-9.
+CORE_UNROLL = 15
+CORE_UNROLL_DIW = 25
+#: Degrees of freedom of the Student-t likelihood (MODEL.md section 8).
+STUDENT_NU = 4.0
+#: Observed variable names in the model.
+OBS_ELEMENTS = "y_obs"
+
+# --------------------------------------------------------------------------- priors
+#: Declared prior distributions and their parameters (one check, one message template).
+PRIOR_DISTRIBUTIONS: dict[str, tuple[str, ...]] = {
+    "Uniform": ("lower", "upper"),
+    "Normal": ("mu", "sigma"),
+    "HalfNormal": ("sigma",),
+    "TruncatedNormal": ("mu", "sigma", "lower", "upper"),
+    "LogNormal": ("mu", "sigma"),
+    "Dirichlet": ("a",),
+}
+
+
+def _support_of(dist: str, pars: dict[str, Any]) -> tuple[float, float]:
+    if dist == "Uniform" or dist == "TruncatedNormal":
+        return float(pars["lower"]), float(pars["upper"])
+    if dist in ("HalfNormal", "LogNormal"):
+        return 0.0, math.inf
+    return -math.inf, math.inf
+
+
+def default_priors(p: Problem) -> dict[str, dict[str, Any]]:
+    """The default prior of every parameter of the model for problem ``p``.
+
+    Returns
+    -------
+    dict
+        parameter name -> ``{"dist": ..., <parameters>}``; also ``_support`` entries
+        (the interval each parameter's prior must lie in) are kept separately, see
+        :func:`check_priors`.
+    """
+    pri: dict[str, dict[str, Any]] = {}
+    K = len(p.components)
+    if K > 1:
+        pri["w"] = {"dist": "Dirichlet", "a": 1.0}
+    form = get_form(p.volatility_form)
+    if form.name in ("kinked", "kinked-floor"):
+        pri["T0"] = {"dist": "Uniform", "lower": 900.0, "upper": 1700.0}
+        # 0.004 dex/K: 2-4 dex per 1000 K lies well inside the half-normal's bulk
+        pri["slope"] = {"dist": "HalfNormal", "sigma": 0.004}
+        if form.name == "kinked-floor":
+            pri["log10_floor"] = {"dist": "Uniform", "lower": -6.0, "upper": 0.0}
+    else:
+        for name, lo, hi in zip(form.params, form.lower, form.upper, strict=True):
+            pri[name] = {"dist": "Uniform", "lower": float(lo), "upper": float(hi)}
+    if p.late_name is not None:
+        pri["lam"] = {"dist": "Uniform", "lower": 0.0, "upper": float(p.late_max_fraction)}
+    for j in _partitioned(p):
+        pri[f"log10D_{p.elements[j]}"] = {"dist": "Normal", "mu": float(np.log10(p.D[j])),
+                                          "sigma": float(p.D_spread[j])}
+    pri["tau"] = {"dist": "HalfNormal", "sigma": 0.05}
+    return pri
+
+
+def _supports(p: Problem) -> dict[str, tuple[float, float]]:
+    sup: dict[str, tuple[float, float]] = {"tau": (0.0, math.inf)}
+    form = get_form(p.volatility_form)
+    for name, lo, hi in zip(form.params, form.lower, form.upper, strict=True):
+        sup[name] = (float(lo), float(hi))
+    if form.name in ("kinked", "kinked-floor"):
+        sup["slope"] = (0.0, math.inf)
+    if form.name == "logistic":
+        sup["width"] = (1e-9, math.inf)
+    if form.name == "power":
+        sup["a"] = (0.0, math.inf)
+        sup["b"] = (-math.inf, 0.0)
+    if p.late_name is not None:
+        sup["lam"] = (0.0, 0.999)
+    for j in _partitioned(p):
+        sup[f"log10D_{p.elements[j]}"] = (-math.inf, math.inf)
+    return sup
+
+
+def _partitioned(p: Problem) -> list[int]:
+    """Indices of elements whose effective log10 D is a parameter (spread > 0, D > 0)."""
+    return [j for j in range(len(p.elements))
+            if p.D_spread[j] > 0 and p.D[j] > 0 and j != p.fe_index]
+
+
+def check_priors(p: Problem, priors: dict[str, Any] | None, *, file: str | None = None
+                 ) -> dict[str, dict[str, Any]]:
+    """Validate the case's ``[priors]`` table and merge it over the defaults.
+
+    Parameters
+    ----------
+    p : Problem
+    priors : dict
+        parameter name -> ``{dist = "Uniform", lower = ..., upper = ...}`` (TOML table).
+    file : str, optional
+        The case file, named in errors.
+
+    Returns
+    -------
+    dict
+        The full prior set (defaults with the overrides applied).
+
+    Raises
+    ------
+    InputError
+        Unknown parameter (lists the valid ones), unknown distribution, missing or
+        extra distribution parameters, non-numbers, or a prior whose support leaves the
+        parameter's physical range.
+    """
+    out = default_priors(p)
+    sup = _supports(p)
+    for name, spec in (priors or {}).items():
+        fld = f"priors.{name}"
+        if name not in out:
+            raise InputError(f"unknown prior parameter; this case's parameters are "
+                             f"{sorted(out)}", file=file, field=fld, value=name)
+        if not isinstance(spec, dict) or "dist" not in spec:
+            raise InputError('give a table such as {dist = "Uniform", lower = 0, upper = 1}',
+                             file=file, field=fld, value=spec)
+        dist = spec["dist"]
+        if dist not in PRIOR_DISTRIBUTIONS:
+            raise InputError(f"unknown distribution; choose one of "
+                             f"{sorted(PRIOR_DISTRIBUTIONS)}", file=file, field=fld + ".dist",
+                             value=dist)
+        if (dist == "Dirichlet") != (name == "w"):
+            raise InputError("the weights take a Dirichlet prior and only they do", file=file,
+                             field=fld + ".dist", value=dist)
+        need = PRIOR_DISTRIBUTIONS[dist]
+        got = {k: v for k, v in spec.items() if k != "dist"}
+        if set(got) != set(need):
+            raise InputError(f"{dist} takes exactly the parameters {list(need)}", file=file,
+                             field=fld, value=sorted(got))
+        pars: dict[str, Any] = {}
+        for k, v in got.items():
+            if name == "w" and isinstance(v, list):
+                if len(v) != len(p.components) or not all(
+                        isinstance(x, int | float) and not isinstance(x, bool) and x > 0
+                        for x in v):
+                    raise InputError(f"give one positive number per building block "
+                                     f"({len(p.components)})", file=file, field=f"{fld}.{k}",
+                                     value=v)
+                pars[k] = [float(x) for x in v]
+                continue
+            if isinstance(v, bool) or not isinstance(v, int | float) or not math.isfinite(v):
+                raise InputError("must be a finite number", file=file, field=f"{fld}.{k}",
+                                 value=v)
+            pars[k] = float(v)
+        for k in ("sigma", "a"):
+            if k in pars and not isinstance(pars[k], list) and pars[k] <= 0:
+                raise InputError("must be positive", file=file, field=f"{fld}.{k}",
+                                 value=pars[k])
+        if "lower" in pars and not pars["lower"] < pars["upper"]:
+            raise InputError("lower must be below upper", file=file, field=fld,
+                             value=[pars["lower"], pars["upper"]])
+        if name in sup:
+            lo, hi = _support_of(dist, pars)
+            slo, shi = sup[name]
+            if lo < slo or hi > shi:
+                raise InputError(f"{dist} reaches outside the parameter's range "
+                                 f"[{slo:g}, {shi:g}]; choose a distribution inside it",
+                                 file=file, field=fld, value=[lo, hi])
+        out[name] = {"dist": dist, **pars}
+    return out
+
+
+# --------------------------------------------------------------------------- settings
+@dataclass(frozen=True)
+class SamplerSettings:
+    """Settings of a NUTS run (recorded in every result).
+
+    Defaults: 4 chains of 1000 tuning and 1000 kept draws at target acceptance 0.9,
+    which pass the gate on the library's cases (bulk ESS >= 400 needs about 100
+    effective draws per chain).
+    """
+
+    draws: int = 1000
+    tune: int = 1000
+    chains: int = 4
+    seed: int = 0
+    target_accept: float = 0.9
+    cores: int | None = None
+    jitter: float = 0.02
+    evidence: bool = False
+    smc_draws: int = 1000
+    smc_chains: int = 2
+
+
+_SAMPLER_KEYS = ("draws", "tune", "chains", "seed", "target_accept")
+
+
+def check_sampler_settings(table: dict[str, Any] | None, *, file: str | None = None,
+                           **overrides: Any) -> SamplerSettings:
+    """Settings from a case's ``[sampler]`` table, then command-line overrides.
+
+    Raises
+    ------
+    InputError
+        A value of the wrong kind or out of range.
+    """
+    vals: dict[str, Any] = {}
+    for src, where in ((table or {}, "sampler"), (overrides, "option")):
+        for k, v in src.items():
+            if v is None:
+                continue
+            fld = f"{where}.{k}" if where == "sampler" else f"--{k.replace('_', '-')}"
+            if k == "target_accept":
+                if isinstance(v, bool) or not isinstance(v, int | float) or not 0.5 <= v < 1:
+                    raise InputError("must be a number in [0.5, 1)", file=file, field=fld,
+                                     value=v)
+                vals[k] = float(v)
+            elif k in ("draws", "tune", "chains", "seed", "cores", "smc_draws", "smc_chains"):
+                lo = 0 if k in ("seed", "tune") else 1
+                if isinstance(v, bool) or not isinstance(v, int) or v < lo:
+                    raise InputError(f"must be a whole number >= {lo}", file=file, field=fld,
+                                     value=v)
+                vals[k] = int(v)
+            elif k == "evidence":
+                vals[k] = bool(v)
+            elif k == "jitter":
+                vals[k] = float(v)
+            else:
+                raise InputError(f"unknown sampler setting; allowed: {list(_SAMPLER_KEYS)}",
+                                 file=file, field=fld, value=v)
+    if vals.get("chains", 4) < 2:
+        raise InputError("the gate needs at least 2 chains (R-hat compares chains)",
+                         file=file, field="chains", value=vals.get("chains"))
+    return SamplerSettings(**vals)
+
+
+# --------------------------------------------------------------------------- pytensor twin
+def pt_log10_retained(form: str, params: list[Any], tc: np.ndarray):
+    """pytensor twin of :func:`inversion.volatility.log10_retained` for one parameter set.
+
+    Parameters
+    ----------
+    form : str
+    params : list of scalar tensors, in the order of ``FORMS[form].params``
+    tc : ndarray, shape (n,) [K]
+
+    Returns
+    -------
+    TensorVariable, shape (n,)
+    """
+    import pytensor.tensor as pt
+
+    tc = pt.as_tensor_variable(np.asarray(tc, float))
+    if form == "kinked":
+        return pt.minimum(0.0, params[1] * (tc - params[0]))
+    if form == "power":
+        return pt.minimum(0.0, params[0] * pt.log10(tc) + params[1])
+    if form == "logistic":
+        z = (tc - params[0]) / params[1]
+        return -pt.softplus(-z) / np.log(10.0)
+    if form == "kinked-floor":
+        return pt.maximum(params[2], pt.minimum(0.0, params[1] * (tc - params[0])))
+    get_form(form)
+    raise AssertionError("unreachable")
+
+
+def _pt_core_split(a, p: Problem, D, iterations: int | None = None) -> dict[str, Any]:
+    """pytensor twin of :func:`inversion.model._core_split` for one bulk ``a`` (n,)."""
+    import pytensor.tensor as pt
+
+    if iterations is None:
+        iterations = CORE_UNROLL if p.mantle_Fe is not None else CORE_UNROLL_DIW
+    fe = p.fe_index
+    f = p.oxide_factor
+    is_fe = np.zeros(len(p.elements))
+    is_fe[fe] = 1.0
+    aw = p.atomic_weight
+    k = pt.as_tensor_variable(0.5)
+    D_fe = None
+    if p.dIW is not None:
+        D_fe = pt.as_tensor_variable(10 ** (-p.dIW / 2.0) * 50.0 / 55.0)
+    m = M_s = M_c = core = None
+    for _ in range(iterations):
+        if p.mantle_Fe is not None:
+            m = a / (1.0 + D * k) * (1.0 - is_fe)
+            s1 = pt.sum(m * f)
+            M_s = s1 / (1.0 - f[fe] * p.mantle_Fe)
+            m = m + is_fe * p.mantle_Fe * M_s
+        else:
+            Dk = D * (1.0 - is_fe) + is_fe * D_fe
+            m = a / (1.0 + Dk * k)
+            M_s = pt.sum(m * f)
+        core = a - m
+        M_c = pt.sum(core)
+        if p.dIW is not None:
+            mol_sil = pt.sum(m / (aw * p.cations))
+            mol_met = pt.sum(pt.maximum(core, 0.0) / aw)
+            mbar_sil = M_s / mol_sil
+            mbar_met = pt.switch(mol_met > 0, M_c / pt.maximum(mol_met, 1e-300), aw[fe])
+            D_fe = 10 ** (-p.dIW / 2.0) * mbar_sil / mbar_met
+        k = pt.maximum(M_c, 0.0) / M_s
+    return {"mantle": m, "core": core, "M_s": M_s, "M_c": M_c, "k": k}
+
+
+def model_log10N(p: Problem, w, vol: list[Any], lam, D, *, iterations: int | None = None
+                 ) -> dict[str, Any]:
+    """Symbolic forward model: log10 N of every element (n,), plus M_s, M_c and v.
+
+    Mirrors :func:`inversion.model.forward` for one parameter set; ``w`` (K,), ``vol`` a
+    list of scalars, ``lam`` a scalar, ``D`` (n,) tensors or arrays.
+    """
+    import pytensor.tensor as pt
+
+    logr = pt_log10_retained(p.volatility_form, vol, p.tc)
+    logr = logr - logr[p.ref_index]
+    a = pt.dot(w, p.Q) * 10.0 ** logr
+    split = _pt_core_split(a, p, D, iterations)
+    c_R = 1.0 / split["M_s"]
+    v = lam * p.c_late_R / ((1.0 - lam) * c_R + lam * p.c_late_R)
+    ratio = (1.0 - v) * split["mantle"] + v * p.q_late
+    log10N = pt.log10(ratio / p.q_ci)
+    return {"log10N": log10N, "M_s": split["M_s"], "M_c": split["M_c"], "v": v,
+            "cmf": split["M_c"] / (split["M_s"] + split["M_c"])}
+
+
+def _prior_rv(name: str, spec: dict[str, Any], **kw: Any):
+    import pymc as pm
+
+    pars = {k: v for k, v in spec.items() if k != "dist"}
+    return getattr(pm, spec["dist"])(name, **pars, **kw)
+
+
+def build_model(p: Problem, priors: dict[str, dict[str, Any]] | None = None, *,
+                y: np.ndarray | None = None, iterations: int | None = None):
+    """The PyMC model of problem ``p``.
+
+    Parameters
+    ----------
+    p : Problem
+    priors : dict, optional
+        Validated priors (:func:`check_priors`); defaults when omitted.
+    y : ndarray, optional
+        Observed log10 N of the fitted elements (defaults to ``p.y``; simulation studies
+        pass synthetic data here).
+    iterations : int, optional
+        Unrolled fixed-point iterations of the core split (default :data:`CORE_UNROLL`,
+        or :data:`CORE_UNROLL_DIW` for the redox split).
+
+    Returns
+    -------
+    pymc.Model
+        Named dims ``components``, ``elements`` (fitted), ``partitioned`` (elements whose
+        log10 D is a parameter), ``isotopes``. Free variables: ``w`` (when K > 1), the
+        volatility parameters by name, ``lam`` (with a late component), ``log10D``,
+        ``tau``; deterministics ``x`` (bulk mass fractions of the blocks), ``cmf``,
+        ``mu`` (predicted log10 N of the fitted elements).
+    """
+    import pymc as pm
+    import pytensor.tensor as pt
+
+    priors = priors or default_priors(p)
+    K = len(p.components)
+    part = _partitioned(p)
+    coords = {"components": list(p.components), "elements": p.fit_elements,
+              "partitioned": [p.elements[j] for j in part],
+              "isotopes": [d["name"] for d in p.isotopes]}
+    y = p.y if y is None else np.asarray(y, float)
+    form = get_form(p.volatility_form)
+    with pm.Model(coords=coords) as model:
+        if K > 1:
+            a = priors["w"]["a"]
+            a = np.full(K, a) if np.isscalar(a) else np.asarray(a, float)
+            w = pm.Dirichlet("w", a=a, dims="components")
+        else:
+            w = pt.ones(1)
+        vol = [_prior_rv(name, priors[name]) for name in form.params]
+        if p.late_name is not None:
+            lam = _prior_rv("lam", priors["lam"])
+        else:
+            lam = pt.as_tensor_variable(0.0)
+        D = pt.as_tensor_variable(np.asarray(p.D, float))
+        if part:
+            mus = [priors[f"log10D_{p.elements[j]}"] for j in part]
+            if all(s["dist"] == "Normal" for s in mus):
+                log10D = pm.Normal("log10D", mu=np.array([s["mu"] for s in mus]),
+                                   sigma=np.array([s["sigma"] for s in mus]),
+                                   dims="partitioned")
+            else:
+                log10D = pt.stack([_prior_rv(f"log10D_{p.elements[j]}", s)
+                                   for j, s in zip(part, mus, strict=True)])
+                pm.Deterministic("log10D", log10D, dims="partitioned")
+            D = pt.set_subtensor(D[np.array(part)], 10.0 ** log10D)
+        tau = _prior_rv("tau", priors["tau"])
+        out = model_log10N(p, w, vol, lam, D, iterations=iterations)
+        mu = pm.Deterministic("mu", out["log10N"][p.fit_index], dims="elements")
+        x = w / p.c_comp_R
+        if K > 1:
+            pm.Deterministic("x", x / pt.sum(x), dims="components")
+        pm.Deterministic("cmf", out["cmf"])
+        scale = pt.sqrt(p.sigma ** 2 + tau ** 2)
+        pm.StudentT(OBS_ELEMENTS, nu=STUDENT_NU, mu=mu, sigma=scale, observed=y,
+                    dims="elements")
+        if p.isotopes:
+            v = out["v"]
+            preds, vals, sigs = [], [], []
+            for iso in p.isotopes:
+                num = (1 - v) * pt.sum(w * iso["q_carrier"] * iso["eps"]) + v * iso[
+                    "q_late"] * iso["eps_late"]
+                den = (1 - v) * pt.sum(w * iso["q_carrier"]) + v * iso["q_late"]
+                preds.append(num / den)
+                vals.append(iso["value"])
+                sigs.append(iso["sigma"])
+            eps = pm.Deterministic("eps_pred", pt.stack(preds), dims="isotopes")
+            pm.Normal("eps_obs", mu=eps, sigma=np.array(sigs), observed=np.array(vals),
+                      dims="isotopes")
+    return model
+
+
+# --------------------------------------------------------------------------- sampling
+@dataclass(frozen=True)
+class Diagnostics:
+    """The diagnostics gate (Vehtari et al. 2021): thresholds, values, verdict."""
+
+    rhat_max: float
+    ess_bulk_min: float
+    divergences: int
+    passed: bool
+    worst_rhat: str
+    worst_ess: str
+    rhat_threshold: float = GATE_RHAT_MAX
+    ess_bulk_threshold: float = GATE_ESS_BULK_MIN
+    divergences_threshold: int = GATE_DIVERGENCES_MAX
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-ready view (``diagnostics.json``)."""
+        return {"rhat_max": self.rhat_max, "ess_bulk_min": self.ess_bulk_min,
+                "divergences": self.divergences, "passed": self.passed,
+                "worst_rhat_parameter": self.worst_rhat, "worst_ess_parameter": self.worst_ess,
+                "thresholds": {"rhat_max": self.rhat_threshold,
+                               "ess_bulk_min": self.ess_bulk_threshold,
+                               "divergences_max": self.divergences_threshold},
+                "reference": "vehtari2021"}
+
+    def messages(self) -> list[str]:
+        """One line per failed criterion, saying what to do about it."""
+        out = []
+        if not self.rhat_max <= self.rhat_threshold:
+            out.append(f"R-hat {self.rhat_max:.4f} > {self.rhat_threshold} ({self.worst_rhat}):"
+                       " chains disagree; run longer (--tune, --draws) or check the priors")
+        if not self.ess_bulk_min >= self.ess_bulk_threshold:
+            out.append(f"bulk ESS {self.ess_bulk_min:.0f} < {self.ess_bulk_threshold:.0f} "
+                       f"({self.worst_ess}): run more draws (--draws) or chains (--chains)")
+        if self.divergences > self.divergences_threshold:
+            out.append(f"{self.divergences} divergent transitions: raise [sampler] "
+                       "target_accept (e.g. 0.95) or reparameterise the priors")
+        return out
+
+
+@dataclass(frozen=True)
+class SampleResult:
+    """A posterior: the InferenceData, its gate, and what produced it."""
+
+    idata: Any
+    diagnostics: Diagnostics
+    settings: SamplerSettings
+    seeds: dict[str, Any]
+    priors: dict[str, dict[str, Any]]
+    start: dict[str, Any]
+    timing: dict[str, float]
+    log_marginal_likelihood: float | None = None
+    smc: dict[str, Any] = field(default_factory=dict)
+
+    @property
+    def passed(self) -> bool:
+        """Whether the run passed the diagnostics gate."""
+        return self.diagnostics.passed
+
+
+def parameter_names(model: Any) -> list[str]:
+    """Names of the model's free parameters (constrained space)."""
+    return [rv.name for rv in model.free_RVs]
+
+
+def _scale(spec: dict[str, Any]) -> float:
+    if spec["dist"] in ("Uniform",):
+        return spec["upper"] - spec["lower"]
+    return float(spec.get("sigma", 1.0))
+
+
+def _inside(value: float, spec: dict[str, Any]) -> float:
+    lo, hi = _support_of(spec["dist"], spec)
+    s = _scale(spec)
+    lo_i = lo + 1e-3 * s if math.isfinite(lo) else -math.inf
+    hi_i = hi - 1e-3 * s if math.isfinite(hi) else math.inf
+    if spec["dist"] in ("HalfNormal", "LogNormal"):
+        lo_i = 1e-3 * s if spec["dist"] == "HalfNormal" else 1e-6
+    return float(np.clip(value, lo_i, hi_i))
+
+
+def start_points(p: Problem, priors: dict[str, dict[str, Any]], fit: Any, chains: int,
+                 rng: np.random.Generator, jitter: float) -> list[dict[str, Any]]:
+    """Initial values per chain: the convex optimum, jittered, inside every prior.
+
+    ``jitter`` is the relative perturbation (a fraction of each prior's scale; weights are
+    mixed with a Dirichlet draw in that proportion). An infeasible or missing fit starts
+    from the prior centres.
+    """
+    form = get_form(p.volatility_form)
+    K = len(p.components)
+    ok = fit is not None and fit.status == "optimal"
+    part = _partitioned(p)
+    tau0 = 0.03
+    if ok:
+        r = fit.residuals
+        r = r[r["fitted"]]
+        excess = float(np.mean((r["observed"] - r["model"]) ** 2 - r["sigma"] ** 2))
+        tau0 = math.sqrt(max(excess, 0.0)) if excess > 0 else 0.02
+    out = []
+    for _ in range(chains):
+        iv: dict[str, Any] = {}
+        if K > 1:
+            w0 = np.array([fit.weights[c] for c in p.components]) if ok else np.full(K, 1 / K)
+            w = (1 - max(jitter, 1e-3)) * w0 + max(jitter, 1e-3) * rng.dirichlet(np.ones(K))
+            iv["w"] = w / w.sum()
+        for name in form.params:
+            spec = priors[name]
+            if ok:
+                c = fit.volatility[name]
+            else:
+                lo, hi = _support_of(spec["dist"], spec)
+                c = (lo + hi) / 2 if math.isfinite(hi) else spec.get("mu", spec.get("sigma"))
+            iv[name] = _inside(c + jitter * _scale(spec) * rng.normal(), spec)
+        if p.late_name is not None:
+            spec = priors["lam"]
+            lam0 = fit.late_accretion_fraction if ok else 0.5 * _support_of(spec["dist"],
+                                                                             spec)[1]
+            iv["lam"] = _inside(lam0 * (1 + jitter * rng.normal()), spec)
+        if part:
+            specs = [priors[f"log10D_{p.elements[j]}"] for j in part]
+            vals = [_inside(s.get("mu", np.log10(p.D[j])) + jitter * _scale(s) * rng.normal(), s)
+                    for j, s in zip(part, specs, strict=True)]
+            if all(s["dist"] == "Normal" for s in specs):
+                iv["log10D"] = np.array(vals)
+            else:
+                for j, v in zip(part, vals, strict=True):
+                    iv[f"log10D_{p.elements[j]}"] = v
+        iv["tau"] = _inside(tau0 * (1 + jitter * rng.normal()), priors["tau"])
+        out.append(iv)
+    return out
+
+
+def diagnose(idata: Any, names: list[str]) -> Diagnostics:
+    """Apply the gate to the free parameters ``names`` of a posterior."""
+    import arviz as az
+
+    rh = az.rhat(idata, var_names=names)
+    es = az.ess(idata, var_names=names, method="bulk")
+    rmax, rname = -math.inf, ""
+    emin, ename = math.inf, ""
+    for n in names:
+        r = np.atleast_1d(rh[n].values)
+        e = np.atleast_1d(es[n].values)
+        if r.size and np.nanmax(r) > rmax or not np.isfinite(r).all():
+            rmax = float(np.max(r)) if np.isfinite(r).all() else math.inf
+            rname = n
+        if e.size and (np.nanmin(e) < emin or not np.isfinite(e).all()):
+            emin = float(np.min(e)) if np.isfinite(e).all() else 0.0
+            ename = n
+    div = int(idata.sample_stats["diverging"].values.sum())
+    passed = rmax <= GATE_RHAT_MAX and emin >= GATE_ESS_BULK_MIN and div <= GATE_DIVERGENCES_MAX
+    return Diagnostics(rhat_max=float(rmax), ess_bulk_min=float(emin), divergences=div,
+                       passed=bool(passed), worst_rhat=rname, worst_ess=ename)
+
+
+def sample(p: Problem, settings: SamplerSettings | None = None, *,
+           priors: dict[str, dict[str, Any]] | None = None, fit: Any = None,
+           progress: bool = False, y: np.ndarray | None = None,
+           posterior_predictive: bool = True, log_likelihood: bool = True) -> SampleResult:
+    """Sample the posterior of problem ``p`` with NUTS and apply the diagnostics gate.
+
+    Parameters
+    ----------
+    p : Problem
+    settings : SamplerSettings, optional
+    priors : dict, optional
+        Validated priors (:func:`check_priors`).
+    fit : FitResult, optional
+        The convex optimum to start from (computed with
+        :func:`inversion.fit.fit_problem` when omitted).
+    progress : bool
+        Show PyMC's progress display.
+    y : ndarray, optional
+        Synthetic observations replacing ``p.y`` (simulation studies).
+    posterior_predictive, log_likelihood : bool
+        Add these groups to the InferenceData.
+
+    Returns
+    -------
+    SampleResult
+
+    Notes
+    -----
+    One seed makes one ``numpy.random.Generator``; it yields the per-chain NUTS seeds,
+    the start-point jitter, the posterior-predictive seed and the SMC seed, all recorded.
+    """
+    import pymc as pm
+
+    from .fit import fit_problem
+
+    settings = settings or SamplerSettings()
+    priors = priors or default_priors(p)
+    rng = np.random.default_rng(settings.seed)
+    chain_seeds = [int(s) for s in rng.integers(0, 2**31 - 1, size=settings.chains)]
+    ppc_seed = int(rng.integers(0, 2**31 - 1))
+    smc_seed = int(rng.integers(0, 2**31 - 1))
+    t0 = time.perf_counter()
+    if fit is None:
+        obs_p = p if y is None else _with_y(p, y)
+        fit = fit_problem(obs_p)
+    inits = start_points(p, priors, fit, settings.chains, rng, settings.jitter)
+    t_fit = time.perf_counter() - t0
+    model = build_model(p, priors, y=y)
+    cores = settings.cores or min(settings.chains, os.cpu_count() or 1)
+    t1 = time.perf_counter()
+    with model:
+        idata = pm.sample(draws=settings.draws, tune=settings.tune, chains=settings.chains,
+                          cores=cores, random_seed=chain_seeds, initvals=inits,
+                          init="adapt_diag", target_accept=settings.target_accept,
+                          progressbar=progress, compute_convergence_checks=False,
+                          idata_kwargs={"log_likelihood": log_likelihood})
+        t_nuts = time.perf_counter() - t1
+        if posterior_predictive:
+            pm.sample_posterior_predictive(idata, var_names=[OBS_ELEMENTS],
+                                           random_seed=ppc_seed, progressbar=False,
+                                           extend_inferencedata=True)
+    names = parameter_names(model)
+    diag = diagnose(idata, names)
+    lml = None
+    smc_info: dict[str, Any] = {}
+    if settings.evidence:
+        t2 = time.perf_counter()
+        with build_model(p, priors, y=y):
+            smc = pm.sample_smc(draws=settings.smc_draws, chains=settings.smc_chains,
+                                cores=1, random_seed=smc_seed, progressbar=progress,
+                                compute_convergence_checks=False)
+        per_chain = np.array([float(np.asarray(v)[-1]) if np.ndim(v) else float(v)
+                              for v in np.asarray(
+                                  smc.sample_stats["log_marginal_likelihood"].values,
+                                  dtype=object).ravel()])
+        lml = float(np.log(np.mean(np.exp(per_chain - per_chain.max()))) + per_chain.max())
+        smc_info = {"log_marginal_likelihood_per_chain": per_chain.tolist(),
+                    "draws": settings.smc_draws, "chains": settings.smc_chains,
+                    "seconds": time.perf_counter() - t2}
+    seeds = {"seed": settings.seed, "chain_seeds": chain_seeds, "posterior_predictive_seed":
+             ppc_seed, "smc_seed": smc_seed,
+             "generator": "numpy.random.default_rng(seed).integers(0, 2**31 - 1)"}
+    start = {"fit_status": getattr(fit, "status", None), "initial_values": inits}
+    timing = {"fit_seconds": t_fit, "sampling_seconds": t_nuts,
+              "total_seconds": time.perf_counter() - t0}
+    return SampleResult(idata=idata, diagnostics=diag, settings=settings, seeds=seeds,
+                        priors=priors, start=start, timing=timing,
+                        log_marginal_likelihood=lml, smc=smc_info)
+
+
+def _with_y(p: Problem, y: np.ndarray) -> Problem:
+    from dataclasses import replace
+
+    y_all = p.y_all.copy()
+    y_all[p.fit_index] = y
+    return replace(p, y=np.asarray(y, float), y_all=y_all)

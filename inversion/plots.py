@@ -1,0 +1,662 @@
+"""Figures of a result: the standard diagnostics of a composition inversion, our own style.
+
+Every function takes plain tables (the files a result folder holds, read with pandas) and
+returns a :class:`matplotlib.figure.Figure`; :func:`save_figure` writes PNG and SVG,
+:func:`png_bytes` and :func:`svg_text` give the bytes for embedding in a report. The
+backend is Agg (no display needed).
+
+Style: the Okabe & Ito (2008) colour-blind-safe palette; every class also has its own
+marker shape so that the figures read in grey scale as well.
+
+Figures
+-------
+- :func:`volatility_diagram`: log10 of the CI- and reference-normalised abundance against
+  the 50% condensation temperature (hot on the left), coloured by geochemical class, with
+  cosmochemical classes as labelled bands, uncertainty bars, the fitted pattern (and its
+  credible band when draws exist) and the flagged outliers labelled.
+- :func:`residuals_plot`: z-scores by element, ordered by condensation temperature.
+- :func:`weights_plot`: building-block weights, point estimates or posterior draws.
+- :func:`pair_plot`: pairwise posterior of the main parameters.
+- :func:`ranking_plot`: the hypothesis ranking (delta BIC / AIC / LOO).
+- :func:`planet_plot`: mantle oxides, core, CMF and molar ratios (with intervals).
+- :func:`heat_plot`: radiogenic heat production through time.
+- :func:`distribution_plot`: distributions of planet properties across a catalogue.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import io
+from collections.abc import Iterator, Mapping, Sequence
+from pathlib import Path
+
+import matplotlib
+
+matplotlib.use("Agg")
+
+import matplotlib.pyplot as plt  # noqa: E402
+import numpy as np  # noqa: E402
+import pandas as pd  # noqa: E402
+from matplotlib.figure import Figure  # noqa: E402
+
+import components  # noqa: E402
+
+from .volatility import log10_retained  # noqa: E402
+
+__all__ = ["OKABE_ITO", "CLASS_STYLE", "plot_style", "volatility_diagram", "residuals_plot",
+           "weights_plot", "pair_plot", "ranking_plot", "planet_plot", "heat_plot",
+           "distribution_plot", "save_figure", "png_bytes", "svg_text"]
+
+#: The eight colours of Okabe & Ito (2008, "Color Universal Design").
+OKABE_ITO = {
+    "black": "#000000", "orange": "#E69F00", "sky": "#56B4E9", "green": "#009E73",
+    "yellow": "#F0E442", "blue": "#0072B2", "vermillion": "#D55E00", "purple": "#CC79A7",
+}
+
+#: Geochemical class -> (colour, marker, legend label).
+CLASS_STYLE: dict[str, tuple[str, str, str]] = {
+    "lithophile": (OKABE_ITO["blue"], "o", "lithophile"),
+    "siderophile_moderate": (OKABE_ITO["orange"], "s", "moderately siderophile"),
+    "siderophile_highly": (OKABE_ITO["vermillion"], "D", "highly siderophile"),
+    "chalcophile": (OKABE_ITO["green"], "^", "chalcophile"),
+    "atmophile": (OKABE_ITO["purple"], "v", "atmophile"),
+}
+_UNKNOWN_STYLE = ("#777777", "x", "other")
+_SERIES = [OKABE_ITO[k] for k in ("blue", "orange", "green", "vermillion", "sky", "purple",
+                                  "yellow", "black")]
+_COSMO_ORDER = ("refractory", "main_component", "moderately_volatile", "highly_volatile")
+_COSMO_LABEL = {"refractory": "refractory", "main_component": "main\ncomponent",
+                "moderately_volatile": "moderately volatile",
+                "highly_volatile": "highly volatile"}
+
+_RC = {
+    "figure.dpi": 110, "savefig.dpi": 150, "font.size": 9, "axes.titlesize": 10,
+    "axes.labelsize": 9, "axes.spines.top": False, "axes.spines.right": False,
+    "axes.grid": True, "grid.color": "#e4e4e4", "grid.linewidth": 0.6,
+    "axes.axisbelow": True, "legend.frameon": False, "legend.fontsize": 8,
+    "xtick.labelsize": 8, "ytick.labelsize": 8, "svg.fonttype": "none",
+    "axes.prop_cycle": matplotlib.cycler(color=_SERIES),
+    "font.family": "DejaVu Sans",
+}
+
+
+@contextlib.contextmanager
+def plot_style() -> Iterator[None]:
+    """Context in which planetmix figures are drawn (rcParams kept local)."""
+    with matplotlib.rc_context(_RC):
+        yield
+
+
+def _element_props(elements: Sequence[str]) -> pd.DataFrame:
+    props = components.elements()
+    return props.reindex(list(elements))
+
+
+def _class_style(cls: object) -> tuple[str, str, str]:
+    return CLASS_STYLE.get(str(cls), _UNKNOWN_STYLE)
+
+
+def _cosmo_bands(tc_column: str = "tc50_lodders2003") -> list[tuple[str, float, float]]:
+    """Temperature ranges of the cosmochemical classes, from the element table.
+
+    Boundaries are placed midway between the hottest element of one class and the coolest
+    of the next hotter class.
+    """
+    props = components.elements()
+    col = tc_column if tc_column in props.columns else "tc50_lodders2003"
+    rng = props.groupby("cosmochemical_class")[col].agg(["min", "max"])
+    classes = [c for c in _COSMO_ORDER if c in rng.index]
+    bands = []
+    for i, c in enumerate(classes):
+        hi = 2100.0 if i == 0 else 0.5 * (rng.loc[classes[i - 1], "min"] + rng.loc[c, "max"])
+        lo = (0.0 if i == len(classes) - 1
+              else 0.5 * (rng.loc[c, "min"] + rng.loc[classes[i + 1], "max"]))
+        bands.append((c, float(lo), float(hi)))
+    return bands
+
+
+def volatility_diagram(
+    residuals: pd.DataFrame,
+    *,
+    reference: str = "Mg",
+    volatility: Mapping[str, object] | None = None,
+    volatility_draws: np.ndarray | None = None,
+    tc_table: str = "lodders2003",
+    title: str | None = None,
+    interval_label: str = "90% credible interval",
+) -> Figure:
+    """The volatility diagram (MODEL.md section 1).
+
+    Parameters
+    ----------
+    residuals : DataFrame
+        Columns ``element``, ``tc50`` [K], ``observed`` and ``model`` (log10 of the CI- and
+        reference-normalised abundance, dex), ``sigma`` [dex], ``fitted`` (bool), ``flag``
+        (text; non-empty and not ``not observed`` marks an outlier). Optional ``model_lo``
+        and ``model_hi`` (dex) give a credible interval of the model per element.
+    reference : str
+        The reference element R.
+    volatility : mapping, optional
+        ``{"form": name, <param>: value, ...}``: the fitted volatility curve is drawn,
+        shifted to the lithophile model level.
+    volatility_draws : ndarray (S, p), optional
+        Posterior draws of the volatility parameters: a credible band around the curve.
+    tc_table : str
+        Name of the condensation-temperature table (axis label and class bands).
+    title : str, optional
+    interval_label : str
+        Legend text of the model's interval.
+
+    Returns
+    -------
+    Figure
+    """
+    df = residuals.copy()
+    df = df[np.isfinite(df["tc50"].astype(float))]
+    props = _element_props(df["element"])
+    df["geo"] = props["geochemical_class"].to_numpy()
+    with plot_style():
+        fig, ax = plt.subplots(figsize=(11.5, 5.6), layout="constrained")
+        for cls, lo, hi in _cosmo_bands(f"tc50_{tc_table}"):
+            shade = "#f3f3f3" if _COSMO_ORDER.index(cls) % 2 == 0 else "#ffffff"
+            ax.axvspan(lo, hi, color=shade, zorder=0, lw=0)
+            ax.axvline(lo, color="#cfcfcf", lw=0.6, zorder=0)
+            ax.text(0.5 * (lo + min(hi, 1900)), 1.01, _COSMO_LABEL.get(cls, cls),
+                    transform=ax.get_xaxis_transform(), ha="center", va="bottom",
+                    fontsize=8, color="#555555")
+        ax.axhline(0.0, color="#888888", lw=0.8, ls=":", zorder=1)
+        model = df["model"].astype(float).to_numpy()
+        tc = df["tc50"].astype(float).to_numpy()
+        # the fitted pattern: per-element model values (and intervals when available)
+        if {"model_lo", "model_hi"} <= set(df.columns):
+            lo = df["model_lo"].astype(float).to_numpy()
+            hi = df["model_hi"].astype(float).to_numpy()
+            ax.vlines(tc, lo, hi, color="#9a9a9a", lw=5, alpha=0.55, zorder=2,
+                      label=f"model, {interval_label}")
+        ok = np.isfinite(model)
+        ax.scatter(tc[ok], model[ok], marker="_", s=140, color="black", lw=1.6, zorder=3,
+                   label="model (each element)")
+        if volatility is not None and volatility.get("form"):
+            _volatility_curve(ax, df, volatility, volatility_draws, interval_label)
+        obs = df["observed"].astype(float).to_numpy()
+        sig = df["sigma"].astype(float).to_numpy()
+        fitted = df["fitted"].astype(str).str.lower().isin(["true", "1"]).to_numpy()
+        seen: set[str] = set()
+        for i in np.flatnonzero(np.isfinite(obs)):
+            colour, marker, label = _class_style(df["geo"].iloc[i])
+            lab = label if label not in seen else None
+            seen.add(label)
+            ax.errorbar(tc[i], obs[i], yerr=sig[i], fmt=marker, ms=5.5, color=colour,
+                        mfc=colour if fitted[i] else "white", mec=colour, ecolor=colour,
+                        elinewidth=0.9, capsize=0, zorder=4, label=lab)
+            ax.annotate(df["element"].iloc[i], (tc[i], obs[i]), xytext=(3, 3),
+                        textcoords="offset points", fontsize=6.5, color="#333333", zorder=5)
+        flags = df.get("flag", pd.Series([""] * len(df), index=df.index)).fillna("")
+        out = np.flatnonzero(flags.astype(str).isin(["above model", "below model"]).to_numpy()
+                             & np.isfinite(obs))
+        for i in out:
+            ax.scatter(tc[i], obs[i], s=150, facecolors="none", edgecolors=OKABE_ITO["black"],
+                       lw=1.2, zorder=6)
+            z = df["z"].iloc[i] if "z" in df.columns else np.nan
+            ax.annotate(f"{df['element'].iloc[i]} ({float(z):+.1f}σ)", (tc[i], obs[i]),
+                        xytext=(8, -12 if obs[i] < model[i] else 8),
+                        textcoords="offset points", fontsize=7.5, fontweight="bold",
+                        color=OKABE_ITO["vermillion"], zorder=7)
+        if len(out):
+            ax.scatter([], [], s=110, facecolors="none", edgecolors="black",
+                       label="flagged outlier (|z| > 3)")
+        ax.scatter([], [], marker="o", s=25, facecolors="white", edgecolors="#555555",
+                   label="not fitted (open symbol)")
+        ax.set_xlim(1900, max(0.0, np.nanmin(tc) - 60) if tc.size else 0)
+        ax.set_xlabel(f"50% condensation temperature [K] ({tc_table}, 1e-4 bar; hot on the "
+                      "left)")
+        ax.set_ylabel(f"log10 (X/{reference})sample / (X/{reference})CI")
+        if title:
+            ax.set_title(title, loc="left", pad=18)
+        ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), borderaxespad=0.0)
+    return fig
+
+
+def _volatility_curve(ax, df: pd.DataFrame, volatility: Mapping[str, object],
+                      draws: np.ndarray | None, interval_label: str) -> None:
+    from .volatility import FORMS
+
+    form = str(volatility["form"])
+    if form not in FORMS:
+        return
+    names = FORMS[form].params
+    try:
+        params = np.array([[float(volatility[k]) for k in names]])
+    except (KeyError, TypeError, ValueError):
+        return
+    if not np.all(np.isfinite(params)):
+        return
+    grid = np.linspace(60.0, 1900.0, 400)
+    tc = df["tc50"].astype(float).to_numpy()
+    lith = (df["geo"] == "lithophile").to_numpy() & np.isfinite(df["model"].astype(float))
+    if not lith.any():
+        lith = np.isfinite(df["model"].astype(float)).to_numpy()
+    # shift so that the curve passes through the lithophile model points
+    curve_at = log10_retained(form, params, tc[lith])[0]
+    shift = float(np.median(df["model"].astype(float).to_numpy()[lith] - curve_at))
+    curve = log10_retained(form, params, grid)[0] + shift
+    if draws is not None and len(draws):
+        d = np.asarray(draws, dtype=float)
+        d = d[np.all(np.isfinite(d), axis=1)]
+        if len(d):
+            band = log10_retained(form, d, grid) + shift
+            lo, hi = np.percentile(band, [5, 95], axis=0)
+            ax.fill_between(grid, lo, hi, color=OKABE_ITO["sky"], alpha=0.35, lw=0, zorder=2,
+                            label=f"volatility trend, {interval_label}")
+    txt = ", ".join(f"{k} = {float(volatility[k]):.4g}" for k in names)
+    ax.plot(grid, curve, color=OKABE_ITO["sky"], lw=2.0, zorder=2.5,
+            label=f"volatility trend ({form}: {txt})")
+
+
+def residuals_plot(residuals: pd.DataFrame, *, title: str | None = None,
+                   threshold: float = 3.0) -> Figure:
+    """Residual z-scores by element, ordered by condensation temperature (hot first).
+
+    Parameters
+    ----------
+    residuals : DataFrame
+        Columns ``element``, ``tc50``, ``z`` (observed minus model over sigma) and
+        ``fitted``.
+    threshold : float
+        |z| above which an element is flagged (dashed lines).
+    """
+    df = residuals[np.isfinite(residuals["z"].astype(float))].copy()
+    df = df.sort_values("tc50", ascending=False, na_position="last")
+    geo = _element_props(df["element"])["geochemical_class"].to_numpy()
+    fitted = df["fitted"].astype(str).str.lower().isin(["true", "1"]).to_numpy()
+    z = df["z"].astype(float).to_numpy()
+    with plot_style():
+        fig, ax = plt.subplots(figsize=(max(7.0, 0.16 * len(df) + 1.5), 3.6),
+                               layout="constrained")
+        x = np.arange(len(df))
+        seen: set[str] = set()
+        for i in x:
+            colour, marker, label = _class_style(geo[i])
+            lab = label if label not in seen else None
+            seen.add(label)
+            ax.vlines(i, 0, z[i], color=colour, lw=1.4, alpha=0.8)
+            ax.plot(i, z[i], marker=marker, color=colour, mfc=colour if fitted[i] else "white",
+                    ms=5, ls="none", label=lab)
+        for t in (-threshold, threshold):
+            ax.axhline(t, color=OKABE_ITO["vermillion"], lw=0.9, ls="--")
+        ax.axhspan(-1, 1, color="#eeeeee", zorder=0)
+        ax.axhline(0, color="#555555", lw=0.8)
+        ax.set_xticks(x, df["element"], rotation=90, fontsize=7)
+        ax.set_xlim(-1, len(df))
+        ax.set_ylabel("z = (observed - model) / sigma")
+        ax.set_xlabel("element, ordered by 50% condensation temperature (hot on the left); "
+                      "open symbols not fitted")
+        if title:
+            ax.set_title(title, loc="left")
+        ax.legend(loc="best", ncol=3)
+    return fig
+
+
+def weights_plot(weights: Mapping[str, float], *,
+                 mass_fractions: Mapping[str, float] | None = None,
+                 draws: pd.DataFrame | None = None, basis: str = "Mg",
+                 title: str | None = None) -> Figure:
+    """Building-block weights: bars of the point estimates, or posterior distributions.
+
+    Parameters
+    ----------
+    weights : mapping
+        Component -> weight on the reference-element basis (the point estimate).
+    mass_fractions : mapping, optional
+        Component -> mass fraction of the bulk (a second bar per component).
+    draws : DataFrame, optional
+        Posterior draws, one column per component (weights): drawn as violins with the
+        5-95% interval.
+    basis : str
+        The reference element of the weights.
+    """
+    names = list(weights)
+    with plot_style():
+        fig, ax = plt.subplots(figsize=(max(4.5, 1.0 * len(names) + 2.5), 3.6),
+                               layout="constrained")
+        x = np.arange(len(names))
+        if draws is not None and len(draws) and set(names) <= set(draws.columns):
+            data = [np.asarray(draws[n], dtype=float) for n in names]
+            parts = ax.violinplot(data, positions=x, showextrema=False, widths=0.7)
+            for body, colour in zip(parts["bodies"], _SERIES, strict=False):
+                body.set_facecolor(colour)
+                body.set_alpha(0.45)
+            lo = [np.percentile(d, 5) for d in data]
+            hi = [np.percentile(d, 95) for d in data]
+            med = [np.median(d) for d in data]
+            ax.errorbar(x, med, yerr=[np.subtract(med, lo), np.subtract(hi, med)], fmt="o",
+                        color="black", ms=4, capsize=3, label="median, 5-95%")
+        else:
+            wv = [float(weights[n]) for n in names]
+            width = 0.38 if mass_fractions else 0.6
+            ax.bar(x - (width / 2 if mass_fractions else 0), wv, width,
+                   color=[_SERIES[i % len(_SERIES)] for i in range(len(names))],
+                   label=f"weight ({basis} basis)")
+            if mass_fractions:
+                mv = [float(mass_fractions.get(n, np.nan)) for n in names]
+                ax.bar(x + width / 2, mv, width, color="white", hatch="///",
+                       edgecolor=[_SERIES[i % len(_SERIES)] for i in range(len(names))],
+                       label="mass fraction")
+            for i, v in enumerate(wv):
+                ax.text(x[i] - (width / 2 if mass_fractions else 0), v + 0.01, f"{v:.3f}",
+                        ha="center", va="bottom", fontsize=7.5)
+        ax.set_xticks(x, names)
+        ax.set_ylim(0, 1.08)
+        ax.set_ylabel("fraction")
+        if title:
+            ax.set_title(title, loc="left")
+        ax.legend(loc="upper right")
+    return fig
+
+
+def pair_plot(draws: pd.DataFrame, *, columns: Sequence[str] | None = None,
+              max_params: int = 6, max_points: int = 2000,
+              truth: Mapping[str, float] | None = None) -> Figure:
+    """Pairwise posterior of the main parameters (histograms on the diagonal).
+
+    Parameters
+    ----------
+    draws : DataFrame
+        One row per posterior draw, one column per parameter.
+    columns : sequence of str, optional
+        The parameters (default: the first ``max_params`` numeric columns that vary).
+    truth : mapping, optional
+        Known values to mark (simulate-then-recover checks).
+    """
+    if columns is None:
+        num = draws.select_dtypes("number")
+        columns = [c for c in num.columns if np.nanstd(num[c].to_numpy()) > 0][:max_params]
+    columns = list(columns)
+    n = len(columns)
+    data = draws[columns].to_numpy(dtype=float)
+    if len(data) > max_points:
+        idx = np.random.default_rng(0).choice(len(data), max_points, replace=False)
+        data_s = data[idx]
+    else:
+        data_s = data
+    with plot_style():
+        size = max(3.5, 1.7 * n)
+        fig, axes = plt.subplots(n, n, figsize=(size, size), squeeze=False,
+                                 layout="constrained")
+        for i in range(n):
+            for j in range(n):
+                ax = axes[i, j]
+                ax.grid(False)
+                if j > i:
+                    ax.set_axis_off()
+                    continue
+                if i == j:
+                    ax.hist(data[:, i], bins=30, color=OKABE_ITO["blue"], alpha=0.75)
+                    ax.set_yticks([])
+                    q = np.nanpercentile(data[:, i], [5, 50, 95])
+                    for v, ls in zip(q, (":", "-", ":"), strict=True):
+                        ax.axvline(v, color="black", lw=0.8, ls=ls)
+                    ax.set_title(f"{columns[i]} = {q[1]:.3g} [{q[0]:.3g}, {q[2]:.3g}]",
+                                 fontsize=7)
+                else:
+                    ax.scatter(data_s[:, j], data_s[:, i], s=2, alpha=0.3,
+                               color=OKABE_ITO["blue"], rasterized=True)
+                if truth:
+                    if columns[j] in truth:
+                        ax.axvline(truth[columns[j]], color=OKABE_ITO["vermillion"], lw=1)
+                    if i != j and columns[i] in truth:
+                        ax.axhline(truth[columns[i]], color=OKABE_ITO["vermillion"], lw=1)
+                if i == n - 1:
+                    ax.set_xlabel(columns[j], fontsize=8)
+                else:
+                    ax.set_xticklabels([])
+                if j == 0 and i != 0:
+                    ax.set_ylabel(columns[i], fontsize=8)
+                elif i != j:
+                    ax.set_yticklabels([])
+    return fig
+
+
+def ranking_plot(table: pd.DataFrame, *, criterion: str | None = None, top: int = 15,
+                 title: str | None = None) -> Figure:
+    """The hypothesis ranking as a chart: difference of the criterion from the best.
+
+    Parameters
+    ----------
+    table : DataFrame
+        One row per hypothesis with ``components``, ``status`` and the criterion column
+        (``bic``, ``aic`` or ``elpd_loo``; with ``elpd_loo``, higher is better and ``se``
+        or ``dse`` columns, when present, give error bars).
+    criterion : str, optional
+        Default: ``elpd_loo`` when present, else ``bic``.
+    top : int
+        Hypotheses shown.
+    """
+    t = table.copy()
+    if criterion is None:
+        criterion = next(c for c in ("elpd_loo", "bic", "aic", "chi2") if c in t.columns)
+    higher_better = criterion.startswith("elpd")
+    status = t["status"].astype(str) if "status" in t.columns else pd.Series(
+        ["optimal"] * len(t), index=t.index)
+    vals = pd.to_numeric(t[criterion], errors="coerce")
+    ok = (status == "optimal") & np.isfinite(vals)
+    best = vals[ok].max() if higher_better else vals[ok].min()
+    delta = (best - vals) if higher_better else (vals - best)
+    t = t.assign(_delta=delta, _ok=ok)
+    t = pd.concat([t[t["_ok"]].sort_values("_delta"), t[~t["_ok"]]]).head(top)
+    labels = t["components"].astype(str).str.replace("+", " + ", regex=False).tolist()
+    with plot_style():
+        fig, ax = plt.subplots(figsize=(7.5, 0.32 * len(t) + 1.4), layout="constrained")
+        y = np.arange(len(t))[::-1]
+        d = t["_delta"].to_numpy(dtype=float)
+        finite_max = np.nanmax(d[t["_ok"].to_numpy()]) if t["_ok"].any() else 1.0
+        for yi, di, okk in zip(y, d, t["_ok"], strict=True):
+            if okk:
+                colour = (OKABE_ITO["green"] if di <= 2 else OKABE_ITO["orange"] if di <= 10
+                          else OKABE_ITO["vermillion"])
+                ax.barh(yi, max(di, finite_max * 0.004), color=colour, height=0.7)
+                ax.text(max(di, 0) + finite_max * 0.01, yi, f"{di:.1f}", va="center",
+                        fontsize=7)
+            else:
+                ax.barh(yi, finite_max or 1.0, color="white", edgecolor="#999999",
+                        hatch="xx", height=0.7)
+                ax.text(finite_max * 0.02, yi, "infeasible", va="center", fontsize=7.5,
+                        color="#444444")
+        if higher_better:
+            for col in ("dse", "se"):
+                if col in t.columns:
+                    e = pd.to_numeric(t[col], errors="coerce").to_numpy()
+                    ax.errorbar(d, y, xerr=e, fmt="none", ecolor="black", capsize=2, lw=0.8)
+                    break
+        ax.set_yticks(y, labels, fontsize=8)
+        name = {"bic": "BIC", "aic": "AIC", "chi2": "chi2",
+                "elpd_loo": "elpd (PSIS-LOO)"}.get(criterion, criterion)
+        ax.set_xlabel(f"Δ{name} from the best hypothesis (0 = best; "
+                      "green ≤ 2, orange ≤ 10, red > 10)")
+        ax.grid(axis="y", visible=False)
+        if title:
+            ax.set_title(title, loc="left")
+    return fig
+
+
+def _intervals(df: pd.DataFrame) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    v = df["value"].to_numpy(dtype=float)
+    if {"lo", "hi"} <= set(df.columns):
+        lo = df["lo"].to_numpy(dtype=float)
+        hi = df["hi"].to_numpy(dtype=float)
+        return v, np.clip(v - lo, 0, None), np.clip(hi - v, 0, None)
+    z = np.zeros_like(v)
+    return v, z, z
+
+
+def planet_plot(planet: pd.DataFrame, *, reference: Mapping[str, tuple[float, str]] | None = None,
+                title: str | None = None) -> Figure:
+    """Whole-planet composition: mantle oxides, core, CMF and molar ratios.
+
+    Parameters
+    ----------
+    planet : DataFrame
+        Tidy table with ``reservoir`` (mantle, core, ratio, planet), ``species``, ``value``,
+        ``unit`` and optionally ``lo``/``hi`` (an interval, same unit).
+    reference : mapping, optional
+        Species -> (value, label) of known values to mark (e.g. the Earth's CMF).
+    """
+    reference = dict(reference or {})
+    mant = planet[(planet["reservoir"] == "mantle") & (planet["unit"] == "wt%")]
+    mant = mant.sort_values("value", ascending=False)
+    core = planet[(planet["reservoir"] == "core")].sort_values("value", ascending=False)
+    core = core.head(8)
+    rat = planet[planet["reservoir"] == "ratio"]
+    cmf = planet[planet["species"] == "core_mass_fraction"]
+    with plot_style():
+        fig, axs = plt.subplots(2, 2, figsize=(10, 6.4), layout="constrained",
+                                gridspec_kw={"width_ratios": [1.5, 1]})
+        for ax, df, what, colour in ((axs[0, 0], mant, "mantle (silicate) oxides, wt%",
+                                      OKABE_ITO["blue"]),
+                                     (axs[0, 1], core, "core, wt% (leading elements)",
+                                      OKABE_ITO["orange"])):
+            if len(df):
+                v, lo, hi = _intervals(df)
+                x = np.arange(len(df))
+                ax.bar(x, v, color=colour, alpha=0.85)
+                if np.any(lo + hi > 0):
+                    ax.errorbar(x, v, yerr=[lo, hi], fmt="none", ecolor="black", capsize=2,
+                                lw=0.8)
+                ax.set_yscale("log")
+                ax.set_xticks(x, df["species"], rotation=60, fontsize=7.5)
+                for xi, vi in zip(x, v, strict=True):
+                    ax.text(xi, vi * 1.15, f"{vi:.3g}", ha="center", fontsize=6.5)
+            else:
+                ax.text(0.5, 0.5, "no values", transform=ax.transAxes, ha="center")
+            ax.set_title(what, loc="left")
+        ax = axs[1, 0]
+        if len(rat):
+            v, lo, hi = _intervals(rat)
+            y = np.arange(len(rat))[::-1]
+            ax.errorbar(v, y, xerr=[lo, hi], fmt="o", color=OKABE_ITO["green"], capsize=3)
+            ax.set_yticks(y, rat["species"])
+            for yi, vi, sp in zip(y, v, rat["species"], strict=True):
+                ax.text(vi, yi + 0.25, f"{vi:.3f}", ha="center", fontsize=7)
+                if sp in reference:
+                    ax.plot(reference[sp][0], yi, marker="*", ms=10, color="black",
+                            ls="none")
+        ax.set_title("molar ratios (★ reference value where given)", loc="left")
+        ax = axs[1, 1]
+        if len(cmf):
+            v, lo, hi = _intervals(cmf)
+            ax.errorbar([0], v[:1], yerr=[lo[:1], hi[:1]], fmt="o", ms=8,
+                        color=OKABE_ITO["vermillion"], capsize=5, label="this result")
+            ax.text(0.08, v[0], f"{v[0]:.3f}", va="center")
+            if "core_mass_fraction" in reference:
+                rv, rl = reference["core_mass_fraction"]
+                ax.axhline(rv, color="black", ls="--", lw=1, label=rl)
+            ax.set_xlim(-0.5, 1)
+            ax.set_xticks([])
+            ax.set_ylim(0, max(0.5, float(np.nanmax(v + hi)) * 1.2))
+            ax.legend(loc="upper right")
+        ax.set_title("core mass fraction", loc="left")
+        if title:
+            fig.suptitle(title, x=0.01, ha="left")
+    return fig
+
+
+def heat_plot(heat: pd.DataFrame, *, unit: str = "TW", title: str | None = None) -> Figure:
+    """Radiogenic heat production through time.
+
+    Parameters
+    ----------
+    heat : DataFrame
+        ``time_Gyr_ago`` and one column per isotope (``238U``, ``235U``, ``232Th``,
+        ``40K``) in ``unit``; a ``total`` column is drawn in black; optional
+        ``total_lo``/``total_hi`` give an interval.
+    """
+    t = heat["time_Gyr_ago"].to_numpy(dtype=float)
+    iso = [c for c in heat.columns if c in ("238U", "235U", "232Th", "40K")]
+    with plot_style():
+        fig, ax = plt.subplots(figsize=(6.5, 3.8), layout="constrained")
+        for c, colour in zip(iso, (OKABE_ITO["blue"], OKABE_ITO["sky"], OKABE_ITO["green"],
+                                   OKABE_ITO["orange"]), strict=False):
+            ax.plot(t, heat[c], color=colour, lw=1.6, label=c)
+        if "total" in heat.columns:
+            if {"total_lo", "total_hi"} <= set(heat.columns):
+                ax.fill_between(t, heat["total_lo"], heat["total_hi"], color="#bbbbbb",
+                                alpha=0.5, lw=0, label="total, 90% interval")
+            ax.plot(t, heat["total"], color="black", lw=2.0, label="total")
+            ax.text(t[0], float(heat["total"].iloc[0]), f" today {heat['total'].iloc[0]:.3g} "
+                    f"{unit}", va="bottom", fontsize=8)
+        ax.set_xlim(t.max(), t.min())
+        ax.set_xlabel("time before present [Gyr]")
+        ax.set_ylabel(f"heat production [{unit}]")
+        if title:
+            ax.set_title(title, loc="left")
+        ax.legend(loc="upper right")
+    return fig
+
+
+def distribution_plot(values: pd.DataFrame, *, columns: Sequence[str] | None = None,
+                      reference: Mapping[str, tuple[float, str]] | None = None,
+                      title: str | None = None) -> Figure:
+    """Histograms of planet properties across a catalogue (one panel per property).
+
+    Parameters
+    ----------
+    values : DataFrame
+        One row per star (or draw), one column per property.
+    reference : mapping, optional
+        Column -> (value, label) drawn as a dashed line (e.g. the Earth).
+    """
+    cols = list(columns or values.select_dtypes("number").columns)
+    reference = dict(reference or {})
+    with plot_style():
+        fig, axs = plt.subplots(1, len(cols), figsize=(3.3 * len(cols), 3.2), squeeze=False,
+                                layout="constrained")
+        for ax, c, colour in zip(axs[0], cols, _SERIES, strict=False):
+            v = pd.to_numeric(values[c], errors="coerce").dropna().to_numpy()
+            if v.size:
+                ax.hist(v, bins=min(40, max(8, v.size // 5)), color=colour, alpha=0.8)
+                q = np.percentile(v, [5, 50, 95])
+                ax.set_title(f"{c}\nmedian {q[1]:.3g} [{q[0]:.3g}, {q[2]:.3g}]", fontsize=8)
+            else:
+                ax.set_title(c, fontsize=8)
+            if c in reference:
+                ax.axvline(reference[c][0], color="black", ls="--", lw=1,
+                           label=reference[c][1])
+                ax.legend(loc="upper right")
+            ax.set_yticks([])
+        if title:
+            fig.suptitle(title, x=0.01, ha="left")
+    return fig
+
+
+def save_figure(fig: Figure, stem: str | Path, formats: Sequence[str] = ("png", "svg")
+                ) -> list[Path]:
+    """Write a figure as ``stem.png`` and ``stem.svg`` (or the given formats)."""
+    paths = []
+    for fmt in formats:
+        path = Path(f"{stem}.{fmt}")
+        fig.savefig(path, format=fmt, metadata=_metadata(fmt))
+        paths.append(path)
+    return paths
+
+
+def _metadata(fmt: str) -> dict[str, str | None]:
+    # no timestamps: the same result gives the same file
+    if fmt == "svg":
+        return {"Date": None}
+    if fmt == "png":
+        return {"Software": "planetmix (matplotlib)"}
+    return {}
+
+
+def png_bytes(fig: Figure, *, dpi: int = 110) -> bytes:
+    """The figure as PNG bytes."""
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", dpi=dpi, metadata=_metadata("png"))
+    return buf.getvalue()
+
+
+def svg_text(fig: Figure) -> str:
+    """The figure as SVG text (fonts as text, no external references)."""
+    buf = io.StringIO()
+    fig.savefig(buf, format="svg", metadata=_metadata("svg"))
+    return buf.getvalue()

@@ -1,0 +1,795 @@
+"""One self-contained HTML report of a result folder.
+
+:func:`build_report` reads a folder written by ``planetmix fit``, ``rank``, ``sample``,
+``star`` or a batch run, recognises its kind by the files it holds (:func:`detect_kind`),
+draws the figures (:mod:`inversion.plots`) and writes ``report.html`` into the folder: the
+figures embedded as base64 PNG, the key numbers with their uncertainties, the diagnostics,
+the provenance (reference tables, sources, versions, settings) and the limits of the model.
+The file needs no network access: it loads nothing from outside itself.
+"""
+
+from __future__ import annotations
+
+import base64
+import html
+import json
+import math
+import os
+import tempfile
+import tomllib
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from .exceptions import InputError
+
+__all__ = ["REPORT_KINDS", "detect_kind", "build_report", "Report", "render_html",
+           "MODEL_LIMITS"]
+
+#: Result kinds and the files that identify them (all must be present).
+REPORT_KINDS: dict[str, tuple[str, ...]] = {
+    "sample": ("sample.json",),
+    "star": ("planet.json",),
+    "batch": ("batch.json",),
+    "fit": ("fit.json", "residuals.csv"),
+    "rank": ("ranking.csv",),
+}
+
+#: What the model leaves out; printed in every report.
+MODEL_LIMITS: tuple[str, ...] = (
+    "Building blocks are the mean compositions of meteorite groups; the real accreted "
+    "material may have differed from any sampled group, and the group means carry their "
+    "own analytical and sampling spread.",
+    "Volatile depletion is a single smooth function of the 50% condensation temperature "
+    "(one declared form); condensation temperatures depend on the nebular pressure and "
+    "composition (1e-4 bar, solar gas here), and processes other than condensation "
+    "(evaporation, degassing, late volatile delivery) are not separated.",
+    "Core formation is a single-stage mass balance with effective metal/silicate partition "
+    "coefficients; pressure, temperature and redox paths of a growing planet are not "
+    "modelled, and the light-element content of the core follows from those coefficients.",
+    "Late accretion adds one component after core formation; its mass is read from the "
+    "highly siderophile elements and inherits their partitioning assumptions.",
+    "Isotope anomalies are mixed linearly by the carrier element's mass; lithophile carriers "
+    "record the whole accretion, and the building blocks' isotope values are group means.",
+    "Uncertainties of a convex fit are not computed (point estimates); credible intervals "
+    "come from a Bayesian run (planetmix sample).",
+)
+
+
+@dataclass
+class Report:
+    """What a report shows (built per result kind, rendered by :func:`render_html`)."""
+
+    title: str
+    kind: str
+    folder: str
+    key_numbers: list[tuple[str, str, str]] = field(default_factory=list)
+    figures: list[tuple[str, str, Any]] = field(default_factory=list)
+    tables: list[tuple[str, str]] = field(default_factory=list)
+    diagnostics: list[tuple[str, str, str]] = field(default_factory=list)
+    findings: list[str] = field(default_factory=list)
+    provenance: dict[str, Any] = field(default_factory=dict)
+    limits: list[str] = field(default_factory=lambda: list(MODEL_LIMITS))
+    notes: list[str] = field(default_factory=list)
+
+
+# --------------------------------------------------------------------------- reading
+def detect_kind(folder: str | Path) -> str:
+    """Recognise a result folder by the files it holds.
+
+    Raises
+    ------
+    InputError
+        When the folder does not exist or holds no planetmix result.
+    """
+    folder = Path(folder)
+    if not folder.is_dir():
+        raise InputError("result folder not found", file=str(folder))
+    for kind, files in REPORT_KINDS.items():
+        if all((folder / f).exists() for f in files):
+            return kind
+    if any(folder.glob("*.parquet")) or any(folder.glob("*/*.parquet")):
+        if (folder / "summary.csv").exists() or (folder / "batch_summary.csv").exists():
+            return "batch"
+    known = "; ".join(f"{k}: {', '.join(v)}" for k, v in REPORT_KINDS.items())
+    raise InputError(f"unknown result folder: it holds none of the files of a planetmix "
+                     f"result ({known})", file=str(folder))
+
+
+def _read_json(path: Path) -> dict[str, Any]:
+    try:
+        return json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, json.JSONDecodeError) as err:
+        raise InputError(f"cannot read result file: {err}", file=str(path)) from err
+
+
+def _read_csv(path: Path) -> pd.DataFrame:
+    try:
+        return pd.read_csv(path, keep_default_na=False, na_values=[""])
+    except (OSError, pd.errors.ParserError, pd.errors.EmptyDataError) as err:
+        raise InputError(f"cannot read result table: {err}", file=str(path)) from err
+
+
+def _fmt(v: Any, digits: int = 4) -> str:
+    try:
+        f = float(v)
+    except (TypeError, ValueError):
+        return str(v)
+    if not math.isfinite(f):
+        return "n/a"
+    if f != 0 and (abs(f) < 1e-3 or abs(f) >= 1e5):
+        return f"{f:.{digits - 1}e}"
+    return f"{f:.{digits}g}"
+
+
+def _planet_mass(fitjson: dict[str, Any]) -> float | None:
+    la = (fitjson.get("findings") or {}).get("late_accretion") or {}
+    try:
+        m = float(la["mass_kg"]) / float(la["fraction_of_planet"])
+        if math.isfinite(m) and m > 0:
+            return m
+    except (KeyError, TypeError, ValueError, ZeroDivisionError):
+        pass
+    case_file = (fitjson.get("provenance") or {}).get("case_file")
+    if case_file and Path(case_file).exists():
+        try:
+            raw = tomllib.loads(Path(case_file).read_text(encoding="utf-8"))
+            m = raw.get("target", {}).get("planet_mass_kg")
+            return float(m) if m else None
+        except (OSError, tomllib.TOMLDecodeError, TypeError, ValueError):
+            return None
+    return None
+
+
+def _heat_table(mantle_ppm: dict[str, np.ndarray], mantle_mass_kg: np.ndarray | float | None
+                ) -> tuple[pd.DataFrame, str] | None:
+    """Heat production history (per isotope and total) from mantle U, Th, K (ppm)."""
+    from . import heat
+
+    if not all(k in mantle_ppm for k in ("U", "Th", "K")):
+        return None
+    times = np.linspace(0.0, 4.5, 46)
+    c = {k: np.atleast_1d(np.asarray(v, float)) * 1e-6 for k, v in mantle_ppm.items()}
+    if mantle_mass_kg is not None:
+        scale, unit = np.atleast_1d(np.asarray(mantle_mass_kg, float)) / 1e12, "TW"
+    else:
+        scale, unit = np.array([1e12]), "pW/kg of mantle"
+    out = {"time_Gyr_ago": times}
+    for iso in heat.ISOTOPES:
+        decay = np.exp(math.log(2.0) * times / iso.half_life_gyr)
+        per = (c[iso.element][:, None] * heat.isotope_mass_fraction(iso.name) * iso.w_per_kg
+               * decay[None, :]) * scale[:, None]
+        out[iso.name] = np.median(per, axis=0)
+    tot = heat.heat_history(c["U"], c["Th"], c["K"], times) * scale[:, None]
+    out["total"] = np.median(tot, axis=0)
+    if tot.shape[0] > 1:
+        out["total_lo"], out["total_hi"] = np.percentile(tot, [5, 95], axis=0)
+    return pd.DataFrame(out), unit
+
+
+def _mantle_heat_ppm(planet: pd.DataFrame) -> dict[str, float]:
+    m = planet[planet["reservoir"] == "mantle"].set_index("species")
+    out = {}
+    for el in ("U", "Th"):
+        if el in m.index:
+            out[el] = float(m.loc[el, "value"]) if m.loc[el, "unit"] == "ppm" else float(
+                m.loc[el, "value"]) * 1e4
+    if "K2O" in m.index:
+        out["K"] = float(m.loc["K2O", "value"]) * 1e4 * 2 * 39.0983 / 94.196
+    elif "K" in m.index:
+        out["K"] = float(m.loc["K", "value"])
+    return out
+
+
+def _sources_html(prov: dict[str, Any]) -> list[str]:
+    return [f"[{k}] {v}" for k, v in sorted((prov.get("sources") or {}).items())]
+
+
+# --------------------------------------------------------------------------- fit
+def _fit_report(folder: Path) -> Report:
+    from . import plots
+
+    d = _read_json(folder / "fit.json")
+    resid = _read_csv(folder / "residuals.csv")
+    prov = d.get("provenance") or {}
+    ref = prov.get("reference_element", "Mg")
+    rep = Report(title=d.get("title", folder.name), kind="fit", folder=str(folder),
+                 provenance=prov)
+    status = d.get("status", "?")
+    rep.key_numbers.append(("status", status, ""))
+    if status != "optimal":
+        for r in d.get("reasons", []):
+            rep.diagnostics.append(("infeasible", r, "the hypothesis cannot meet its "
+                                    "constraints; this is an answer, not a poor fit"))
+    for k, v in (d.get("weights") or {}).items():
+        mf = (d.get("mass_fractions") or {}).get(k)
+        rep.key_numbers.append((f"weight of {k} ({ref} basis)", _fmt(v),
+                                f"mass fraction {_fmt(mf)}"))
+    vol = dict(d.get("volatility") or {})
+    for k, v in vol.items():
+        if k != "form":
+            rep.key_numbers.append((f"volatility {k} ({vol.get('form')})", _fmt(v), ""))
+    rep.key_numbers.append(("late accretion, fraction of mantle",
+                            _fmt(d.get("late_accretion_fraction")),
+                            f"component {d.get('late_accretion_component')}"))
+    la = (d.get("findings") or {}).get("late_accretion") or {}
+    if la.get("fraction_of_planet") is not None:
+        rep.key_numbers.append(("late accretion, fraction of planet",
+                                _fmt(la["fraction_of_planet"]),
+                                f"{_fmt(la.get('mass_kg'))} kg"))
+    rep.key_numbers.append(("core mass fraction", _fmt(d.get("core_mass_fraction")), ""))
+    for k, v in (d.get("isotopes_predicted") or {}).items():
+        rep.key_numbers.append((f"predicted {k}", _fmt(v), ""))
+    rep.diagnostics += [
+        ("chi2", _fmt(d.get("chi2")), f"on {d.get('n_elements')} fitted elements, "
+         f"{d.get('n_params')} nonlinear parameters"),
+        ("AIC / BIC", f"{_fmt(d.get('aic'))} / {_fmt(d.get('bic'))}", "AIC = chi2 + 2p, "
+         "BIC = chi2 + p ln n"),
+    ]
+    n_fit = int(d.get("n_elements") or 0)
+    if n_fit:
+        rep.diagnostics.append(("reduced chi2", _fmt(float(d.get("chi2", math.nan))
+                                                      / max(n_fit - int(d.get("n_params", 0)),
+                                                            1)),
+                                "above 1: scatter beyond the stated uncertainties "
+                                "(the idealised model is not exact)"))
+    rep.findings = _findings_lines(d.get("findings") or {})
+    rep.notes = list(d.get("notes") or [])
+    title = rep.title
+    if len(resid):
+        ctab = prov.get("condensation_table", "lodders2003")
+        rep.figures.append(("Volatility diagram", "Observed (symbols, 1-sigma bars) and "
+                            "modelled (black ticks) abundances, CI- and "
+                            f"{ref}-normalised, against the 50% condensation temperature; "
+                            "the blue line is the fitted volatility trend through the "
+                            "lithophile model points.",
+                            lambda: plots.volatility_diagram(resid, reference=ref,
+                                                             volatility=vol, tc_table=ctab,
+                                                             title=title)))
+        rep.figures.append(("Residuals by element", "z = (observed - model)/sigma, elements "
+                            "ordered by condensation temperature.",
+                            lambda: plots.residuals_plot(resid, title=title)))
+    if status == "optimal" and d.get("weights"):
+        rep.figures.append(("Building-block weights", "Point estimates of the convex fit.",
+                            lambda: plots.weights_plot(d["weights"],
+                                                       mass_fractions=d.get("mass_fractions"),
+                                                       basis=ref)))
+    if (folder / "planet.csv").exists():
+        planet = _read_csv(folder / "planet.csv")
+        rep.figures.append(("Whole planet", "Mantle oxides, core composition, molar ratios "
+                            "and core mass fraction of the best fit.",
+                            lambda: plots.planet_plot(planet)))
+        rep.tables.append(("Planet (ratios and CMF)", _planet_summary_html(planet)))
+        ht = _heat_table(_mantle_heat_ppm(planet), _mantle_mass(d, planet))
+        if ht is not None:
+            table, unit = ht
+            rep.figures.append(("Radiogenic heat production", "From the mantle U, Th and K "
+                                "of the fit (Turcotte & Schubert 2014, Table 4.2).",
+                                lambda: plots.heat_plot(table, unit=unit)))
+            rep.key_numbers.append((f"mantle heat production today [{unit}]",
+                                    _fmt(table["total"].iloc[0]), "238U+235U+232Th+40K"))
+    if len(resid):
+        flagged = resid[resid["flag"].fillna("").isin(["above model", "below model"])]
+        if len(flagged):
+            rep.tables.append(("Elements off the fitted trend (|z| > 3)", _table_html(
+                flagged[["element", "tc50", "observed", "model", "sigma", "z", "fitted",
+                         "flag"]])))
+    return rep
+
+
+def _mantle_mass(d: dict[str, Any], planet: pd.DataFrame) -> float | None:
+    m = _planet_mass(d)
+    if m is None:
+        return None
+    cmf = planet.loc[planet["species"] == "core_mass_fraction", "value"]
+    c = float(cmf.iloc[0]) if len(cmf) else float(d.get("core_mass_fraction") or math.nan)
+    return m * (1.0 - c) if math.isfinite(c) else None
+
+
+def _findings_lines(f: dict[str, Any]) -> list[str]:
+    out = []
+    rl = f.get("refractory_lithophile_level")
+    if rl:
+        out.append(f"Refractory lithophile elements sit at {_fmt(rl['factor'], 3)} x CI "
+                   f"(log10 {_fmt(rl['log10_relative_to_CI'], 3)} ± "
+                   f"{_fmt(rl['uncertainty_dex'], 2)} dex; {rl.get('basis', '')}).")
+    vs = f.get("volatility_slopes") or {}
+    for name in ("lithophile", "chalcophile_siderophile"):
+        s = vs.get(name)
+        if s:
+            out.append(f"Volatility slope of the {name.replace('_', '/')} moderately and "
+                       f"highly volatile elements: {_fmt(s['slope_dex_per_1000K'], 3)} ± "
+                       f"{_fmt(s['uncertainty'], 2)} dex per 1000 K (n = {s['n']}).")
+    diff = vs.get("difference")
+    if diff:
+        out.append(f"Difference of the two slopes: {_fmt(diff['value'], 3)} ± "
+                   f"{_fmt(diff['uncertainty'], 2)} ({_fmt(diff['significance_sigma'], 2)} "
+                   "sigma).")
+    la = f.get("late_accretion")
+    if la:
+        out.append(f"Late accretion ({la.get('component')}): "
+                   f"{_fmt(100 * float(la['fraction_of_mantle']), 3)}% of the mantle"
+                   + (f", {_fmt(100 * float(la['fraction_of_planet']), 3)}% of the planet "
+                      f"({_fmt(la.get('mass_kg'))} kg)" if la.get("fraction_of_planet")
+                      is not None else "") + ".")
+    for o in f.get("off_trend") or []:
+        out.append(f"{o['element']} lies {o['direction']} by {_fmt(o['offset_dex'], 2)} dex "
+                   f"(z = {_fmt(o['z'], 2)}{'' if o.get('fitted') else '; not fitted'}).")
+    return out
+
+
+def _planet_summary_html(planet: pd.DataFrame) -> str:
+    sub = planet[planet["reservoir"].isin(["ratio", "planet"])]
+    return _table_html(sub)
+
+
+# --------------------------------------------------------------------------- rank
+def _rank_report(folder: Path) -> Report:
+    from . import plots
+
+    table = _read_csv(folder / "ranking.csv")
+    meta = _read_json(folder / "ranking.json") if (folder / "ranking.json").exists() else {}
+    rep = Report(title=meta.get("title", folder.name), kind="rank", folder=str(folder),
+                 provenance=meta.get("provenance") or {})
+    ok = table[table["status"] == "optimal"] if "status" in table.columns else table
+    rep.key_numbers.append(("hypotheses screened", str(len(table)),
+                            f"{len(ok)} feasible, {len(table) - len(ok)} infeasible"))
+    if len(ok):
+        best = ok.iloc[0]
+        rep.key_numbers.append(("best hypothesis", str(best["components"]),
+                                f"BIC {_fmt(best.get('bic'))}, chi2 {_fmt(best.get('chi2'))}"))
+        if len(ok) > 1:
+            second = ok.iloc[1]
+            rep.key_numbers.append(("runner-up", str(second["components"]),
+                                    f"ΔBIC {_fmt(float(second['bic']) - float(best['bic']))}"))
+        for col in ("core_mass_fraction", "late_accretion_fraction"):
+            if col in ok.columns:
+                rep.key_numbers.append((f"{col.replace('_', ' ')} (best)",
+                                        _fmt(best[col]), ""))
+        near = ok[(ok["bic"] - float(best["bic"])) <= 2.0]
+        rep.diagnostics.append(("hypotheses within ΔBIC ≤ 2 of the best", str(len(near)),
+                                ", ".join(near["components"].astype(str).head(10))))
+    bad = table[table["status"] != "optimal"] if "status" in table.columns else table.iloc[:0]
+    for _, r in bad.head(10).iterrows():
+        rep.diagnostics.append((f"infeasible: {r['components']}", str(r.get("reasons", "")),
+                                ""))
+    title = rep.title
+    rep.figures.append(("Hypothesis ranking (BIC)", "ΔBIC of each hypothesis from the best; "
+                        "hatched bars are infeasible hypotheses.",
+                        lambda: plots.ranking_plot(table, criterion="bic", title=title)))
+    if "aic" in table.columns:
+        rep.figures.append(("Hypothesis ranking (AIC)", "ΔAIC from the best.",
+                            lambda: plots.ranking_plot(table, criterion="aic", title=title)))
+    wcols = [c for c in table.columns if c.startswith("w_")]
+    if len(ok) and wcols:
+        best = ok.iloc[0]
+        weights = {c[2:]: float(best[c]) for c in wcols if np.isfinite(float(best[c]))}
+        if weights:
+            rep.figures.append(("Weights of the best hypothesis", str(best["components"]),
+                                lambda: plots.weights_plot(weights)))
+    show = [c for c in ("rank", "components", "status", "chi2", "aic", "bic",
+                        "late_accretion_fraction", "core_mass_fraction") if c in table.columns]
+    rep.tables.append(("Top 20 hypotheses", _table_html(table[show].head(20))))
+    rep.limits.append("Every hypothesis is fitted on the same elements, so chi2, AIC and BIC "
+                      "compare across hypotheses; they do not say whether any hypothesis is "
+                      "adequate in absolute terms (see the reduced chi2 of a fit).")
+    return rep
+
+
+# --------------------------------------------------------------------------- sample
+def _sample_report(folder: Path) -> Report:
+    from . import plots
+
+    meta = _read_json(folder / "sample.json")
+    prov = meta.get("provenance") or {}
+    ref = prov.get("reference_element", meta.get("reference_element", "Mg"))
+    rep = Report(title=meta.get("title", folder.name), kind="sample", folder=str(folder),
+                 provenance=prov)
+    title = rep.title
+    summary = _read_csv(folder / "summary.csv") if (folder / "summary.csv").exists() else None
+    if summary is not None:
+        rep.key_numbers += _summary_numbers(summary)
+        rep.tables.append(("Posterior summary", _table_html(summary)))
+    if (folder / "diagnostics.json").exists():
+        diag = _read_json(folder / "diagnostics.json")
+        rep.diagnostics += _diag_lines(diag)
+    gate = meta.get("gate") or meta.get("gate_passed")
+    if gate is not None:
+        rep.diagnostics.insert(0, ("convergence gate", str(gate), "R-hat <= 1.01, bulk ESS "
+                                   ">= 400, no divergences (Vehtari et al. 2021)"))
+    draws = _posterior_draws(folder)
+    if (folder / "residuals.csv").exists():
+        resid = _read_csv(folder / "residuals.csv")
+        vol = meta.get("volatility") or {}
+        vol_draws = None
+        if draws is not None and vol.get("form"):
+            from .volatility import FORMS
+
+            names = [n for n in FORMS[vol["form"]].params]
+            if all(n in draws.columns for n in names):
+                vol_draws = draws[names].to_numpy(float)
+                vol = {"form": vol["form"], **{n: float(np.median(draws[n])) for n in names}}
+        rep.figures.append(("Volatility diagram", "Observed abundances with the posterior "
+                            "model (median ticks, grey 90% intervals) and the volatility "
+                            "trend with its 90% credible band.",
+                            lambda: plots.volatility_diagram(
+                                resid, reference=ref, volatility=vol,
+                                volatility_draws=vol_draws, title=title)))
+        if "z" in resid.columns:
+            rep.figures.append(("Residuals by element", "Posterior-median residuals.",
+                                lambda: plots.residuals_plot(resid, title=title)))
+    if draws is not None:
+        comps = [c for c in (meta.get("components") or []) if c in draws.columns]
+        wcols = {c: f"w_{c}" for c in meta.get("components") or [] if f"w_{c}" in draws}
+        if wcols and not comps:
+            wd = draws[list(wcols.values())].rename(columns={v: k for k, v in wcols.items()})
+            comps = list(wcols)
+        else:
+            wd = draws
+        if comps:
+            med = {c: float(np.median(wd[c])) for c in comps}
+            rep.figures.append(("Building-block weights", "Posterior distributions "
+                                "(violins) with medians and 5-95% intervals.",
+                                lambda: plots.weights_plot(med, draws=wd, basis=ref)))
+        main = [c for c in draws.columns if c not in comps and draws[c].dtype.kind == "f"
+                and not c.startswith(("w_", "chain", "draw"))][:6]
+        if len(main) >= 2:
+            rep.figures.append(("Pairwise posterior", "Main parameters, draws and marginals "
+                                "(median and 5-95%).",
+                                lambda: plots.pair_plot(draws, columns=main)))
+    pdraws = _planet_draws(folder)
+    if pdraws is not None:
+        _planet_from_draws(rep, pdraws, meta)
+    if (folder / "outliers.csv").exists():
+        rep.tables.append(("Flagged elements", _table_html(_read_csv(folder /
+                                                                     "outliers.csv"))))
+    return rep
+
+
+def _summary_numbers(summary: pd.DataFrame) -> list[tuple[str, str, str]]:
+    out = []
+    name_col = next((c for c in ("parameter", "name", "variable", "Unnamed: 0")
+                     if c in summary.columns), summary.columns[0])
+    for _, r in summary.iterrows():
+        centre = next((r[c] for c in ("median", "mean", "value") if c in r), None)
+        lo = next((r[c] for c in ("q05", "hdi_5%", "lo", "p05", "hdi_3%") if c in r), None)
+        hi = next((r[c] for c in ("q95", "hdi_95%", "hi", "p95", "hdi_97%") if c in r), None)
+        interval = f"[{_fmt(lo)}, {_fmt(hi)}]" if lo is not None and hi is not None else (
+            f"sd {_fmt(r['sd'])}" if "sd" in r else "")
+        out.append((str(r[name_col]), _fmt(centre), interval))
+    return out[:40]
+
+
+def _diag_lines(diag: dict[str, Any]) -> list[tuple[str, str, str]]:
+    out = []
+    for k, v in diag.items():
+        if isinstance(v, dict | list):
+            text = json.dumps(v)
+            out.append((k, text[:300] + ("..." if len(text) > 300 else ""), ""))
+        else:
+            out.append((k, _fmt(v) if isinstance(v, float) else str(v), ""))
+    return out
+
+
+def _posterior_draws(folder: Path) -> pd.DataFrame | None:
+    for name in ("posterior_draws.csv", "draws.csv"):
+        if (folder / name).exists():
+            return _read_csv(folder / name)
+    nc = folder / "posterior.nc"
+    if not nc.exists():
+        return None
+    try:
+        import arviz as az
+
+        idata = az.from_netcdf(nc)
+        post = idata.posterior
+    except Exception:  # noqa: BLE001 - an unreadable file just drops the figure
+        return None
+    cols = {}
+    for name, da in post.data_vars.items():
+        arr = np.asarray(da.values)
+        flat = arr.reshape(arr.shape[0] * arr.shape[1], -1)
+        extra = [d for d in da.dims if d not in ("chain", "draw")]
+        if not extra:
+            cols[name] = flat[:, 0]
+        elif len(extra) == 1 and flat.shape[1] <= 20:
+            labels = [str(x) for x in da.coords[extra[0]].values]
+            for j, lab in enumerate(labels):
+                cols[lab if name in ("w", "weights") else f"{name}[{lab}]"] = flat[:, j]
+    return pd.DataFrame(cols) if cols else None
+
+
+def _planet_draws(folder: Path) -> pd.DataFrame | None:
+    for name in ("planet_draws.parquet", "planet_draws.csv"):
+        path = folder / name
+        if path.exists():
+            try:
+                return (pd.read_parquet(path) if path.suffix == ".parquet"
+                        else pd.read_csv(path))
+            except Exception as err:  # noqa: BLE001
+                raise InputError(f"cannot read planet draws: {err}", file=str(path)) from err
+    return None
+
+
+_RATIO_COLS = ("Mg/Si_bulk", "Fe/Si_bulk", "Fe/Mg_bulk", "Ca/Al_bulk", "Mg/Si_mantle",
+               "Mg#_mantle", "Ca/Al_mantle")
+
+
+def _planet_from_draws(rep: Report, draws: pd.DataFrame, meta: dict[str, Any]) -> None:
+    """Whole-planet figure and numbers from a wide table of planet draws."""
+    from . import plots
+
+    rows = []
+    for c in draws.columns:
+        v = pd.to_numeric(draws[c], errors="coerce").dropna().to_numpy()
+        if not v.size:
+            continue
+        lo, med, hi = np.percentile(v, [5, 50, 95])
+        name = str(c)
+        if name in ("cmf", "core_mass_fraction"):
+            rows.append(("planet", "core_mass_fraction", med, "kg/kg", lo, hi))
+        elif name in _RATIO_COLS or name.startswith("ratio:"):
+            rows.append(("ratio", name.removeprefix("ratio:"), med, "molar", lo, hi))
+        elif name.startswith(("mantle:", "mantle_")) and name.endswith(("_wt", "wt%")):
+            sp = name.split(":", 1)[-1].removeprefix("mantle_").removesuffix("_wt")
+            rows.append(("mantle", sp.removesuffix("wt%").strip(), med, "wt%", lo, hi))
+        elif name.startswith(("core:", "core_")) and name.endswith(("_wt", "wt%")):
+            sp = name.split(":", 1)[-1].removeprefix("core_").removesuffix("_wt")
+            rows.append(("core", sp.removesuffix("wt%").strip(), med, "wt%", lo, hi))
+    if not rows:
+        return
+    planet = pd.DataFrame(rows, columns=["reservoir", "species", "value", "unit", "lo", "hi"])
+    rep.figures.append(("Whole planet", "Medians with 5-95% intervals over the draws.",
+                        lambda: plots.planet_plot(planet)))
+    for _, r in planet[planet["reservoir"].isin(["planet", "ratio"])].iterrows():
+        rep.key_numbers.append((str(r["species"]), _fmt(r["value"]),
+                                f"[{_fmt(r['lo'])}, {_fmt(r['hi'])}] (5-95%)"))
+    rep.tables.append(("Planet (medians and 5-95% intervals)", _table_html(planet)))
+
+
+# --------------------------------------------------------------------------- star / batch
+def _star_report(folder: Path) -> Report:
+    meta = _read_json(folder / "planet.json")
+    rep = Report(title=meta.get("title", meta.get("star", folder.name)), kind="star",
+                 folder=str(folder), provenance=meta.get("provenance") or {})
+    for k, v in meta.items():
+        if k in ("provenance", "title") or isinstance(v, dict | list):
+            continue
+        rep.key_numbers.append((k, _fmt(v) if isinstance(v, float) else str(v), ""))
+    for k in ("cautions", "warnings", "notes"):
+        for line in meta.get(k) or []:
+            rep.notes.append(str(line))
+    draws = _planet_draws(folder)
+    if draws is not None:
+        _planet_from_draws(rep, draws, meta)
+    rep.limits.append("The devolatilisation pattern applied to the star is an assumption: "
+                      "condensation temperatures depend on the disk's composition (C/O, "
+                      "Mg/Si), so an Earth-calibrated pattern may not hold in another "
+                      "system.")
+    return rep
+
+
+def _batch_report(folder: Path) -> Report:
+    from . import plots
+
+    meta = _read_json(folder / "batch.json") if (folder / "batch.json").exists() else {}
+    rep = Report(title=meta.get("title", folder.name), kind="batch", folder=str(folder),
+                 provenance=meta.get("provenance") or {})
+    summary = None
+    for name in ("summary.csv", "batch_summary.csv", "summary.parquet"):
+        if (folder / name).exists():
+            summary = (pd.read_parquet(folder / name) if name.endswith(".parquet")
+                       else _read_csv(folder / name))
+            break
+    if summary is None:
+        parts = sorted(folder.rglob("*.parquet"))
+        if not parts:
+            raise InputError("batch folder holds no summary table and no Parquet parts",
+                             file=str(folder))
+        summary = pd.concat([pd.read_parquet(p) for p in parts], ignore_index=True)
+    rep.key_numbers.append(("rows (stars or draws)", str(len(summary)), ""))
+    cols = [c for c in summary.columns
+            if any(k in c.lower() for k in ("cmf", "core_mass_fraction", "mg/si", "fe/mg",
+                                            "mg_si", "fe_mg"))]
+    cols = [c for c in cols if pd.api.types.is_numeric_dtype(summary[c])][:6]
+    for c in cols:
+        v = pd.to_numeric(summary[c], errors="coerce").dropna()
+        if len(v):
+            q = np.percentile(v, [5, 50, 95])
+            rep.key_numbers.append((c, _fmt(q[1]), f"5-95% across the catalogue "
+                                    f"[{_fmt(q[0])}, {_fmt(q[2])}]"))
+    if cols:
+        rep.figures.append(("Across the catalogue", "Distributions of core mass fraction "
+                            "and molar ratios across the stars.",
+                            lambda: plots.distribution_plot(summary, columns=cols)))
+    for k in ("n_failed", "failed", "errors"):
+        if k in meta:
+            rep.diagnostics.append((k, str(meta[k])[:300], ""))
+    rep.tables.append(("First rows", _table_html(summary.head(30))))
+    return rep
+
+
+_BUILDERS: dict[str, Callable[[Path], Report]] = {
+    "fit": _fit_report, "rank": _rank_report, "sample": _sample_report,
+    "star": _star_report, "batch": _batch_report,
+}
+
+
+# --------------------------------------------------------------------------- HTML
+_CSS = """
+body{font-family:system-ui,-apple-system,'Segoe UI',sans-serif;max-width:1180px;margin:2em auto;
+padding:0 1em;color:#1d1d1d;line-height:1.45}
+h1{font-size:1.6em;margin-bottom:.1em}h2{border-bottom:2px solid #0072B2;padding-bottom:.15em;
+margin-top:1.8em;font-size:1.25em}
+.meta{color:#555;font-size:.9em}table{border-collapse:collapse;font-size:.86em;margin:.5em 0}
+td,th{border:1px solid #ddd;padding:.25em .55em;text-align:left;vertical-align:top}
+th{background:#f2f6fa}tr:nth-child(even) td{background:#fafafa}
+figure{margin:1.2em 0}figure img{max-width:100%;border:1px solid #eee}
+figcaption{font-size:.88em;color:#444}.note{background:#fff8e5;border-left:4px solid #E69F00;
+padding:.4em .8em}nav a{margin-right:1em}code{background:#f4f4f4;padding:0 .2em}
+"""
+
+
+def _table_html(df: pd.DataFrame) -> str:
+    def cell(v: Any) -> str:
+        if isinstance(v, float | np.floating):
+            return html.escape(_fmt(v))
+        return html.escape(str(v))
+
+    head = "".join(f"<th>{html.escape(str(c))}</th>" for c in df.columns)
+    body = "".join("<tr>" + "".join(f"<td>{cell(v)}</td>" for v in row) + "</tr>"
+                   for row in df.itertuples(index=False))
+    return f"<table><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>"
+
+
+def _rows(items: list[tuple[str, str, str]], head: tuple[str, str, str]) -> str:
+    body = "".join("<tr>" + "".join(f"<td>{html.escape(str(x))}</td>" for x in it) + "</tr>"
+                   for it in items)
+    hd = "".join(f"<th>{h}</th>" for h in head)
+    return f"<table><thead><tr>{hd}</tr></thead><tbody>{body}</tbody></table>"
+
+
+def render_html(rep: Report, *, figure_dir: Path | None = None) -> str:
+    """Render a report as one self-contained HTML page (figures as base64 PNG).
+
+    Parameters
+    ----------
+    rep : Report
+    figure_dir : Path, optional
+        Also write each figure as PNG and SVG into this folder.
+    """
+    import matplotlib.pyplot as plt
+
+    from . import plots
+
+    esc = html.escape
+    parts = [f"<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>"
+             f"<title>{esc(rep.title)} - planetmix report</title><style>{_CSS}</style>"
+             "</head><body>"]
+    prov = rep.provenance or {}
+    created = datetime.now(UTC).isoformat(timespec="seconds")
+    parts.append(f"<h1>{esc(rep.title)}</h1><p class='meta'>planetmix {esc(rep.kind)} result "
+                 f"· folder <code>{esc(rep.folder)}</code> · report written {created} · "
+                 f"planetmix {esc(str(prov.get('planetmix_version', '?')))}</p>")
+    parts.append("<nav><a href='#key-numbers'>Key numbers</a><a href='#figures'>Figures</a>"
+                 "<a href='#diagnostics'>Diagnostics</a><a href='#provenance'>Provenance</a>"
+                 "<a href='#limits'>Limits of the model</a></nav>")
+    parts.append("<h2 id='key-numbers'>Key numbers</h2>")
+    parts.append(_rows(rep.key_numbers, ("quantity", "value", "uncertainty / note"))
+                 if rep.key_numbers else "<p>none</p>")
+    if rep.findings:
+        parts.append("<h3>Findings</h3><ul>" + "".join(f"<li>{esc(x)}</li>"
+                                                       for x in rep.findings) + "</ul>")
+    parts.append("<h2 id='figures'>Figures</h2>")
+    for i, (name, caption, make) in enumerate(rep.figures, start=1):
+        try:
+            fig = make() if callable(make) else make
+        except Exception as err:  # noqa: BLE001 - a figure that fails is reported, not fatal
+            parts.append(f"<p class='note'>Figure {i} ({esc(name)}) could not be drawn: "
+                         f"{esc(str(err))}</p>")
+            continue
+        png = base64.b64encode(plots.png_bytes(fig)).decode("ascii")
+        if figure_dir is not None:
+            stem = "".join(ch if ch.isalnum() else "_" for ch in name.lower()).strip("_")
+            plots.save_figure(fig, figure_dir / f"{i:02d}_{stem}")
+        plt.close(fig)
+        parts.append(f"<figure><img alt='{esc(name)}' src='data:image/png;base64,{png}'>"
+                     f"<figcaption><b>Figure {i}. {esc(name)}.</b> {esc(caption)}"
+                     "</figcaption></figure>")
+    for name, tab in rep.tables:
+        parts.append(f"<h3>{esc(name)}</h3>{tab}")
+    parts.append("<h2 id='diagnostics'>Diagnostics</h2>")
+    parts.append(_rows(rep.diagnostics, ("check", "value", "meaning"))
+                 if rep.diagnostics else "<p>none recorded</p>")
+    for n in rep.notes:
+        parts.append(f"<p class='note'>{esc(n)}</p>")
+    parts.append("<h2 id='provenance'>Provenance</h2>")
+    parts.append(_provenance_html(prov))
+    parts.append("<h2 id='limits'>Limits of the model</h2><ul>"
+                 + "".join(f"<li>{esc(x)}</li>" for x in rep.limits) + "</ul>")
+    parts.append("<p class='meta'>Self-contained: this file loads nothing from the network."
+                 "</p></body></html>")
+    return "\n".join(parts)
+
+
+def _provenance_html(prov: dict[str, Any]) -> str:
+    esc = html.escape
+    if not prov:
+        return "<p>The result folder records no provenance.</p>"
+    rows = []
+    for k in ("planetmix_version", "created_utc", "python", "case_file", "target_table",
+              "reference_element", "condensation_table", "seed", "sampler"):
+        if k in prov:
+            rows.append((k, json.dumps(prov[k]) if isinstance(prov[k], dict) else
+                         str(prov[k]), ""))
+    if prov.get("packages"):
+        rows.append(("packages", ", ".join(f"{k} {v}" for k, v in prov["packages"].items()),
+                     ""))
+    if prov.get("reference_tables"):
+        rows.append(("reference tables", ", ".join(map(str, prov["reference_tables"])), ""))
+    for name, info in (prov.get("components") or {}).items():
+        rows.append((f"component {name}", f"{info.get('file', '')}: "
+                     f"{info.get('description', '')}",
+                     f"sources {', '.join(info.get('sources', []))}; "
+                     f"{info.get('recalled_values', 0)} values typed from memory"))
+    other = {k: v for k, v in prov.items() if k not in {
+        "planetmix_version", "created_utc", "python", "case_file", "target_table",
+        "reference_element", "condensation_table", "packages", "reference_tables",
+        "components", "sources", "seed", "sampler"}}
+    for k, v in other.items():
+        text = json.dumps(v) if isinstance(v, dict | list) else str(v)
+        rows.append((k, text[:600] + ("..." if len(text) > 600 else ""), ""))
+    out = _rows(rows, ("item", "value", "note"))
+    src = _sources_html(prov)
+    if src:
+        out += "<h3>Sources</h3><ol>" + "".join(f"<li>{esc(s)}</li>" for s in src) + "</ol>"
+    return out
+
+
+def build_report(folder: str | Path, *, out: str | Path | None = None,
+                 figures: bool = False) -> Path:
+    """Write the HTML report of a result folder.
+
+    Parameters
+    ----------
+    folder : str or Path
+        A result folder of ``planetmix fit``, ``rank``, ``sample``, ``star`` or a batch.
+    out : str or Path, optional
+        The HTML file (default ``folder/report.html``). Written atomically.
+    figures : bool
+        Also write each figure as PNG and SVG into ``folder/figures/``.
+
+    Returns
+    -------
+    Path
+        The report file.
+
+    Raises
+    ------
+    InputError
+        When the folder is not a planetmix result ("unknown result folder").
+    """
+    folder = Path(folder)
+    kind = detect_kind(folder)
+    rep = _BUILDERS[kind](folder)
+    fig_dir = None
+    if figures:
+        fig_dir = folder / "figures"
+        fig_dir.mkdir(exist_ok=True)
+    text = render_html(rep, figure_dir=fig_dir)
+    target = Path(out) if out is not None else folder / "report.html"
+    target.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=".report.", suffix=".html", dir=target.parent)
+    try:
+        with os.fdopen(fd, "w", encoding="utf-8") as fh:
+            fh.write(text)
+        os.replace(tmp, target)
+    finally:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+    return target
