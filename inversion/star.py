@@ -51,7 +51,7 @@ import components
 from .case import CONDENSATION_TABLES, Case, CoreSettings, Target
 from .exceptions import InputError
 from .handoff import PlanetDraws, planet_draws
-from .model import CORE_ITERATIONS, Problem, _core_split, default_partition
+from .model import Problem, _core_split, default_partition
 from .options import check_option
 from .planet import assemble
 from .volatility import FORMS, get_form, log10_retained
@@ -81,6 +81,7 @@ _DEFAULT_REL_UNC = 0.15
 #: Newton iterations of the fast core split and its tolerance on k.
 _NEWTON_MAX = 40
 _NEWTON_TOL = 1e-13
+_LN10 = math.log(10.0)
 
 
 # --------------------------------------------------------------------------- settings
@@ -277,30 +278,38 @@ def core_split_fast(a: np.ndarray, p: Problem, D: np.ndarray) -> dict[str, np.nd
     sid = np.array([j for j in range(a.shape[1]) if j != fe and D[j] > 0], dtype=int)
     lith = np.array([j for j in range(a.shape[1]) if j != fe and D[j] <= 0], dtype=int)
     c = 1.0 / (1.0 - f[fe] * F)
-    Lf = a[:, lith] @ f[lith]
-    a_s = a[:, sid]
-    D_s = D[sid]
-    f_s = f[sid]
-    a_fixed = a[:, fe] + a_s.sum(axis=1)
+    # element-major layout (n, B): long inner loops; plain sums rather than BLAS, whose
+    # threads cost more than they give at this size
+    at = np.ascontiguousarray(a.T)
+    Lf = (at[lith] * f[lith, None]).sum(axis=0)
+    a_s = at[sid]
+    D_s = D[sid][:, None]
+    f_s = f[sid][:, None]
+    a_fixed = at[fe] + a_s.sum(axis=0)
     k = np.full(a.shape[0], 0.5)
+    # a row stops at its own convergence, so its result never depends on the other rows
+    frozen = np.zeros(a.shape[0], dtype=bool)
     for _ in range(_NEWTON_MAX):
-        den = 1.0 + D_s[None, :] * k[:, None]
+        den = 1.0 + D_s * k[None, :]
         m_s = a_s / den
-        dm = -m_s * D_s[None, :] / den
-        M_s = (Lf + m_s @ f_s) * c
-        dM_s = (dm @ f_s) * c
-        M_c = a_fixed - m_s.sum(axis=1) - F * M_s
-        dM_c = -dm.sum(axis=1) - F * dM_s
+        dm = m_s * D_s / den  # minus the derivative of m_s with respect to k
+        M_s = (Lf + (m_s * f_s).sum(axis=0)) * c
+        dM_s = -(dm * f_s).sum(axis=0) * c
+        M_c = a_fixed - m_s.sum(axis=0) - F * M_s
+        dM_c = dm.sum(axis=0) - F * dM_s
         h = M_c - k * M_s
         dh = dM_c - M_s - k * dM_s
         k_new = np.maximum(k - h / dh, 0.0)
         done = np.abs(k_new - k) <= _NEWTON_TOL * (1.0 + k)
-        k = k_new
-        if done.all():
+        k = np.where(frozen, k, k_new)
+        frozen |= done
+        if frozen.all():
             break
-    m = a / (1.0 + D[None, :] * k[:, None])
-    M_s = (np.delete(m, fe, axis=1) @ np.delete(f, fe)) * c
-    m[:, fe] = F * M_s
+    mt = at / (1.0 + D[:, None] * k[None, :])
+    mt[fe] = 0.0
+    M_s = (mt * f[:, None]).sum(axis=0) * c
+    mt[fe] = F * M_s
+    m = np.ascontiguousarray(mt.T)
     core = a - m
     M_c = core.sum(axis=1)
     return {"mantle": m, "core": core, "M_s": M_s, "M_c": M_c, "k": k,
@@ -465,7 +474,7 @@ def planets_from_xh(xh: np.ndarray, model: StarModel) -> tuple[PlanetDraws, np.n
     mg = p.ref_index
     log_a = (model.A_ref[None, :] + xh) - (model.A_ref[mg] + xh[:, mg:mg + 1]) \
         + (model.log_mass - model.log_mass[mg])[None, :] + model.logr[None, :]
-    a = 10.0 ** log_a
+    a = np.exp(log_a * _LN10)
     split = core_split_fast(a, p, p.D)
     B = a.shape[0]
     fwd = {"lam": np.zeros(B), "M_s": split["M_s"], "mantle": split["mantle"],
@@ -525,5 +534,3 @@ def with_draws(settings: StarSettings, draws: int) -> StarSettings:
     """The same settings with another number of draws."""
     return replace(settings, draws=int(draws))
 
-
-_ = CORE_ITERATIONS  # the engine's iteration count, kept for reference in the docs

@@ -1,0 +1,376 @@
+"""Catalogues at scale: the star-to-planet computation for every star of a catalogue.
+
+The catalogue is cut into partitions of consecutive rows. Each partition is computed in
+one vectorised pass (every star's Monte Carlo draws stacked) and written as one Parquet
+file, atomically (a temporary file renamed into place), so a run killed part-way
+resumes with ``resume=True`` and loses or duplicates nothing. Partitions run in this
+process or on Dask (a local cluster, or an existing cluster by its scheduler address);
+each star's draws come from its own seed (:func:`inversion.star.star_seed`), so every
+path gives identical results.
+
+Output folder: ``run.json`` (settings and catalogue fingerprint, checked on resume),
+``part-NNNNN.parquet`` (one row per catalogue row: ``row``, ``star_id``, ``status``
+``ok``/``failed``, ``reason``, flags, and for each quantity of the hand-off the columns
+``<quantity>_<stat>`` with stat in p2.5, p16, median, p84, p97.5), and at the end
+``summary.json`` and ``failed.csv``.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import os
+import time
+from collections.abc import Iterator
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+import components
+
+from .exceptions import InputError
+from .handoff import PERCENTILES, STATS
+from .star import (
+    StarInput,
+    StarSettings,
+    check_star_values,
+    draw_xh,
+    planets_from_xh,
+    star_model,
+    star_seed,
+)
+
+__all__ = ["read_catalogue", "CatalogueRow", "run_partition", "run_batch", "BatchSummary",
+           "partition_name", "quantiles_by_group"]
+
+_PART = "part-{:05d}.parquet"
+_FLAG_COLUMNS = ("row", "star_id", "status", "reason", "solar_ratio", "ci_reference",
+                 "not_used", "infeasible_draw_fraction", "n_draws")
+
+
+def partition_name(i: int) -> str:
+    """File name of partition ``i``."""
+    return _PART.format(i)
+
+
+@dataclass(frozen=True)
+class CatalogueRow:
+    """One catalogue row: the star, or the reason it cannot be computed."""
+
+    row: int
+    star_id: str
+    star: StarInput | None
+    reason: str = ""
+
+
+def _is_empty(v: str) -> bool:
+    return v.strip() == "" or v.strip().lower() in ("nan", "na", "null")
+
+
+def read_catalogue(path: str | Path) -> tuple[list[CatalogueRow], str]:
+    """Read and check a catalogue; returns its rows and the SHA-256 of the file.
+
+    Columns: ``star_id``, then for each element a column named by its symbol ([X/H],
+    dex) and ``<symbol>_err`` (1-sigma, dex). A column that is neither is a file-level
+    error (:class:`InputError`). Row-level problems (a value that is not a number, a
+    value without its uncertainty, an empty or repeated star_id) are kept on the row as
+    its reason: the batch records them and carries on.
+    """
+    from components._tables import read_csv_checked
+
+    file = str(path)
+    df = read_csv_checked(path, ["star_id"], what="catalogue")
+    known = components.elements().index
+    elements: list[str] = []
+    for col in df.columns:
+        if col == "star_id":
+            continue
+        base = col[:-4] if col.endswith("_err") else col
+        if base not in known or base == "H":
+            raise InputError("unknown column: not star_id, an element symbol or "
+                             "<symbol>_err; rename or remove it", file=file, field=col,
+                             value=col)
+        if col.endswith("_err") and base not in df.columns:
+            raise InputError(f"uncertainty column without its value column {base}", file=file,
+                             field=col)
+        if not col.endswith("_err"):
+            elements.append(col)
+    rows: list[CatalogueRow] = []
+    first: dict[str, int] = {}
+    records = df.to_dict("records")
+    for i, rec in enumerate(records):
+        row = i + 2
+        sid = str(rec["star_id"]).strip()
+        if sid == "":
+            rows.append(CatalogueRow(row, sid, None, "empty star_id"))
+            continue
+        if sid in first:
+            rows.append(CatalogueRow(row, sid, None,
+                                     f"duplicate star_id (first on row {first[sid]})"))
+            continue
+        first[sid] = row
+        vals = {e: ("" if _is_empty(rec[e]) else rec[e]) for e in elements}
+        errs = {e: ("" if _is_empty(rec.get(f"{e}_err", "")) else rec.get(f"{e}_err", ""))
+                for e in elements}
+        try:
+            star = check_star_values(sid, vals, errs, file=file, row=row)
+        except InputError as err:
+            msg = err.args[0] if err.args else str(err)
+            rows.append(CatalogueRow(row, sid, None, f"{msg} (value {err.value!r})"
+                                     if getattr(err, "value", None) not in (None, "") else msg))
+            continue
+        rows.append(CatalogueRow(row, sid, star))
+    digest = hashlib.sha256(Path(path).read_bytes()).hexdigest()
+    return rows, digest
+
+
+def quantiles_by_group(values: np.ndarray, n_groups: int) -> np.ndarray:
+    """Percentiles :data:`inversion.handoff.PERCENTILES` of each group's draws.
+
+    ``values`` (G * D, Q) holds G groups of D consecutive draws; returns (G, 5, Q) with
+    numpy's default (linear) interpolation; NaN draws are ignored.
+    """
+    G = n_groups
+    v = values.reshape(G, -1, values.shape[1])
+    out = np.empty((G, len(PERCENTILES), v.shape[2]))
+    bad = np.isnan(v).any(axis=(1, 2))
+    good = ~bad
+    if good.any():
+        s = np.sort(v[good], axis=1)
+        D = s.shape[1]
+        pos = np.asarray(PERCENTILES) / 100.0 * (D - 1)
+        lo = np.floor(pos).astype(int)
+        hi = np.minimum(lo + 1, D - 1)
+        frac = (pos - lo)[None, :, None]
+        out[good] = s[:, lo, :] * (1.0 - frac) + s[:, hi, :] * frac
+    for g in np.flatnonzero(bad):
+        with np.errstate(all="ignore"):
+            import warnings
+
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore", RuntimeWarning)
+                out[g] = np.nanpercentile(v[g], PERCENTILES, axis=0)
+    return out
+
+
+def run_partition(rows: list[CatalogueRow], settings: StarSettings) -> pd.DataFrame:
+    """Compute one partition: every good star's draws in one vectorised pass.
+
+    Returns one row per catalogue row with its status, reason, flags and the summary
+    columns ``<quantity>_<stat>``.
+    """
+    model = star_model(settings)
+    D = settings.draws
+    good = [r for r in rows if r.star is not None]
+    meta: dict[int, dict[str, Any]] = {}
+    frames = []
+    if good:
+        xs = []
+        for r in good:
+            rng = np.random.default_rng(star_seed(settings.seed, r.star_id))
+            xh, missing = draw_xh(r.star, D, rng)
+            xs.append(xh)
+            meta[r.row] = {"solar_ratio": " ".join(missing),
+                           "not_used": " ".join(r.star.unused)}
+        draws, ok = planets_from_xh(np.concatenate(xs, axis=0), model)
+        df = draws.to_dataframe(bulk=False, history=False)
+        if draws.heat_history_w_per_kg is not None:
+            df[f"heat_W_per_kg_{draws.history_gyr[-1]:g}Gyr"] = draws.heat_history_w_per_kg[:, -1]
+        vals = df.to_numpy(dtype=float)
+        vals[~ok] = np.nan
+        q = quantiles_by_group(vals, len(good))
+        okg = ok.reshape(len(good), D)
+        cols = {f"{name}_{stat}": q[:, s, j] for j, name in enumerate(df.columns)
+                for s, stat in enumerate(STATS)}
+        summ = pd.DataFrame(cols)
+        summ["row"] = [r.row for r in good]
+        summ["infeasible_draw_fraction"] = 1.0 - okg.mean(axis=1)
+        frames.append(summ)
+    base = pd.DataFrame({
+        "row": [r.row for r in rows],
+        "star_id": [r.star_id for r in rows],
+        "status": ["ok" if r.star is not None else "failed" for r in rows],
+        "reason": [r.reason for r in rows],
+        "solar_ratio": [meta.get(r.row, {}).get("solar_ratio", "") for r in rows],
+        "ci_reference": [" ".join(model.ci_reference) if r.star is not None else ""
+                         for r in rows],
+        "not_used": [meta.get(r.row, {}).get("not_used", "") for r in rows],
+        "n_draws": [D if r.star is not None else 0 for r in rows],
+    })
+    out = base.merge(frames[0], on="row", how="left") if frames else base
+    if "infeasible_draw_fraction" not in out:
+        out["infeasible_draw_fraction"] = np.nan
+    allbad = out["infeasible_draw_fraction"] >= 1.0
+    if allbad.any():
+        out.loc[allbad, "status"] = "failed"
+        out.loc[allbad, "reason"] = (f"no draw is feasible: a mantle FeO of "
+                                     f"{settings.mantle_FeO_wt} wt% needs more iron than the "
+                                     "star provides")
+    lead = list(_FLAG_COLUMNS)
+    return out[lead + [c for c in out.columns if c not in lead]]
+
+
+def _write_parquet_atomic(df: pd.DataFrame, path: Path) -> None:
+    tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
+    df.to_parquet(tmp, index=False)
+    os.replace(tmp, path)
+
+
+@dataclass(frozen=True)
+class BatchSummary:
+    """What a batch run did: stars done, failed (with reasons), partitions skipped."""
+
+    n_rows: int
+    n_done: int
+    n_failed: int
+    n_partitions: int
+    partitions_computed: int
+    partitions_skipped: int
+    stars_skipped: int
+    failed: pd.DataFrame
+    seconds: float
+    complete: bool
+
+    def to_dataframe(self) -> pd.DataFrame:
+        """The summary table printed at the end of a run."""
+        return pd.DataFrame([
+            ("catalogue rows", self.n_rows),
+            ("stars done", self.n_done),
+            ("stars failed", self.n_failed),
+            ("partitions computed this run", self.partitions_computed),
+            ("partitions skipped (already done)", self.partitions_skipped),
+            ("stars in skipped partitions", self.stars_skipped),
+        ], columns=["item", "count"])
+
+
+def _fingerprint(digest: str, settings: StarSettings, partition_size: int) -> dict[str, Any]:
+    s = settings.as_dict()
+    s["pattern"] = {k: v for k, v in s["pattern"].items() if k != "origin"}
+    return {"catalogue_sha256": digest, "settings": s, "partition_size": partition_size}
+
+
+def _chunks(rows: list[CatalogueRow], size: int) -> Iterator[tuple[int, list[CatalogueRow]]]:
+    for i in range(0, len(rows), size):
+        yield i // size, rows[i:i + size]
+
+
+def run_batch(catalogue: str | Path, out: str | Path, settings: StarSettings, *,
+              partition_size: int = 200, resume: bool = False, client: Any = None,
+              max_partitions: int | None = None, progress: bool = True) -> BatchSummary:
+    """Run the star-to-planet computation for every star of a catalogue.
+
+    Parameters
+    ----------
+    catalogue : str or Path
+        The catalogue CSV (see :func:`read_catalogue`).
+    out : str or Path
+        Result folder.
+    settings : StarSettings
+    partition_size : int
+        Catalogue rows per partition (one Parquet file each).
+    resume : bool
+        Skip partitions already written by a run with the same catalogue and settings.
+    client : distributed.Client, optional
+        Run the partitions on this Dask client; None computes them in this process.
+    max_partitions : int, optional
+        Stop after computing this many partitions (the rest are left for a resumed run).
+    progress : bool
+        Progress bar on standard error.
+
+    Returns
+    -------
+    BatchSummary
+    """
+    from tqdm.auto import tqdm
+
+    from .output import provenance, write_json
+
+    t0 = time.perf_counter()
+    if partition_size < 1:
+        raise InputError("must be at least 1", field="--partition-size", value=partition_size)
+    rows, digest = read_catalogue(catalogue)
+    out = Path(out)
+    out.mkdir(parents=True, exist_ok=True)
+    fp = _fingerprint(digest, settings, partition_size)
+    run_file = out / "run.json"
+    existing = sorted(out.glob("part-*.parquet"))
+    if run_file.exists() or existing:
+        if not resume:
+            raise InputError("the folder holds results of an earlier run; add --resume to "
+                             "continue it or choose another --out", file=str(out))
+        import json
+
+        old = json.loads(run_file.read_text()) if run_file.exists() else {}
+        if {k: old.get(k) for k in fp} != _jsonable(fp):
+            raise InputError("--resume with another catalogue or other settings than the "
+                             "run in this folder; use the same options or another --out",
+                             file=str(run_file))
+    else:
+        tmp = out / f".run.json.tmp-{os.getpid()}"
+        write_json(tmp, {**fp, "provenance": provenance(
+            tables=[settings.solar, settings.pattern.condensation_table, "lodders2003",
+                    "mcdonough2003", "mcdonoughsun1995", "turcotteschubert2014"],
+            component_names=["CI", "BSE_MS95"],
+            extra={"catalogue": str(Path(catalogue).resolve()), "command": "batch"})})
+        os.replace(tmp, run_file)
+    parts = list(_chunks(rows, partition_size))
+    todo = [(i, r) for i, r in parts if not (out / partition_name(i)).exists()]
+    skipped = [(i, r) for i, r in parts if (out / partition_name(i)).exists()]
+    if max_partitions is not None:
+        todo = todo[:max_partitions]
+    bar = tqdm(total=sum(len(r) for _, r in todo), desc="stars", unit="star",
+               disable=not progress)
+    if client is None:
+        for i, r in todo:
+            _write_parquet_atomic(run_partition(r, settings), out / partition_name(i))
+            bar.update(len(r))
+    else:
+        from distributed import as_completed
+
+        futs = {}
+        s_future = client.scatter(settings, broadcast=True)
+        for i, r in todo:
+            futs[client.submit(run_partition, r, s_future, pure=False,
+                               key=f"planetmix-partition-{digest[:12]}-{i}")] = (i, len(r))
+        for fut in as_completed(futs):
+            i, n = futs[fut]
+            _write_parquet_atomic(fut.result(), out / partition_name(i))
+            fut.release()
+            bar.update(n)
+    bar.close()
+    done_files = sorted(out.glob("part-*.parquet"))
+    status = (pd.concat([pd.read_parquet(f, columns=["row", "star_id", "status", "reason"])
+                         for f in done_files], ignore_index=True)
+              if done_files else pd.DataFrame(columns=["row", "star_id", "status", "reason"]))
+    failed = status[status["status"] != "ok"].sort_values("row").reset_index(drop=True)
+    complete = len(done_files) == len(parts)
+    summary = BatchSummary(
+        n_rows=len(rows), n_done=int((status["status"] == "ok").sum()), n_failed=len(failed),
+        n_partitions=len(parts), partitions_computed=len(todo),
+        partitions_skipped=len(skipped), stars_skipped=sum(len(r) for _, r in skipped),
+        failed=failed, seconds=time.perf_counter() - t0, complete=complete)
+    tmp = out / f".summary.json.tmp-{os.getpid()}"
+    write_json(tmp, {"complete": complete, "catalogue_rows": summary.n_rows,
+                     "stars_done": summary.n_done, "stars_failed": summary.n_failed,
+                     "partitions": summary.n_partitions,
+                     "partitions_computed_this_run": summary.partitions_computed,
+                     "partitions_skipped": summary.partitions_skipped,
+                     "stars_skipped": summary.stars_skipped,
+                     "seconds_this_run": summary.seconds,
+                     "failed": failed[["row", "star_id", "reason"]].to_dict("records")})
+    os.replace(tmp, out / "summary.json")
+    tmp = out / f".failed.csv.tmp-{os.getpid()}"
+    failed[["row", "star_id", "reason"]].to_csv(tmp, index=False)
+    os.replace(tmp, out / "failed.csv")
+    return summary
+
+
+def _jsonable(obj: Any) -> Any:
+    import json
+
+    from .output import to_jsonable
+
+    return json.loads(json.dumps(to_jsonable(obj)))
+
