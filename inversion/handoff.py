@@ -13,7 +13,7 @@ Examples
 ...                 core_wt={"Fe": np.array([85.0, 86.0, 87.0])},
 ...                 molar_ratios={"Mg/Si_bulk": np.array([1.0, 1.05, 1.1])})
 >>> folder = pathlib.Path(tempfile.mkdtemp())
->>> write_handoff(folder, d, meta={"title": "example"})
+>>> data = write_handoff(folder, d, meta={"title": "example"})
 >>> json.loads((folder / "planet.json").read_text())["core_mass_fraction"]["median"]
 0.32
 """
