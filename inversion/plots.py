@@ -181,16 +181,26 @@ def volatility_diagram(
         obs = df["observed"].astype(float).to_numpy()
         sig = df["sigma"].astype(float).to_numpy()
         fitted = df["fitted"].astype(str).str.lower().isin(["true", "1"]).to_numpy()
-        seen: set[str] = set()
-        for i in np.flatnonzero(np.isfinite(obs)):
-            colour, marker, label = _class_style(df["geo"].iloc[i])
-            lab = label if label not in seen else None
-            seen.add(label)
-            ax.errorbar(tc[i], obs[i], yerr=sig[i], fmt=marker, ms=5.5, color=colour,
-                        mfc=colour if fitted[i] else "white", mec=colour, ecolor=colour,
-                        elinewidth=0.9, capsize=0, zorder=4, label=lab)
-            ax.annotate(df["element"].iloc[i], (tc[i], obs[i]), xytext=(3, 3),
-                        textcoords="offset points", fontsize=6.5, color="#333333", zorder=5)
+        has = np.isfinite(obs)
+        geo = df["geo"].astype(str).to_numpy()
+        for cls in list(CLASS_STYLE) + ["other"]:
+            in_cls = has & ((geo == cls) if cls != "other" else ~np.isin(geo, list(CLASS_STYLE)))
+            if not in_cls.any():
+                continue
+            colour, marker, label = _class_style(cls)
+            for fit_state in (True, False):
+                m = in_cls & (fitted == fit_state)
+                if not m.any():
+                    continue
+                ax.errorbar(tc[m], obs[m], yerr=sig[m], fmt=marker, ms=5.5, color=colour,
+                            mfc=colour if fit_state else "white", mec=colour, ecolor=colour,
+                            elinewidth=0.9, capsize=0, zorder=4,
+                            label=label if fit_state or not (in_cls & fitted).any() else None)
+        for i in np.flatnonzero(has):
+            ann = ax.annotate(df["element"].iloc[i], (tc[i], obs[i]), xytext=(3, 3),
+                              textcoords="offset points", fontsize=6.5, color="#333333",
+                              zorder=5)
+            ann.set_in_layout(False)
         flags = df.get("flag", pd.Series([""] * len(df), index=df.index)).fillna("")
         out = np.flatnonzero(flags.astype(str).isin(["above model", "below model"]).to_numpy()
                              & np.isfinite(obs))
@@ -198,10 +208,11 @@ def volatility_diagram(
             ax.scatter(tc[i], obs[i], s=150, facecolors="none", edgecolors=OKABE_ITO["black"],
                        lw=1.2, zorder=6)
             z = df["z"].iloc[i] if "z" in df.columns else np.nan
-            ax.annotate(f"{df['element'].iloc[i]} ({float(z):+.1f}σ)", (tc[i], obs[i]),
-                        xytext=(8, -12 if obs[i] < model[i] else 8),
-                        textcoords="offset points", fontsize=7.5, fontweight="bold",
-                        color=OKABE_ITO["vermillion"], zorder=7)
+            ann = ax.annotate(f"{df['element'].iloc[i]} ({float(z):+.1f}σ)", (tc[i], obs[i]),
+                              xytext=(8, -12 if obs[i] < model[i] else 8),
+                              textcoords="offset points", fontsize=7.5, fontweight="bold",
+                              color=OKABE_ITO["vermillion"], zorder=7)
+            ann.set_in_layout(False)
         if len(out):
             ax.scatter([], [], s=110, facecolors="none", edgecolors="black",
                        label="flagged outlier (|z| > 3)")
@@ -274,14 +285,19 @@ def residuals_plot(residuals: pd.DataFrame, *, title: str | None = None,
         fig, ax = plt.subplots(figsize=(max(7.0, 0.16 * len(df) + 1.5), 3.6),
                                layout="constrained")
         x = np.arange(len(df))
-        seen: set[str] = set()
-        for i in x:
-            colour, marker, label = _class_style(geo[i])
-            lab = label if label not in seen else None
-            seen.add(label)
-            ax.vlines(i, 0, z[i], color=colour, lw=1.4, alpha=0.8)
-            ax.plot(i, z[i], marker=marker, color=colour, mfc=colour if fitted[i] else "white",
-                    ms=5, ls="none", label=lab)
+        geo = np.asarray(geo, dtype=str)
+        for cls in list(CLASS_STYLE) + ["other"]:
+            in_cls = (geo == cls) if cls != "other" else ~np.isin(geo, list(CLASS_STYLE))
+            if not in_cls.any():
+                continue
+            colour, marker, label = _class_style(cls)
+            ax.vlines(x[in_cls], 0, z[in_cls], color=colour, lw=1.4, alpha=0.8)
+            for fit_state in (True, False):
+                m = in_cls & (fitted == fit_state)
+                if m.any():
+                    ax.plot(x[m], z[m], marker=marker, color=colour,
+                            mfc=colour if fit_state else "white", ms=5, ls="none",
+                            label=label if fit_state or not (in_cls & fitted).any() else None)
         for t in (-threshold, threshold):
             ax.axhline(t, color=OKABE_ITO["vermillion"], lw=0.9, ls="--")
         ax.axhspan(-1, 1, color="#eeeeee", zorder=0)
@@ -524,8 +540,9 @@ def planet_plot(planet: pd.DataFrame, *, reference: Mapping[str, tuple[float, st
                                 lw=0.8)
                 ax.set_yscale("log")
                 ax.set_xticks(x, df["species"], rotation=60, fontsize=7.5)
-                for xi, vi in zip(x, v, strict=True):
-                    ax.text(xi, vi * 1.15, f"{vi:.3g}", ha="center", fontsize=6.5)
+                for xi, vi, top in zip(x, v, v + hi, strict=True):
+                    ax.text(xi, top * 1.12, f"{vi:.3g}", ha="center", fontsize=6.5,
+                            in_layout=False)
             else:
                 ax.text(0.5, 0.5, "no values", transform=ax.transAxes, ha="center")
             ax.set_title(what, loc="left")
@@ -536,7 +553,7 @@ def planet_plot(planet: pd.DataFrame, *, reference: Mapping[str, tuple[float, st
             ax.errorbar(v, y, xerr=[lo, hi], fmt="o", color=OKABE_ITO["green"], capsize=3)
             ax.set_yticks(y, rat["species"])
             for yi, vi, sp in zip(y, v, rat["species"], strict=True):
-                ax.text(vi, yi + 0.25, f"{vi:.3f}", ha="center", fontsize=7)
+                ax.text(vi, yi + 0.22, f"{vi:.3f}", ha="center", fontsize=7, in_layout=False)
                 if sp in reference:
                     ax.plot(reference[sp][0], yi, marker="*", ms=10, color="black",
                             ls="none")

@@ -35,7 +35,7 @@ __all__ = ["REPORT_KINDS", "detect_kind", "build_report", "Report", "render_html
 REPORT_KINDS: dict[str, tuple[str, ...]] = {
     "sample": ("sample.json",),
     "star": ("planet.json",),
-    "batch": ("batch.json",),
+    "batch": ("summary.json", "run.json"),
     "fit": ("fit.json", "residuals.csv"),
     "rank": ("ranking.csv",),
 }
@@ -93,9 +93,6 @@ def detect_kind(folder: str | Path) -> str:
     for kind, files in REPORT_KINDS.items():
         if all((folder / f).exists() for f in files):
             return kind
-    if any(folder.glob("*.parquet")) or any(folder.glob("*/*.parquet")):
-        if (folder / "summary.csv").exists() or (folder / "batch_summary.csv").exists():
-            return "batch"
     known = "; ".join(f"{k}: {', '.join(v)}" for k, v in REPORT_KINDS.items())
     raise InputError(f"unknown result folder: it holds none of the files of a planetmix "
                      f"result ({known})", file=str(folder))
@@ -520,56 +517,115 @@ _RATIO_COLS = ("Mg/Si_bulk", "Fe/Si_bulk", "Fe/Mg_bulk", "Ca/Al_bulk", "Mg/Si_ma
                "Mg#_mantle", "Ca/Al_mantle")
 
 
+def _draw_column(name: str) -> tuple[str, str, str] | None:
+    """(reservoir, species, unit) of a planet-draws column, or None for other columns.
+
+    Columns as the hand-off writes them: ``core_mass_fraction``, ``mantle_SiO2_wt``,
+    ``mantle_U_ppm``, ``core_Fe_wt``, ``bulk_Mg_wt`` and the molar ratio names.
+    """
+    if name in ("cmf", "core_mass_fraction"):
+        return ("planet", "core_mass_fraction", "kg/kg")
+    if name in _RATIO_COLS:
+        return ("ratio", name, "molar")
+    for res in ("mantle", "core"):
+        for suffix, unit in (("_wt", "wt%"), ("_ppm", "ppm")):
+            if name.startswith(res + "_") and name.endswith(suffix):
+                return (res, name[len(res) + 1:-len(suffix)], unit)
+    return None
+
+
 def _planet_from_draws(rep: Report, draws: pd.DataFrame, meta: dict[str, Any]) -> None:
-    """Whole-planet figure and numbers from a wide table of planet draws."""
+    """Whole-planet figure, numbers and heat history from a wide table of planet draws."""
     from . import plots
 
     rows = []
     for c in draws.columns:
+        where = _draw_column(str(c))
+        if where is None:
+            continue
         v = pd.to_numeric(draws[c], errors="coerce").dropna().to_numpy()
         if not v.size:
             continue
-        lo, med, hi = np.percentile(v, [5, 50, 95])
-        name = str(c)
-        if name in ("cmf", "core_mass_fraction"):
-            rows.append(("planet", "core_mass_fraction", med, "kg/kg", lo, hi))
-        elif name in _RATIO_COLS or name.startswith("ratio:"):
-            rows.append(("ratio", name.removeprefix("ratio:"), med, "molar", lo, hi))
-        elif name.startswith(("mantle:", "mantle_")) and name.endswith(("_wt", "wt%")):
-            sp = name.split(":", 1)[-1].removeprefix("mantle_").removesuffix("_wt")
-            rows.append(("mantle", sp.removesuffix("wt%").strip(), med, "wt%", lo, hi))
-        elif name.startswith(("core:", "core_")) and name.endswith(("_wt", "wt%")):
-            sp = name.split(":", 1)[-1].removeprefix("core_").removesuffix("_wt")
-            rows.append(("core", sp.removesuffix("wt%").strip(), med, "wt%", lo, hi))
+        lo, med, hi = np.percentile(v, [2.5, 50, 97.5])
+        rows.append((*where[:2], med, where[2], lo, hi))
     if not rows:
         return
     planet = pd.DataFrame(rows, columns=["reservoir", "species", "value", "unit", "lo", "hi"])
-    rep.figures.append(("Whole planet", "Medians with 5-95% intervals over the draws.",
-                        lambda: plots.planet_plot(planet)))
+    rep.figures.append(("Whole planet", "Medians with 95% central intervals (2.5-97.5%) "
+                        "over the draws.", lambda: plots.planet_plot(planet)))
     for _, r in planet[planet["reservoir"].isin(["planet", "ratio"])].iterrows():
         rep.key_numbers.append((str(r["species"]), _fmt(r["value"]),
-                                f"[{_fmt(r['lo'])}, {_fmt(r['hi'])}] (5-95%)"))
-    rep.tables.append(("Planet (medians and 5-95% intervals)", _table_html(planet)))
+                                f"95% interval [{_fmt(r['lo'])}, {_fmt(r['hi'])}]"))
+    rep.tables.append(("Planet (medians and 95% intervals over the draws)",
+                       _table_html(planet)))
+    heat_cols = [c for c in draws.columns if str(c).startswith("heat_W_per_kg_")
+                 and str(c).endswith("Gyr")]
+    if heat_cols:
+        t = np.array([float(str(c)[len("heat_W_per_kg_"):-3]) for c in heat_cols])
+        order = np.argsort(t)
+        vals = draws[[heat_cols[i] for i in order]].to_numpy(float) * 1e12
+        lo, med, hi = np.nanpercentile(vals, [2.5, 50, 97.5], axis=0)
+        heat = pd.DataFrame({"time_Gyr_ago": t[order], "total": med, "total_lo": lo,
+                             "total_hi": hi})
+        rep.figures.append(("Radiogenic heat production", "Per kg of mantle, median and 95% "
+                            "interval over the draws (Turcotte & Schubert 2014, Table 4.2).",
+                            lambda: plots.heat_plot(heat, unit="pW/kg of mantle")))
+        rep.key_numbers.append(("mantle heat production today [pW/kg]", _fmt(med[0]),
+                                f"95% interval [{_fmt(lo[0])}, {_fmt(hi[0])}]"))
 
 
 # --------------------------------------------------------------------------- star / batch
+def _stat_text(st: Any) -> tuple[str, str]:
+    if isinstance(st, dict) and "median" in st:
+        lo = st.get("p2.5", st.get("p16"))
+        hi = st.get("p97.5", st.get("p84"))
+        width = "95%" if "p2.5" in st else "68%"
+        return _fmt(st["median"]), f"{width} interval [{_fmt(lo)}, {_fmt(hi)}]"
+    return _fmt(st), ""
+
+
 def _star_report(folder: Path) -> Report:
     meta = _read_json(folder / "planet.json")
-    rep = Report(title=meta.get("title", meta.get("star", folder.name)), kind="star",
+    rep = Report(title=meta.get("title", meta.get("star_id", folder.name)), kind="star",
                  folder=str(folder), provenance=meta.get("provenance") or {})
-    for k, v in meta.items():
-        if k in ("provenance", "title") or isinstance(v, dict | list):
-            continue
-        rep.key_numbers.append((k, _fmt(v) if isinstance(v, float) else str(v), ""))
-    for k in ("cautions", "warnings", "notes"):
-        for line in meta.get(k) or []:
-            rep.notes.append(str(line))
+    rep.key_numbers.append(("star", str(meta.get("star_id", "?")),
+                            f"{meta.get('n_draws', '?')} Monte Carlo draws"))
+    dv = meta.get("devolatilisation") or {}
+    if dv:
+        pars = ", ".join(f"{k} = {_fmt(v)}" for k, v in (dv.get("parameters") or {}).items())
+        rep.key_numbers.append(("devolatilisation pattern", str(dv.get("label", "")),
+                                f"{dv.get('form', '')}: {pars}"))
+    iron = meta.get("iron_split") or {}
+    if iron:
+        rep.key_numbers.append(("iron split", json.dumps({k: v for k, v in iron.items()}),
+                                ""))
     draws = _planet_draws(folder)
     if draws is not None:
         _planet_from_draws(rep, draws, meta)
-    rep.limits.append("The devolatilisation pattern applied to the star is an assumption: "
-                      "condensation temperatures depend on the disk's composition (C/O, "
-                      "Mg/Si), so an Earth-calibrated pattern may not hold in another "
+    else:
+        if "core_mass_fraction" in meta:
+            rep.key_numbers.append(("core_mass_fraction", *_stat_text(meta[
+                "core_mass_fraction"])))
+        for k, st in (meta.get("molar_ratios") or {}).items():
+            rep.key_numbers.append((k, *_stat_text(st)))
+    xh = meta.get("star_abundances_dex") or {}
+    if xh:
+        tab = pd.DataFrame([{"element": k, "[X/H] dex": v.get("value"),
+                             "1-sigma dex": v.get("uncertainty")} for k, v in xh.items()])
+        rep.tables.append(("Stellar abundances used", _table_html(tab)))
+    flags = meta.get("flags") or {}
+    for k, v in flags.items():
+        if isinstance(v, list) and v:
+            rep.diagnostics.append((k.replace("_", " "), ", ".join(map(str, v)),
+                                    str(flags.get(f"{k}_rule", ""))))
+        elif not isinstance(v, list) and not k.endswith("_rule"):
+            rep.diagnostics.append((k.replace("_", " "), _fmt(v), ""))
+    if meta.get("caution"):
+        rep.notes.append(str(meta["caution"]))
+    rep.limits.append("Only the stellar abundance uncertainties are propagated; the solar "
+                      "reference and the devolatilisation pattern are held fixed. "
+                      "Condensation temperatures depend on the disk's composition (C/O, "
+                      "Mg/Si), so an Earth-calibrated pattern is an assumption for another "
                       "system.")
     return rep
 
@@ -577,40 +633,54 @@ def _star_report(folder: Path) -> Report:
 def _batch_report(folder: Path) -> Report:
     from . import plots
 
-    meta = _read_json(folder / "batch.json") if (folder / "batch.json").exists() else {}
-    rep = Report(title=meta.get("title", folder.name), kind="batch", folder=str(folder),
-                 provenance=meta.get("provenance") or {})
-    summary = None
-    for name in ("summary.csv", "batch_summary.csv", "summary.parquet"):
-        if (folder / name).exists():
-            summary = (pd.read_parquet(folder / name) if name.endswith(".parquet")
-                       else _read_csv(folder / name))
-            break
-    if summary is None:
-        parts = sorted(folder.rglob("*.parquet"))
-        if not parts:
-            raise InputError("batch folder holds no summary table and no Parquet parts",
-                             file=str(folder))
-        summary = pd.concat([pd.read_parquet(p) for p in parts], ignore_index=True)
-    rep.key_numbers.append(("rows (stars or draws)", str(len(summary)), ""))
-    cols = [c for c in summary.columns
-            if any(k in c.lower() for k in ("cmf", "core_mass_fraction", "mg/si", "fe/mg",
-                                            "mg_si", "fe_mg"))]
-    cols = [c for c in cols if pd.api.types.is_numeric_dtype(summary[c])][:6]
-    for c in cols:
-        v = pd.to_numeric(summary[c], errors="coerce").dropna()
-        if len(v):
-            q = np.percentile(v, [5, 50, 95])
-            rep.key_numbers.append((c, _fmt(q[1]), f"5-95% across the catalogue "
-                                    f"[{_fmt(q[0])}, {_fmt(q[2])}]"))
-    if cols:
-        rep.figures.append(("Across the catalogue", "Distributions of core mass fraction "
-                            "and molar ratios across the stars.",
-                            lambda: plots.distribution_plot(summary, columns=cols)))
-    for k in ("n_failed", "failed", "errors"):
+    meta = _read_json(folder / "summary.json") if (folder / "summary.json").exists() else {}
+    run = _read_json(folder / "run.json") if (folder / "run.json").exists() else {}
+    rep = Report(title=run.get("title", f"catalogue {folder.name}"), kind="batch",
+                 folder=str(folder), provenance=run.get("provenance") or run)
+    parts = sorted(folder.glob("*.parquet")) or sorted(folder.rglob("*.parquet"))
+    if not parts:
+        raise InputError("batch folder holds no Parquet parts", file=str(folder))
+    try:
+        table = pd.concat([pd.read_parquet(p) for p in parts], ignore_index=True)
+    except Exception as err:  # noqa: BLE001 - pyarrow raises several kinds
+        raise InputError(f"cannot read the batch parts: {err}", file=str(folder)) from err
+    ok = table[table["status"] == "ok"] if "status" in table.columns else table
+    rep.key_numbers.append(("stars", str(len(table)),
+                            f"{len(ok)} done, {int(meta.get('stars_failed', 0))} failed"
+                            + ("" if meta.get("complete", True) else "; run incomplete")))
+    wanted = {"core_mass_fraction": "CMF", "Mg/Si_bulk": "Mg/Si (bulk, molar)",
+              "Fe/Mg_bulk": "Fe/Mg (bulk, molar)", "Fe/Si_bulk": "Fe/Si (bulk, molar)",
+              "Mg#_mantle": "Mg# (mantle)"}
+    dist = pd.DataFrame(index=ok.index)
+    for col, label in wanted.items():
+        c = f"{col}_median" if f"{col}_median" in ok.columns else col
+        if c in ok.columns:
+            v = pd.to_numeric(ok[c], errors="coerce")
+            dist[label] = v
+            q = np.nanpercentile(v, [5, 50, 95]) if v.notna().any() else [np.nan] * 3
+            rep.key_numbers.append((f"{label}, median star", _fmt(q[1]), f"5-95% across the "
+                                    f"catalogue [{_fmt(q[0])}, {_fmt(q[2])}]"))
+    if dist.shape[1]:
+        cols = list(dist.columns)[:3]
+        rep.figures.append(("Across the catalogue", "Distributions of each star's median "
+                            "core mass fraction and molar ratios.",
+                            lambda: plots.distribution_plot(dist, columns=cols)))
+    for k in ("complete", "stars_done", "stars_failed", "partitions", "partitions_skipped",
+              "seconds_this_run"):
         if k in meta:
-            rep.diagnostics.append((k, str(meta[k])[:300], ""))
-    rep.tables.append(("First rows", _table_html(summary.head(30))))
+            rep.diagnostics.append((k.replace("_", " "), _fmt(meta[k]) if isinstance(
+                meta[k], float) else str(meta[k]), ""))
+    if (folder / "failed.csv").exists():
+        failed = _read_csv(folder / "failed.csv")
+        if len(failed):
+            rep.tables.append(("Stars that failed", _table_html(failed.head(50))))
+    show = [c for c in ("star_id", "status", "core_mass_fraction_median",
+                        "Mg/Si_bulk_median", "Fe/Mg_bulk_median", "solar_ratio")
+            if c in table.columns]
+    rep.tables.append(("Stars (first 50)", _table_html(table[show].head(50))))
+    rep.limits.append("Each star's planet uses the same devolatilisation pattern and iron "
+                      "split; the spread across the catalogue reflects the stellar "
+                      "abundances only.")
     return rep
 
 
@@ -788,6 +858,7 @@ def build_report(folder: str | Path, *, out: str | Path | None = None,
     try:
         with os.fdopen(fd, "w", encoding="utf-8") as fh:
             fh.write(text)
+        os.chmod(tmp, 0o644)
         os.replace(tmp, target)
     finally:
         if os.path.exists(tmp):

@@ -1,0 +1,223 @@
+"""Figures, the HTML report and the input templates."""
+
+from __future__ import annotations
+
+import re
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+import components
+from inversion import plots
+from inversion.case import load_case, read_target
+from inversion.cli import main
+from inversion.model import compile_problem
+from inversion.report import detect_kind
+from inversion.report_cli import TEMPLATES, template_text
+from tests.conftest import EARTH_EXCLUDE, write_case, write_target
+
+REPO = Path(__file__).resolve().parents[2]
+PNG_MAGIC = b"\x89PNG\r\n\x1a\n"
+
+
+# ----------------------------------------------------------------- result folders
+@pytest.fixture(scope="module")
+def result_folders(tmp_path_factory) -> dict[str, Path]:
+    """A fit and a rank folder of the McDonough & Sun (1995) BSE against CI and H."""
+    base = tmp_path_factory.mktemp("results")
+    bse = components.load("BSE_MS95")
+    rel = (bse.uncertainty / bse.composition).fillna(0.15)
+    write_target(base / "target.csv", bse.composition, rel)
+    case = write_case(base, candidates=["CI", "H"], exclude=EARTH_EXCLUDE,
+                      title="BSE vs CI+H (report test)")
+    assert main(["fit", str(case), "--out", str(base / "fit")]) == 0
+    assert main(["rank", str(case), "--out", str(base / "rank"), "--workers", "1"]) == 0
+    return {"fit": base / "fit", "rank": base / "rank", "base": base}
+
+
+def _residuals() -> pd.DataFrame:
+    els = ["Al", "Ca", "Mg", "Si", "Fe", "Ni", "Ir", "Na", "K", "Zn", "S", "Pb"]
+    tc = components.elements().loc[els, "tc50_lodders2003"].to_numpy()
+    rng = np.random.default_rng(3)
+    model = np.minimum(0.0, 0.002 * (tc - 1350.0))
+    obs = model + rng.normal(0, 0.05, len(els))
+    obs[-1] += 0.6
+    sigma = np.full(len(els), 0.05)
+    z = (obs - model) / sigma
+    flag = np.where(np.abs(z) > 3, np.where(z > 0, "above model", "below model"), "")
+    return pd.DataFrame({"element": els, "tc50": tc, "observed": obs, "model": model,
+                         "sigma": sigma, "z": z, "fitted": [True] * 10 + [False] * 2,
+                         "flag": flag, "model_lo": model - 0.05, "model_hi": model + 0.05})
+
+
+def _planet() -> pd.DataFrame:
+    rows = [("mantle", "SiO2", 45.0, "wt%"), ("mantle", "MgO", 38.0, "wt%"),
+            ("mantle", "FeO", 8.0, "wt%"), ("mantle", "U", 0.02, "ppm"),
+            ("mantle", "Th", 0.08, "ppm"), ("mantle", "K2O", 0.03, "wt%"),
+            ("core", "Fe", 85.0, "wt%"), ("core", "Ni", 5.0, "wt%"),
+            ("ratio", "Mg/Si_bulk", 1.1, "molar"), ("planet", "core_mass_fraction", 0.32,
+                                                    "kg/kg")]
+    df = pd.DataFrame(rows, columns=["reservoir", "species", "value", "unit"])
+    return df.assign(lo=df["value"] * 0.9, hi=df["value"] * 1.1)
+
+
+def _is_png(fig) -> bool:
+    data = plots.png_bytes(fig)
+    plots.plt.close(fig)
+    return data.startswith(PNG_MAGIC) and len(data) > 5000
+
+
+# ----------------------------------------------------------------- figures
+def test_every_figure_function_draws_a_png(tmp_path):
+    res = _residuals()
+    draws = pd.DataFrame(np.random.default_rng(0).normal(size=(300, 3)) * [50, 0.0003, 0.001]
+                         + [1350, 0.002, 0.005], columns=["T0", "slope", "lam"])
+    ranking = pd.DataFrame({"components": ["CI", "CI+H", "H", "CV+EH"],
+                            "status": ["optimal", "optimal", "optimal", "infeasible"],
+                            "bic": [10.0, 11.5, 30.0, np.inf], "aic": [8.0, 9.0, 28.0, np.inf]})
+    heat = pd.DataFrame({"time_Gyr_ago": np.linspace(0, 4.5, 10), "238U": np.linspace(8, 16, 10),
+                         "235U": np.linspace(0.3, 23, 10), "232Th": np.full(10, 8.0),
+                         "40K": np.linspace(3, 40, 10)})
+    heat["total"] = heat[["238U", "235U", "232Th", "40K"]].sum(axis=1)
+    figs = {
+        "volatility": plots.volatility_diagram(
+            res, volatility={"form": "kinked", "T0": 1350.0, "slope": 0.002},
+            volatility_draws=draws[["T0", "slope"]].to_numpy(), title="synthetic"),
+        "residuals": plots.residuals_plot(res),
+        "weights": plots.weights_plot({"CI": 0.4, "H": 0.6}, mass_fractions={"CI": 0.5,
+                                                                             "H": 0.5}),
+        "weights_draws": plots.weights_plot(
+            {"CI": 0.4, "H": 0.6}, draws=pd.DataFrame({"CI": np.linspace(0.3, 0.5, 50),
+                                                       "H": np.linspace(0.7, 0.5, 50)})),
+        "pairs": plots.pair_plot(draws, truth={"T0": 1350.0}),
+        "ranking": plots.ranking_plot(ranking),
+        "planet": plots.planet_plot(_planet(),
+                                    reference={"core_mass_fraction": (0.325, "Earth")}),
+        "heat": plots.heat_plot(heat),
+        "distribution": plots.distribution_plot(pd.DataFrame({
+            "cmf": np.random.default_rng(1).uniform(0.2, 0.4, 40),
+            "Mg/Si": np.random.default_rng(2).uniform(0.9, 1.3, 40)})),
+    }
+    for name, fig in figs.items():
+        assert _is_png(fig), name
+    # SVG too, through the file writer
+    fig = plots.residuals_plot(res)
+    paths = plots.save_figure(fig, tmp_path / "resid")
+    assert [p.suffix for p in paths] == [".png", ".svg"]
+    svg = (tmp_path / "resid.svg").read_text()
+    assert svg.lstrip().startswith("<?xml") and "<svg" in svg
+    assert not re.search(r"(href|src)=\"https?://", svg)
+
+
+def test_ranking_delta_is_measured_from_the_best_feasible():
+    table = pd.DataFrame({"components": ["A", "B", "C"], "status": ["infeasible", "optimal",
+                                                                     "optimal"],
+                          "bic": [1.0, 5.0, 9.0]})
+    fig = plots.ranking_plot(table)
+    ax = fig.axes[0]
+    labels = [t.get_text() for t in ax.texts]
+    # B is the best feasible hypothesis (delta 0), C is 4 above it, A is infeasible
+    assert "0.0" in labels and "4.0" in labels and "infeasible" in labels
+    plots.plt.close(fig)
+
+
+# ----------------------------------------------------------------- report
+def _no_external(html: str) -> None:
+    assert not re.search(r"""(src|href)\s*=\s*['"]?\s*(https?:)?//""", html, re.I)
+    assert "<script" not in html.lower()
+    assert "<link" not in html.lower()
+
+
+def test_fit_report_is_self_contained(result_folders):
+    folder = result_folders["fit"]
+    assert detect_kind(folder) == "fit"
+    assert main(["report", str(folder), "--figures"]) == 0
+    html = (folder / "report.html").read_text(encoding="utf-8")
+    for section in ("Key numbers", "Figures", "Diagnostics", "Provenance",
+                    "Limits of the model", "Volatility diagram", "Residuals by element",
+                    "Building-block weights", "Whole planet", "core mass fraction"):
+        assert section in html, section
+    imgs = re.findall(r"src='data:image/png;base64,([A-Za-z0-9+/=]+)'", html)
+    assert len(imgs) >= 4
+    import base64
+
+    assert all(base64.b64decode(i).startswith(PNG_MAGIC) for i in imgs)
+    _no_external(html)
+    # the numbers of the result appear in the report
+    import json
+
+    fit = json.loads((folder / "fit.json").read_text())
+    assert f"{fit['core_mass_fraction']:.4g}" in html
+    # atomic write: no temporary files left behind
+    assert not [p for p in folder.iterdir() if p.name.startswith(".report.")]
+    # --figures: each figure also as PNG and SVG files
+    pngs = sorted((folder / "figures").glob("*.png"))
+    svgs = sorted((folder / "figures").glob("*.svg"))
+    assert len(pngs) >= 4 and len(svgs) == len(pngs)
+    assert all(p.read_bytes().startswith(PNG_MAGIC) for p in pngs)
+
+
+def test_rank_report(result_folders, tmp_path):
+    folder = result_folders["rank"]
+    out = tmp_path / "r.html"
+    assert main(["report", str(folder), "--out", str(out)]) == 0
+    html = out.read_text(encoding="utf-8")
+    assert "Hypothesis ranking (BIC)" in html and "best hypothesis" in html
+    assert len(re.findall(r"data:image/png;base64,", html)) >= 2
+    _no_external(html)
+    table = pd.read_csv(folder / "ranking.csv")
+    assert str(table.loc[0, "components"]) in html
+
+
+def test_report_of_a_folder_that_is_no_result(tmp_path, capsys):
+    (tmp_path / "notes.txt").write_text("hello")
+    assert main(["report", str(tmp_path)]) == 2
+    err = capsys.readouterr().err
+    assert "unknown result folder" in err and str(tmp_path) in err
+    assert main(["report", str(tmp_path / "missing")]) == 2
+    assert not (tmp_path / "report.html").exists()
+
+
+# ----------------------------------------------------------------- templates
+def test_templates_match_data_templates():
+    for kind, name in TEMPLATES.items():
+        canonical = REPO / "data_templates" / name
+        if not canonical.exists():
+            pytest.fail(f"data_templates/{name} is missing")
+        assert template_text(kind) == canonical.read_text(encoding="utf-8"), kind
+
+
+def test_case_target_component_templates_pass_the_real_loaders(tmp_path):
+    for kind in ("case", "target", "component"):
+        assert main(["template", kind, "--dir", str(tmp_path)]) == 0
+    case = load_case(tmp_path / "case.toml")
+    assert case.target.reference_element == "Mg"
+    assert case.candidate_names == ["CI", "CV", "H", "EH"]
+    p = compile_problem(case)
+    assert p.n_fit >= 10
+    comp, unc, defaulted = read_target(tmp_path / "target.csv")
+    # MgO 37.8 wt% (McDonough & Sun 1995) -> Mg 22.8 wt%
+    assert comp["Mg"] == pytest.approx(0.378 * 24.305 / 40.304, rel=1e-3)
+    assert not defaulted
+    block = components.read_component(tmp_path / "component.csv")
+    assert block.name == "MyBlock" and block.composition["Mg"] == pytest.approx(0.0961)
+    # the component works as a candidate (the template says: without [isotopes])
+    text = (tmp_path / "case.toml").read_text()
+    text = text.replace('candidates = ["CI", "CV", "H", "EH"]',
+                        'candidates = ["CI", "component.csv"]')
+    lines, skip = [], False
+    for line in text.splitlines():
+        if line.startswith("["):
+            skip = line.strip() == "[isotopes]"
+        if not skip:
+            lines.append(line)
+    text = "\n".join(lines) + "\n"
+    (tmp_path / "case.toml").write_text(text)
+    case2 = load_case(tmp_path / "case.toml")
+    assert case2.candidate_names == ["CI", "MyBlock"]
+    # no overwrite without --force
+    assert main(["template", "case", "--dir", str(tmp_path)]) == 2
+    assert main(["template", "case", "--dir", str(tmp_path), "--force"]) == 0
+    assert main(["template", "nonsense", "--dir", str(tmp_path)]) == 2
