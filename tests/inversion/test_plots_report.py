@@ -221,3 +221,34 @@ def test_case_target_component_templates_pass_the_real_loaders(tmp_path):
     assert main(["template", "case", "--dir", str(tmp_path)]) == 2
     assert main(["template", "case", "--dir", str(tmp_path), "--force"]) == 0
     assert main(["template", "nonsense", "--dir", str(tmp_path)]) == 2
+
+
+def test_star_and_catalog_templates_pass_the_real_loaders(tmp_path):
+    from inversion.batch import read_catalogue
+    from inversion.star import read_star_table
+
+    assert main(["template", "star", "--dir", str(tmp_path)]) == 0
+    assert main(["template", "catalog", "--dir", str(tmp_path)]) == 0
+    star = read_star_table(tmp_path / "star_abundances.csv")
+    assert star is not None
+    rows, _digest = read_catalogue(tmp_path / "catalog.csv")
+    assert len(rows) == 3
+
+
+def test_star_and_batch_reports(tmp_path):
+    star_dir, batch_dir = tmp_path / "star", tmp_path / "batch"
+    tpl = REPO / "data_templates"
+    assert main(["star", str(tpl / "star_abundances.csv"), "--out", str(star_dir),
+                 "--draws", "200"]) == 0
+    assert main(["batch", str(tpl / "catalog.csv"), "--out", str(batch_dir), "--draws", "50",
+                 "--workers", "1"]) == 0
+    assert detect_kind(star_dir) == "star" and detect_kind(batch_dir) == "batch"
+    for folder, expect in ((star_dir, ("Whole planet", "core_mass_fraction", "Caution")),
+                           (batch_dir, ("Across the catalogue", "CMF, median star",
+                                        "Mg/Si (bulk, molar), median star", "demo-002"))):
+        assert main(["report", str(folder)]) == 0
+        html = (folder / "report.html").read_text(encoding="utf-8")
+        for text in expect:
+            assert text in html, (folder.name, text)
+        assert len(re.findall(r"data:image/png;base64,", html)) >= 1
+        _no_external(html)
