@@ -28,7 +28,7 @@ from .qp import MAX_ENUMERATED_VARIABLES, solve_batch, solve_cvxpy
 from .volatility import get_form
 
 __all__ = ["FitResult", "fit", "fit_problem", "screen", "Ranking", "FitSettings",
-           "STATUS_OPTIMAL", "STATUS_INFEASIBLE"]
+           "SCREEN_SETTINGS", "STATUS_OPTIMAL", "STATUS_INFEASIBLE"]
 
 STATUS_OPTIMAL = "optimal"
 STATUS_INFEASIBLE = "infeasible"
@@ -43,6 +43,11 @@ class FitSettings:
     zoom_levels: int = 6
     zoom_points: int = 5
     solver: str = "active-set enumeration (exact); cvxpy/CLARABEL above 7 variables"
+
+
+#: Coarser profile used when screening many hypotheses (the best ones are then re-fitted
+#: with the default settings by ``planetmix fit``).
+SCREEN_SETTINGS = FitSettings(passes=3, zoom_levels=2)
 
 
 @dataclass(frozen=True)
@@ -408,7 +413,7 @@ def screen(case: Case, *, settings: FitSettings | None = None, workers: int = 1,
     progress : bool
         Show a progress bar on standard error.
     """
-    settings = settings or FitSettings()
+    settings = settings or SCREEN_SETTINGS
     p = compile_problem(case)
     names = list(p.components)
     subsets = [s for r in range(1, case.max_mixture_size + 1)

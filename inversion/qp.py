@@ -129,7 +129,7 @@ def solve_batch(A: np.ndarray, b: np.ndarray, G: np.ndarray | None = None,
         Kreg = K.copy()
         Kreg[:, :, diag, diag] = -1e-10 / hscale[:, None, None]
         sol = np.linalg.solve(Kreg, rhs[..., None])[..., 0]
-        for _ in range(2):  # iterative refinement towards the unregularised solution
+        for _ in range(1):  # iterative refinement towards the unregularised solution
             r = rhs - np.einsum("bsij,bsj->bsi", K, sol)
             sol = sol + np.linalg.solve(Kreg, r[..., None])[..., 0]
         u = sol[:, :, :m]
