@@ -237,7 +237,8 @@ def _load_plugins() -> None:
     """Import modules that register further sub-commands (sample, star, report...)."""
     import importlib
 
-    for mod in ("inversion.bayes_cli", "inversion.star_cli", "inversion.report_cli"):
+    for mod in ("inversion.bayes_cli", "inversion.star_cli", "inversion.report_cli",
+                "inversion.demo"):
         try:
             importlib.import_module(mod)
         except ModuleNotFoundError as err:
