@@ -60,7 +60,7 @@ def _demo(parser: argparse.ArgumentParser):
                 print(f"demo step failed with exit status {code}")
                 return code
         if "report" in _COMMANDS:
-            for title, argv, _ok in list(steps):
+            for _title, argv, _ok in steps:
                 folder = argv[argv.index("--out") + 1]
                 print(f"\n== report: planetmix report {folder}", flush=True)
                 code = main(["report", folder])
