@@ -33,13 +33,13 @@ import components
 from .exceptions import InputError
 from .handoff import PERCENTILES, STATS
 from .star import (
+    STAR_ELEMENTS,
     StarInput,
     StarSettings,
-    check_star_values,
-    draw_xh,
     planets_from_xh,
     star_model,
     star_seed,
+    xh_from_normals,
 )
 
 __all__ = ["read_catalogue", "CatalogueRow", "run_partition", "run_batch", "BatchSummary",
@@ -65,8 +65,8 @@ class CatalogueRow:
     reason: str = ""
 
 
-def _is_empty(v: str) -> bool:
-    return v.strip() == "" or v.strip().lower() in ("nan", "na", "null")
+#: Cell texts read as "not measured".
+_EMPTY = ("", "nan", "na", "null")
 
 
 def read_catalogue(path: str | Path) -> tuple[list[CatalogueRow], str]:
@@ -97,12 +97,41 @@ def read_catalogue(path: str | Path) -> tuple[list[CatalogueRow], str]:
                              field=col)
         if not col.endswith("_err"):
             elements.append(col)
+    n = len(df)
+    V = np.full((n, len(elements)), np.nan)
+    E = np.full((n, len(elements)), np.nan)
+    reason = [""] * n
+
+    def note(mask: np.ndarray, text: str, raw: pd.Series) -> None:
+        for i in np.flatnonzero(mask):
+            if not reason[i]:
+                reason[i] = f"{text} (value {raw.iloc[i]!r})" if raw.iloc[i] else text
+
+    # parsed column by column (vectorised); a row's reason is its first problem
+    for j, e in enumerate(elements):
+        raw = df[e].str.strip()
+        empty = raw.str.lower().isin(_EMPTY).to_numpy()
+        num = pd.to_numeric(raw.where(~empty), errors="coerce").to_numpy(float)
+        bad = ~empty & ~np.isfinite(num)
+        col = f"{e}_err"
+        err_raw = df[col].str.strip() if col in df.columns else pd.Series([""] * n)
+        err_empty = err_raw.str.lower().isin(_EMPTY).to_numpy()
+        err = pd.to_numeric(err_raw.where(~err_empty), errors="coerce").to_numpy(float)
+        has = ~empty & ~bad
+        note(bad, f"[{e}/H] is not a number", raw)
+        note(has & err_empty, f"missing uncertainty for [{e}/H]", err_raw)
+        with np.errstate(invalid="ignore"):
+            note(has & ~err_empty & ~np.isfinite(err), f"uncertainty of [{e}/H] is not a "
+                 "number", err_raw)
+            note(has & ~err_empty & np.isfinite(err) & (err < 0), f"uncertainty of [{e}/H] "
+                 "must be a non-negative number of dex", err_raw)
+        V[:, j] = np.where(has, num, np.nan)
+        E[:, j] = err
+    used = [j for j, e in enumerate(elements) if e in STAR_ELEMENTS]
     rows: list[CatalogueRow] = []
     first: dict[str, int] = {}
-    records = df.to_dict("records")
-    for i, rec in enumerate(records):
+    for i, sid in enumerate(df["star_id"].str.strip()):
         row = i + 2
-        sid = str(rec["star_id"]).strip()
         if sid == "":
             rows.append(CatalogueRow(row, sid, None, "empty star_id"))
             continue
@@ -111,17 +140,16 @@ def read_catalogue(path: str | Path) -> tuple[list[CatalogueRow], str]:
                                      f"duplicate star_id (first on row {first[sid]})"))
             continue
         first[sid] = row
-        vals = {e: ("" if _is_empty(rec[e]) else rec[e]) for e in elements}
-        errs = {e: ("" if _is_empty(rec.get(f"{e}_err", "")) else rec.get(f"{e}_err", ""))
-                for e in elements}
-        try:
-            star = check_star_values(sid, vals, errs, file=file, row=row)
-        except InputError as err:
-            msg = err.args[0] if err.args else str(err)
-            rows.append(CatalogueRow(row, sid, None, f"{msg} (value {err.value!r})"
-                                     if getattr(err, "value", None) not in (None, "") else msg))
+        if reason[i]:
+            rows.append(CatalogueRow(row, sid, None, reason[i]))
             continue
-        rows.append(CatalogueRow(row, sid, star))
+        vi, ei = V[i], E[i]
+        here = [j for j in used if vi[j] == vi[j]]
+        unused = tuple(sorted(elements[j] for j in range(len(elements))
+                              if j not in used and vi[j] == vi[j]))
+        rows.append(CatalogueRow(row, sid, StarInput(
+            sid, {elements[j]: float(vi[j]) for j in here},
+            {elements[j]: float(ei[j]) for j in here}, unused)))
     digest = hashlib.sha256(Path(path).read_bytes()).hexdigest()
     return rows, digest
 
@@ -138,13 +166,14 @@ def quantiles_by_group(values: np.ndarray, n_groups: int) -> np.ndarray:
     bad = np.isnan(v).any(axis=(1, 2))
     good = ~bad
     if good.any():
-        s = np.sort(v[good], axis=1)
-        D = s.shape[1]
+        s = np.sort(np.swapaxes(v[good], 1, 2), axis=2)  # (G, Q, D): contiguous sorts
+        D = s.shape[2]
         pos = np.asarray(PERCENTILES) / 100.0 * (D - 1)
         lo = np.floor(pos).astype(int)
         hi = np.minimum(lo + 1, D - 1)
-        frac = (pos - lo)[None, :, None]
-        out[good] = s[:, lo, :] * (1.0 - frac) + s[:, hi, :] * frac
+        frac = pos - lo
+        q = s[:, :, lo] * (1.0 - frac) + s[:, :, hi] * frac  # (G, Q, 5)
+        out[good] = np.swapaxes(q, 1, 2)
     for g in np.flatnonzero(bad):
         with np.errstate(all="ignore"):
             import warnings
@@ -167,14 +196,13 @@ def run_partition(rows: list[CatalogueRow], settings: StarSettings) -> pd.DataFr
     meta: dict[int, dict[str, Any]] = {}
     frames = []
     if good:
-        xs = []
-        for r in good:
-            rng = np.random.default_rng(star_seed(settings.seed, r.star_id))
-            xh, missing = draw_xh(r.star, D, rng)
-            xs.append(xh)
-            meta[r.row] = {"solar_ratio": " ".join(missing),
-                           "not_used": " ".join(r.star.unused)}
-        draws, ok = planets_from_xh(np.concatenate(xs, axis=0), model)
+        n = len(STAR_ELEMENTS)
+        z = np.concatenate([np.random.default_rng(star_seed(settings.seed, r.star_id))
+                            .standard_normal((D, n)) for r in good], axis=0)
+        xh, missing = xh_from_normals([r.star for r in good], z)
+        for r, miss in zip(good, missing, strict=True):
+            meta[r.row] = {"solar_ratio": " ".join(miss), "not_used": " ".join(r.star.unused)}
+        draws, ok = planets_from_xh(xh, model)
         df = draws.to_dataframe(bulk=False, history=False)
         if draws.heat_history_w_per_kg is not None:
             df[f"heat_W_per_kg_{draws.history_gyr[-1]:g}Gyr"] = draws.heat_history_w_per_kg[:, -1]

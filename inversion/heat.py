@@ -110,15 +110,18 @@ def heat_history(c_U: np.ndarray | float, c_Th: np.ndarray | float, c_K: np.ndar
     >>> bool(h[0, 1] > 3 * h[0, 0])
     True
     """
-    conc = {"U": np.atleast_1d(np.asarray(c_U, float)),
-            "Th": np.atleast_1d(np.asarray(c_Th, float)),
-            "K": np.atleast_1d(np.asarray(c_K, float))}
-    t = np.asarray(times_gyr, float)[None, :]
-    out = np.zeros((max(v.size for v in conc.values()), t.shape[1]))
+    conc = np.stack(np.broadcast_arrays(np.atleast_1d(np.asarray(c_U, float)),
+                                        np.atleast_1d(np.asarray(c_Th, float)),
+                                        np.atleast_1d(np.asarray(c_K, float))), axis=1)
+    t = np.asarray(times_gyr, float)
+    # per element: W per kg of today's element at each time, summed over its isotopes
+    per_element = np.zeros((3, t.size))
+    row = {"U": 0, "Th": 1, "K": 2}
     for iso in ISOTOPES:
-        decay = np.exp(math.log(2.0) * t / iso.half_life_gyr)
-        out = out + (conc[iso.element][:, None] * isotope_mass_fraction(iso.name)
-                     * iso.w_per_kg * decay)
+        per_element[row[iso.element]] += (isotope_mass_fraction(iso.name) * iso.w_per_kg
+                                          * np.exp(math.log(2.0) * t / iso.half_life_gyr))
+    out = (conc[:, 0:1] * per_element[0] + conc[:, 1:2] * per_element[1]
+           + conc[:, 2:3] * per_element[2])
     return out
 
 

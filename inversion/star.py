@@ -60,7 +60,7 @@ __all__ = ["STAR_ELEMENTS", "CAUTION", "EARTH_PATTERN_LABEL", "EARTH_MANTLE_FEO_
            "EARTH_EXCLUDE", "Pattern", "StarSettings", "StarInput", "StarModel",
            "earth_calibrated_pattern", "read_pattern", "problem_for_bulk", "read_star_table",
            "check_star_values", "star_seed", "star_model", "draw_xh", "planets_from_xh",
-           "run_star", "core_split_fast"]
+           "run_star", "core_split_fast", "xh_from_normals"]
 
 #: Elements carried from the star to the planet: the rock-forming and core-forming
 #: elements, and the heat producers (U, Th, K).
@@ -78,9 +78,10 @@ EARTH_MANTLE_FEO_WT = 8.0
 EARTH_EXCLUDE = ("S", "Se", "Te", "Pb", "In", "Cl", "Br", "I", "Tl", "Hg", "Cd", "B")
 #: Relative 1-sigma given to BSE values without an uncertainty in the calibration.
 _DEFAULT_REL_UNC = 0.15
-#: Newton iterations of the fast core split and its tolerance on k.
+#: Newton iterations of the fast core split and its tolerance on the last step in k
+#: (convergence is quadratic: after a step of 1e-10 the error is ~1e-20).
 _NEWTON_MAX = 40
-_NEWTON_TOL = 1e-13
+_NEWTON_TOL = 1e-10
 _LN10 = math.log(10.0)
 
 
@@ -453,18 +454,26 @@ def draw_xh(star: StarInput, n_draws: int, rng: np.random.Generator) -> tuple[np
     elements follow the [Fe/H] draw (0 when Fe is missing too).
     """
     z = rng.standard_normal((n_draws, len(STAR_ELEMENTS)))
+    xh, missing = xh_from_normals([star], z)
+    return xh, missing[0]
+
+
+def xh_from_normals(stars: list[StarInput], z: np.ndarray) -> tuple[np.ndarray,
+                                                                    list[tuple[str, ...]]]:
+    """[X/H] draws for several stars from their standard normals ``z`` (S * D, n), each
+    star's D rows consecutive (see :func:`draw_xh`)."""
+    S = len(stars)
+    D = z.shape[0] // S
     fe = STAR_ELEMENTS.index("Fe")
-    xh = np.empty_like(z)
-    missing = []
-    present = np.array([e in star.values for e in STAR_ELEMENTS])
-    for j, e in enumerate(STAR_ELEMENTS):
-        if e in star.values:
-            xh[:, j] = star.values[e] + star.errors[e] * z[:, j]
-    for j, e in enumerate(STAR_ELEMENTS):
-        if not present[j]:
-            xh[:, j] = xh[:, fe] if present[fe] else 0.0
-            missing.append(e)
-    return xh, tuple(missing)
+    present = np.array([[e in st.values for e in STAR_ELEMENTS] for st in stars])
+    v = np.array([[st.values.get(e, 0.0) for e in STAR_ELEMENTS] for st in stars])
+    sd = np.array([[st.errors.get(e, 0.0) for e in STAR_ELEMENTS] for st in stars])
+    xh = (v[:, None, :] + sd[:, None, :] * z.reshape(S, D, -1))
+    fill = np.where(present[:, None, fe:fe + 1], xh[:, :, fe:fe + 1], 0.0)
+    xh = np.where(present[:, None, :], xh, fill).reshape(S * D, -1)
+    missing = [tuple(e for e, here in zip(STAR_ELEMENTS, row, strict=True) if not here)
+               for row in present]
+    return xh, missing
 
 
 def planets_from_xh(xh: np.ndarray, model: StarModel) -> tuple[PlanetDraws, np.ndarray]:

@@ -155,3 +155,18 @@ def test_batch_command(tmp_path, capsys):
 
     summary = json.loads((tmp_path / "o" / "summary.json").read_text())
     assert summary["partitions_skipped"] == 3 and summary["stars_done"] == 6
+
+
+def test_group_quantiles_equal_numpy_percentiles():
+    # The sort-based per-star percentiles against numpy's (linear interpolation), with a
+    # NaN (infeasible) draw in one group.
+    from inversion.batch import quantiles_by_group
+    from inversion.handoff import PERCENTILES
+
+    rng = np.random.default_rng(0)
+    v = rng.normal(size=(3 * 101, 4))
+    v[5, 2] = np.nan
+    q = quantiles_by_group(v, 3)
+    for g in range(3):
+        expected = np.nanpercentile(v[g * 101:(g + 1) * 101], PERCENTILES, axis=0)
+        np.testing.assert_allclose(q[g], expected, rtol=1e-12)
