@@ -161,9 +161,9 @@ def volatility_diagram(
             shade = "#f3f3f3" if _COSMO_ORDER.index(cls) % 2 == 0 else "#ffffff"
             ax.axvspan(lo, hi, color=shade, zorder=0, lw=0)
             ax.axvline(lo, color="#cfcfcf", lw=0.6, zorder=0)
-            ax.text(0.5 * (lo + min(hi, 1900)), 1.01, _COSMO_LABEL.get(cls, cls),
-                    transform=ax.get_xaxis_transform(), ha="center", va="bottom",
-                    fontsize=8, color="#555555")
+            ax.text(0.5 * (max(lo, 60.0) + min(hi, 1900)), 0.985,
+                    _COSMO_LABEL.get(cls, cls), transform=ax.get_xaxis_transform(),
+                    ha="center", va="top", fontsize=8, color="#555555", zorder=1)
         ax.axhline(0.0, color="#888888", lw=0.8, ls=":", zorder=1)
         model = df["model"].astype(float).to_numpy()
         tc = df["tc50"].astype(float).to_numpy()
@@ -173,9 +173,14 @@ def volatility_diagram(
             hi = df["model_hi"].astype(float).to_numpy()
             ax.vlines(tc, lo, hi, color="#9a9a9a", lw=5, alpha=0.55, zorder=2,
                       label=f"model, {interval_label}")
-        ok = np.isfinite(model)
+        seen_obs = np.isfinite(df["observed"].astype(float).to_numpy())
+        ok = np.isfinite(model) & seen_obs
         ax.scatter(tc[ok], model[ok], marker="_", s=140, color="black", lw=1.6, zorder=3,
                    label="model (each element)")
+        un = np.isfinite(model) & ~seen_obs
+        if un.any():
+            ax.scatter(tc[un], model[un], marker="_", s=90, color="#b5b5b5", lw=1.2,
+                       zorder=2.8, label="model, element not in the target")
         if volatility is not None and volatility.get("form"):
             _volatility_curve(ax, df, volatility, volatility_draws, interval_label)
         obs = df["observed"].astype(float).to_numpy()
@@ -218,12 +223,14 @@ def volatility_diagram(
                        label="flagged outlier (|z| > 3)")
         ax.scatter([], [], marker="o", s=25, facecolors="white", edgecolors="#555555",
                    label="not fitted (open symbol)")
+        y0, y1 = ax.get_ylim()
+        ax.set_ylim(y0, y1 + 0.09 * (y1 - y0))  # room for the class labels
         ax.set_xlim(1900, max(0.0, np.nanmin(tc) - 60) if tc.size else 0)
         ax.set_xlabel(f"50% condensation temperature [K] ({tc_table}, 1e-4 bar; hot on the "
                       "left)")
         ax.set_ylabel(f"log10 (X/{reference})sample / (X/{reference})CI")
         if title:
-            ax.set_title(title, loc="left", pad=18)
+            ax.set_title(title, loc="left")
         ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), borderaxespad=0.0)
     return fig
 

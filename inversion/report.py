@@ -32,12 +32,14 @@ __all__ = ["REPORT_KINDS", "detect_kind", "build_report", "Report", "render_html
            "MODEL_LIMITS"]
 
 #: Result kinds and the files that identify them (all must be present).
+#: Checked in this order: fit and sample folders may also hold the hand-off pair
+#: (planet.json, planet_draws.csv) that identifies a star folder.
 REPORT_KINDS: dict[str, tuple[str, ...]] = {
     "sample": ("sample.json",),
-    "star": ("planet.json",),
-    "batch": ("summary.json", "run.json"),
     "fit": ("fit.json", "residuals.csv"),
     "rank": ("ranking.csv",),
+    "batch": ("summary.json", "run.json"),
+    "star": ("planet.json",),
 }
 
 #: What the model leaves out; printed in every report.
