@@ -32,7 +32,7 @@ os.environ.setdefault("MKL_NUM_THREADS", "1")
 import numpy as np  # noqa: E402
 import pandas as pd  # noqa: E402
 
-from inversion.batch import run_batch  # noqa: E402
+from inversion.batch import local_cluster, run_batch, tune_allocator  # noqa: E402
 from inversion.star import StarSettings, earth_calibrated_pattern  # noqa: E402
 
 ELEMENTS = ("Fe", "Mg", "Si", "Al", "Ca", "Na", "Ti", "Cr", "Mn", "Ni", "Co", "K", "S", "P")
@@ -70,19 +70,23 @@ def main(argv: list[str] | None = None) -> int:
         print(f"{args.stars} stars x {args.draws} draws, partitions of "
               f"{args.partition_size} stars; {os.cpu_count()} cores")
 
+        tuned = tune_allocator()  # as `planetmix batch` does for its own process
+        print(f"allocator settings applied: {tuned}")
         t = time.perf_counter()
+        c = time.process_time()
         s1 = run_batch(cat, work / "single", settings, partition_size=args.partition_size,
                        progress=False)
         t_single = time.perf_counter() - t
+        cpu_single = time.process_time() - c
         rss_single = _maxrss_mb()
-        print(f"single process: {t_single:.1f} s, {args.stars / t_single:.0f} stars/s, "
+        print(f"single process: {t_single:.1f} s wall ({cpu_single:.1f} s CPU), "
+              f"{args.stars / t_single:.0f} stars/s, "
               f"{s1.n_done} done, {s1.n_failed} failed; peak RSS {rss_single:.0f} MB")
 
-        from distributed import Client, LocalCluster
+        from distributed import Client
 
         t = time.perf_counter()
-        with LocalCluster(n_workers=args.workers, threads_per_worker=1, processes=True,
-                          dashboard_address=None) as cluster, Client(cluster) as client:
+        with local_cluster(args.workers) as cluster, Client(cluster) as client:
             t_start = time.perf_counter() - t
             t = time.perf_counter()
             s2 = run_batch(cat, work / "dask", settings, partition_size=args.partition_size,

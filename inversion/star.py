@@ -273,23 +273,32 @@ def core_split_fast(a: np.ndarray, p: Problem, D: np.ndarray) -> dict[str, np.nd
     """
     if p.mantle_Fe is None:
         return _core_split(a, p, D)
+    r = _core_split_t(np.ascontiguousarray(a.T), p, D)
+    m = np.ascontiguousarray(r["mantle"].T)
+    core = np.ascontiguousarray(r["core"].T)
+    return {"mantle": m, "core": core, "M_s": r["M_s"], "M_c": r["M_c"], "k": r["k"],
+            "D_Fe": np.full(a.shape[0], np.nan)}
+
+
+def _core_split_t(at: np.ndarray, p: Problem, D: np.ndarray) -> dict[str, np.ndarray]:
+    """:func:`core_split_fast` on the element-major layout: ``at`` (n, B), results (n, B)
+    and (B,). Long inner loops; plain sums rather than BLAS, whose threads cost more than
+    they give at this size."""
     fe = p.fe_index
     f = p.oxide_factor
     F = p.mantle_Fe
-    sid = np.array([j for j in range(a.shape[1]) if j != fe and D[j] > 0], dtype=int)
-    lith = np.array([j for j in range(a.shape[1]) if j != fe and D[j] <= 0], dtype=int)
+    n, B = at.shape
+    sid = np.array([j for j in range(n) if j != fe and D[j] > 0], dtype=int)
+    lith = np.array([j for j in range(n) if j != fe and D[j] <= 0], dtype=int)
     c = 1.0 / (1.0 - f[fe] * F)
-    # element-major layout (n, B): long inner loops; plain sums rather than BLAS, whose
-    # threads cost more than they give at this size
-    at = np.ascontiguousarray(a.T)
     Lf = (at[lith] * f[lith, None]).sum(axis=0)
     a_s = at[sid]
     D_s = D[sid][:, None]
     f_s = f[sid][:, None]
     a_fixed = at[fe] + a_s.sum(axis=0)
-    k = np.full(a.shape[0], 0.5)
-    # a row stops at its own convergence, so its result never depends on the other rows
-    frozen = np.zeros(a.shape[0], dtype=bool)
+    k = np.full(B, 0.5)
+    # a draw stops at its own convergence, so its result never depends on the others
+    frozen = np.zeros(B, dtype=bool)
     for _ in range(_NEWTON_MAX):
         den = 1.0 + D_s * k[None, :]
         m_s = a_s / den
@@ -310,11 +319,8 @@ def core_split_fast(a: np.ndarray, p: Problem, D: np.ndarray) -> dict[str, np.nd
     mt[fe] = 0.0
     M_s = (mt * f[:, None]).sum(axis=0) * c
     mt[fe] = F * M_s
-    m = np.ascontiguousarray(mt.T)
-    core = a - m
-    M_c = core.sum(axis=1)
-    return {"mantle": m, "core": core, "M_s": M_s, "M_c": M_c, "k": k,
-            "D_Fe": np.full(a.shape[0], np.nan)}
+    core = at - mt
+    return {"mantle": mt, "core": core, "M_s": M_s, "M_c": core.sum(axis=0), "k": k}
 
 
 # --------------------------------------------------------------------------- star input
@@ -481,10 +487,21 @@ def planets_from_xh(xh: np.ndarray, model: StarModel) -> tuple[PlanetDraws, np.n
     feasible draws (False where the mantle FeO needs more iron than the star provides)."""
     p = model.problem
     mg = p.ref_index
-    log_a = (model.A_ref[None, :] + xh) - (model.A_ref[mg] + xh[:, mg:mg + 1]) \
-        + (model.log_mass - model.log_mass[mg])[None, :] + model.logr[None, :]
-    a = np.exp(log_a * _LN10)
-    split = core_split_fast(a, p, p.D)
+    # element-major (n, B) while computing: long inner loops
+    xt = np.ascontiguousarray(xh.T)
+    off = (model.A_ref - model.A_ref[mg] + model.log_mass - model.log_mass[mg] + model.logr)
+    at = xt - xt[mg]
+    at += off[:, None]
+    at *= _LN10
+    np.exp(at, out=at)
+    if p.mantle_Fe is not None:
+        split = _core_split_t(at, p, p.D)
+        split = {**split, "mantle": np.ascontiguousarray(split["mantle"].T),
+                 "core": np.ascontiguousarray(split["core"].T)}
+        a = np.ascontiguousarray(at.T)
+    else:
+        a = np.ascontiguousarray(at.T)
+        split = _core_split(a, p, p.D)
     B = a.shape[0]
     fwd = {"lam": np.zeros(B), "M_s": split["M_s"], "mantle": split["mantle"],
            "core": split["core"], "bulk": a, "cmf": split["M_c"] / (split["M_s"] + split["M_c"])}

@@ -152,7 +152,7 @@ def _batch(parser: argparse.ArgumentParser):
     def run(args: argparse.Namespace) -> int:
         import pandas as pd
 
-        from .batch import run_batch
+        from .batch import local_cluster, run_batch, tune_allocator
         from .star import CAUTION
 
         settings = _settings(args)
@@ -172,11 +172,12 @@ def _batch(parser: argparse.ArgumentParser):
                 raise InputError(f"cannot reach the Dask scheduler: {err}",
                                  field="--scheduler", value=args.scheduler) from err
         elif workers > 1:
-            from distributed import Client, LocalCluster
+            from distributed import Client
 
-            cluster = LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
-                                   dashboard_address=None)
+            cluster = local_cluster(workers)
             client = Client(cluster)
+        else:
+            tune_allocator()
         try:
             summary = run_batch(args.catalogue, args.out, settings,
                                 partition_size=args.partition_size, resume=args.resume,

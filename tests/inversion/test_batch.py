@@ -120,9 +120,14 @@ def test_dask_equals_single_process(tmp_path, settings):
                       dashboard_address=None) as cluster, Client(cluster) as client:
         s = run_batch(cat, tmp_path / "dask", settings, partition_size=3, client=client,
                       progress=False)
-    assert s.complete
-    pd.testing.assert_frame_equal(_all_parts(tmp_path / "single"),
-                                  _all_parts(tmp_path / "dask"), check_exact=True)
+        # the command line, sent to the same (existing) cluster by its address
+        rc = main(["batch", str(cat), "--out", str(tmp_path / "cli"), "--scheduler",
+                   cluster.scheduler_address, "--draws", "100", "--seed", "11",
+                   "--planet-mass-kg", "5.972e24", "--partition-size", "3"])
+    assert s.complete and rc == 0
+    single = _all_parts(tmp_path / "single")
+    pd.testing.assert_frame_equal(single, _all_parts(tmp_path / "dask"), check_exact=True)
+    pd.testing.assert_frame_equal(single, _all_parts(tmp_path / "cli"), check_exact=True)
 
 
 def test_batch_row_equals_the_single_star_run(tmp_path, settings):
