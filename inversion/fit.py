@@ -105,7 +105,8 @@ def _design(p: Problem, vol: np.ndarray, k: np.ndarray, D_Fe: np.ndarray,
     B = vol.shape[0]
     logr = get_logr(p, vol)
     rr = 10.0 ** logr  # (B, n)
-    Qr = p.Q[None, :, :] * rr[:, None, :]  # (B, K, n)
+    Q3 = p.Q if p.Q.ndim == 3 else p.Q[None]
+    Qr = Q3 * rr[:, None, :]  # (B, K, n)
     fe = p.fe_index
     D = np.broadcast_to(p.D, (B, p.D.size)).copy()
     if p.mantle_Fe is None:
@@ -114,12 +115,12 @@ def _design(p: Problem, vol: np.ndarray, k: np.ndarray, D_Fe: np.ndarray,
     rows: list[np.ndarray] = []
     hs: list[np.ndarray] = []
     names: list[str] = []
-    K = p.Q.shape[0]
+    K = p.Q.shape[-2]
     has_late = p.late_name is not None
     if p.mantle_Fe is not None:
         F = p.mantle_Fe
         f = p.oxide_factor
-        mask = np.ones(p.Q.shape[1])
+        mask = np.ones(p.Q.shape[-1])
         mask[fe] = 0.0
         s1 = (mant * (f * mask)[None, None, :]).sum(axis=2)  # (B, K)
         Ms = s1 / (1.0 - f[fe] * F)
@@ -143,15 +144,18 @@ def _design(p: Problem, vol: np.ndarray, k: np.ndarray, D_Fe: np.ndarray,
         hs.append(v_max)
         names.append(f"late-accretion fraction <= {lam_max}")
     for iso in p.isotopes:
-        qc = np.concatenate([iso["q_carrier"], [iso["q_late"]] if has_late else []])
-        eps = np.concatenate([iso["eps"], [iso["eps_late"]] if has_late else []])
+        late_cols = ([np.full((B, 1), iso["q_late"])], [np.full((B, 1), iso["eps_late"])])
+        qc = np.concatenate([np.broadcast_to(iso["q_carrier"], (B, K))]
+                            + (late_cols[0] if has_late else []), axis=1)
+        eps = np.concatenate([np.broadcast_to(iso["eps"], (B, K))]
+                             + (late_cols[1] if has_late else []), axis=1)
         win = p.isotope_window_sigma * iso["sigma"]
         up = qc * (eps - iso["value"] - win)
         lo = qc * (eps - iso["value"] + win)
-        rows.append(np.broadcast_to(up, (B, up.size)).copy())
+        rows.append(up)
         hs.append(np.zeros(B))
         names.append(f"{iso['name']} <= {iso['value'] + win:g}")
-        rows.append(np.broadcast_to(-lo, (B, lo.size)).copy())
+        rows.append(-lo)
         hs.append(np.zeros(B))
         names.append(f"{iso['name']} >= {iso['value'] - win:g}")
     G = np.stack(rows, axis=1) if rows else np.zeros((B, 0, A.shape[2]))
@@ -176,7 +180,7 @@ def _solve(A: np.ndarray, b: np.ndarray, G: np.ndarray, h: np.ndarray):
 def _profile_points(p: Problem, vol: np.ndarray, passes: int) -> dict[str, np.ndarray]:
     """Gauss-Newton passes for a batch of volatility parameter sets."""
     B = vol.shape[0]
-    K = p.Q.shape[0]
+    K = p.Q.shape[-2]
     fi = p.fit_index
     y_ratio = p.y + np.log10(p.q_ci[fi])  # observed log10 ratio to R
     m0 = np.broadcast_to(10.0 ** y_ratio, (B, fi.size)).copy()
@@ -223,11 +227,12 @@ def _grid(form: str) -> np.ndarray:
 
 
 def _zoom(form: str, centre: np.ndarray, step: np.ndarray, n: int) -> np.ndarray:
+    """A fixed-size grid of n**p points around ``centre`` (clipped to the bounds)."""
     f = get_form(form)
     axes = []
     for c, s, lo, hi in zip(centre, step, f.lower, f.upper, strict=True):
         axes.append(np.clip(np.linspace(c - s, c + s, n), lo, hi))
-    return np.unique(np.array(list(itertools.product(*axes))), axis=0)
+    return np.array(list(itertools.product(*axes)))
 
 
 def _grid_steps(form: str) -> np.ndarray:
@@ -235,40 +240,60 @@ def _grid_steps(form: str) -> np.ndarray:
     return np.array([np.max(np.diff(g)) if len(g) > 1 else 1.0 for g in f.grid])
 
 
-def fit_problem(p: Problem, settings: FitSettings | None = None) -> FitResult:
-    """Fit one hypothesis (the problem's building blocks plus its late component).
+#: Rows (hypotheses x profile points) solved together in one batch.
+_BATCH_ROWS = 3000
 
-    Parameters
-    ----------
-    p : Problem
-        A compiled problem (see :func:`inversion.model.compile_problem`).
-    settings : FitSettings, optional
 
-    Returns
-    -------
-    FitResult
+def _profile_many(p: Problem, subsets: list[tuple[str, ...]], settings: FitSettings
+                  ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Profile the volatility parameters of many equal-size hypotheses at once.
+
+    Returns, per hypothesis, all profile points (H, P, p), their chi2 (H, P) and
+    weights (H, P, m).
     """
-    settings = settings or FitSettings()
     form = p.volatility_form
-    pts = _grid(form)
-    res = _profile_points(p, pts, settings.passes)
+    H = len(subsets)
+
+    def run(points: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        # points: (H, G, p) -> chi2 (H, G), u (H, G, m)
+        G = points.shape[1]
+        per = max(1, _BATCH_ROWS // G)
+        chis, us = [], []
+        for s in range(0, H, per):
+            sub = subsets[s:s + per]
+            ps = p.stacked(sub, G)
+            r = _profile_points(ps, points[s:s + per].reshape(-1, points.shape[2]),
+                                settings.passes)
+            chis.append(r["chi2"].reshape(len(sub), G))
+            us.append(r["u"].reshape(len(sub), G, -1))
+        return np.concatenate(chis), np.concatenate(us)
+
+    grid = _grid(form)
+    pts = np.broadcast_to(grid, (H,) + grid.shape).copy()
+    chi, us = run(pts)
+    all_pts, all_chi, all_u = [pts], [chi], [us]
     step = _grid_steps(form)
-    all_pts, all_chi2, all_u = [pts], [res["chi2"]], [res["u"]]
     for _level in range(settings.zoom_levels):
-        chi = np.concatenate(all_chi2)
-        if not np.isfinite(chi).any():
+        P = np.concatenate(all_pts, axis=1)
+        C = np.concatenate(all_chi, axis=1)
+        if not np.isfinite(C).any():
             break
-        j = int(np.argmin(chi))
-        centre = np.concatenate(all_pts)[j]
+        j = np.argmin(np.where(np.isfinite(C), C, np.inf), axis=1)
+        centres = P[np.arange(H), j]
         step = step / 2.0
-        z = _zoom(form, centre, step, settings.zoom_points)
-        r = _profile_points(p, z, settings.passes)
+        z = np.stack([_zoom(form, c, step, settings.zoom_points) for c in centres])
+        chi, us = run(z)
         all_pts.append(z)
-        all_chi2.append(r["chi2"])
-        all_u.append(r["u"])
-    pts = np.concatenate(all_pts)
-    chi = np.concatenate(all_chi2)
-    us = np.concatenate(all_u)
+        all_chi.append(chi)
+        all_u.append(us)
+    return (np.concatenate(all_pts, axis=1), np.concatenate(all_chi, axis=1),
+            np.concatenate(all_u, axis=1))
+
+
+def _result(p: Problem, pts: np.ndarray, chi: np.ndarray, us: np.ndarray,
+            settings: FitSettings) -> FitResult:
+    """Build the FitResult of one hypothesis from its profile."""
+    form = p.volatility_form
     K = p.Q.shape[0]
     has_late = p.late_name is not None
     n_params = (K - 1) + len(get_form(form).params) + (1 if has_late else 0)
@@ -297,6 +322,32 @@ def fit_problem(p: Problem, settings: FitSettings | None = None) -> FitResult:
         predicted=pd.Series(fwd["log10N"][0], index=list(p.elements), name="log10N"),
         isotopes=iso_pred, settings=settings,
     )
+
+
+def fit_problem(p: Problem, settings: FitSettings | None = None) -> FitResult:
+    """Fit one hypothesis (the problem's building blocks plus its late component).
+
+    Parameters
+    ----------
+    p : Problem
+        A compiled problem (see :func:`inversion.model.compile_problem`).
+    settings : FitSettings, optional
+
+    Returns
+    -------
+    FitResult
+    """
+    settings = settings or FitSettings()
+    pts, chi, us = _profile_many(p, [p.components], settings)
+    return _result(p, pts[0], chi[0], us[0], settings)
+
+
+def _fit_group(args: tuple[Problem, list[tuple[str, ...]], FitSettings]) -> list[FitResult]:
+    """Fit equal-size hypotheses together (one worker's share of a screen)."""
+    p, subsets, settings = args
+    pts, chi, us = _profile_many(p, subsets, settings)
+    return [_result(p.subset(s), pts[i], chi[i], us[i], settings)
+            for i, s in enumerate(subsets)]
 
 
 def _isotope_prediction(p: Problem, w: np.ndarray, v: float) -> dict[str, float]:
@@ -392,22 +443,19 @@ class Ranking:
         return self.table.copy()
 
 
-def _fit_subset(args: tuple[Problem, tuple[str, ...], FitSettings]) -> FitResult:
-    p, names, settings = args
-    return fit_problem(p.subset(names), settings)
-
-
 def screen(case: Case, *, settings: FitSettings | None = None, workers: int = 1,
            progress: bool = False) -> Ranking:
     """Fit every subset of the candidates up to ``case.max_mixture_size`` and rank them.
 
     Every hypothesis uses the same elements (those all candidates hold), so chi2, AIC
-    and BIC compare across hypotheses.
+    and BIC compare across hypotheses. Hypotheses of equal size are profiled together,
+    stacked on the batch axis of the exact QP solver.
 
     Parameters
     ----------
     case : Case
     settings : FitSettings, optional
+        Defaults to :data:`SCREEN_SETTINGS`.
     workers : int
         Processes to use (1 = in this process).
     progress : bool
@@ -416,22 +464,27 @@ def screen(case: Case, *, settings: FitSettings | None = None, workers: int = 1,
     settings = settings or SCREEN_SETTINGS
     p = compile_problem(case)
     names = list(p.components)
-    subsets = [s for r in range(1, case.max_mixture_size + 1)
-               for s in itertools.combinations(names, r)]
-    jobs = [(p, s, settings) for s in subsets]
+    jobs = []
+    chunk = 12  # hypotheses per job: large enough to batch, small enough to spread
+    for r in range(1, case.max_mixture_size + 1):
+        subs = list(itertools.combinations(names, r))
+        for s in range(0, len(subs), chunk):
+            jobs.append((p, subs[s:s + chunk], settings))
     from tqdm.auto import tqdm
 
-    bar = tqdm(total=len(jobs), desc="hypotheses", disable=not progress, unit="fit")
+    total = sum(len(j[1]) for j in jobs)
+    bar = tqdm(total=total, desc="hypotheses", disable=not progress, unit="fit")
     fits: list[FitResult] = []
     if workers > 1:
         with ProcessPoolExecutor(max_workers=workers) as ex:
-            for r in ex.map(_fit_subset, jobs, chunksize=max(1, len(jobs) // (8 * workers))):
-                fits.append(r)
-                bar.update()
+            for res in ex.map(_fit_group, jobs):
+                fits.extend(res)
+                bar.update(len(res))
     else:
         for job in jobs:
-            fits.append(_fit_subset(job))
-            bar.update()
+            res = _fit_group(job)
+            fits.extend(res)
+            bar.update(len(res))
     bar.close()
     table = pd.concat([f.to_dataframe() for f in fits], ignore_index=True)
     table["n_components"] = [len(f.components) for f in fits]

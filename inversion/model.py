@@ -128,6 +128,17 @@ class Problem:
         """Number of volatility parameters."""
         return len(get_form(self.volatility_form).params)
 
+    def stacked(self, subsets: list[tuple[str, ...]], repeat: int) -> Problem:
+        """Hypotheses of equal size stacked on the batch axis, each repeated ``repeat``
+        times (one row per hypothesis and profile point): Q becomes (B, K, n)."""
+        idx = np.array([[self.components.index(n) for n in s] for s in subsets])
+        rows = np.repeat(idx, repeat, axis=0)
+        iso = tuple({**d, "eps": d["eps"][rows], "q_carrier": d["q_carrier"][rows]}
+                    for d in self.isotopes)
+        return _replace(self, components=tuple(f"block{i}" for i in range(idx.shape[1])),
+                        Q=self.Q[rows], imputed=self.imputed[idx[0]],
+                        c_comp_R=self.c_comp_R[rows], isotopes=iso)
+
     def subset(self, names: list[str] | tuple[str, ...]) -> Problem:
         """The same problem with only the named building blocks."""
         idx = [self.components.index(n) for n in names]
@@ -367,12 +378,13 @@ def forward(p: Problem, w: np.ndarray, vol: np.ndarray, lam: np.ndarray | float 
     lam = np.broadcast_to(np.asarray(lam, float), (B,))
     logr = log10_retained(p.volatility_form, vol, p.tc)
     logr = logr - logr[:, p.ref_index:p.ref_index + 1]
-    a = (w @ p.Q) * 10.0 ** logr
+    # Q is (K, n), or (B, K, n) when hypotheses are stacked along the batch axis
+    a = (w @ p.Q if p.Q.ndim == 2 else np.einsum("bk,bkn->bn", w, p.Q)) * 10.0 ** logr
     split = _core_split(a, p, p.D if D is None else D)
     c_R = 1.0 / split["M_s"]
     v = lam * p.c_late_R / ((1.0 - lam) * c_R + lam * p.c_late_R)
     ratio = (1.0 - v)[:, None] * split["mantle"] + v[:, None] * p.q_late[None, :]
-    x = w / p.c_comp_R[None, :]
+    x = w / np.atleast_2d(p.c_comp_R)
     x = x / x.sum(axis=1, keepdims=True)
     M_tot = split["M_s"] + split["M_c"]
     with np.errstate(divide="ignore"):

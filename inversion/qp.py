@@ -126,12 +126,8 @@ def solve_batch(A: np.ndarray, b: np.ndarray, G: np.ndarray | None = None,
         # nonsingular (H is positive definite); active sets whose constraints contradict
         # each other then fail the equality check below instead of raising
         diag = np.arange(m, k)
-        Kreg = K.copy()
-        Kreg[:, :, diag, diag] = -1e-10 / hscale[:, None, None]
-        sol = np.linalg.solve(Kreg, rhs[..., None])[..., 0]
-        for _ in range(1):  # iterative refinement towards the unregularised solution
-            r = rhs - np.einsum("bsij,bsj->bsi", K, sol)
-            sol = sol + np.linalg.solve(Kreg, r[..., None])[..., 0]
+        K[:, :, diag, diag] = -1e-13 / hscale[:, None, None]
+        sol = np.linalg.solve(K, rhs[..., None])[..., 0]
         u = sol[:, :, :m]
         eq_ok = np.abs(u.sum(axis=2) - 1.0) < 1e-7
         if size:
