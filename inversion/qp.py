@@ -127,7 +127,12 @@ def solve_batch(A: np.ndarray, b: np.ndarray, G: np.ndarray | None = None,
         # each other then fail the equality check below instead of raising
         diag = np.arange(m, k)
         K[:, :, diag, diag] = -1e-13 / hscale[:, None, None]
-        sol = np.linalg.solve(K, rhs[..., None])[..., 0]
+        try:
+            sol = np.linalg.solve(K, rhs[..., None])[..., 0]
+        except np.linalg.LinAlgError:
+            # exactly dependent rows (e.g. an all-zero constraint): solve in the
+            # least-squares sense; contradictory sets then fail the checks below
+            sol = np.einsum("bsij,bsj->bsi", np.linalg.pinv(K), rhs)
         u = sol[:, :, :m]
         eq_ok = np.abs(u.sum(axis=2) - 1.0) < 1e-7
         if size:
