@@ -86,6 +86,32 @@ class PlanetDraws:
     history_gyr: tuple[float, ...] = HISTORY_GYR
     planet_mass_kg: float | None = None
 
+    def masked(self, keep: np.ndarray) -> PlanetDraws:
+        """The same draws with every value of the draws not kept set to NaN (left out of
+        the statistics)."""
+        keep = np.asarray(keep, bool)
+        if keep.all():
+            return self
+
+        def m(x: np.ndarray | None) -> np.ndarray | None:
+            if x is None:
+                return None
+            x = np.array(x, float, copy=True)
+            x[~keep] = np.nan
+            return x
+
+        def md(d: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
+            return {k: m(v) for k, v in d.items()}
+
+        from dataclasses import replace
+
+        return replace(self, core_mass_fraction=m(self.core_mass_fraction),
+                       mantle_oxides_wt=md(self.mantle_oxides_wt), core_wt=md(self.core_wt),
+                       molar_ratios=md(self.molar_ratios),
+                       mantle_trace_ppm=md(self.mantle_trace_ppm), bulk_wt=md(self.bulk_wt),
+                       heat_w_per_kg=m(self.heat_w_per_kg), heat_total_w=m(self.heat_total_w),
+                       heat_history_w_per_kg=m(self.heat_history_w_per_kg))
+
     @property
     def n_draws(self) -> int:
         """Number of draws B."""

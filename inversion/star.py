@@ -398,10 +398,10 @@ def read_star_table(path: str | Path, star_id: str | None = None) -> StarInput:
             check_star_values("", {el: r.value}, {el: r.uncertainty}, file=file, row=row)
         except InputError as err:
             # restate with this file's column names
-            fld = "uncertainty" if "uncertainty" in str(err) else (
-                "element" if "symbol" in str(err) else "value")
-            raise InputError(str(err.args[0]) if err.args else "bad value", file=file, row=row,
-                             field=fld, value=getattr(err, "value", None)) from None
+            fld = ("uncertainty" if str(err.field).endswith("_err") else
+                   "element" if err.field == "element" else "value")
+            raise InputError(err.reason, file=file, row=row, field=fld,
+                             value=err.value) from None
         vals[el], errs[el] = r.value, r.uncertainty
     return check_star_values(star_id or Path(path).stem, vals, errs, file=file)
 
@@ -512,7 +512,7 @@ def planets_from_xh(xh: np.ndarray, model: StarModel) -> tuple[PlanetDraws, np.n
 
 @dataclass(frozen=True)
 class StarResult:
-    """One star's planet draws with its flags."""
+    """One star's planet draws with its flags (infeasible draws hold NaN)."""
 
     star: StarInput
     draws: PlanetDraws
@@ -553,7 +553,7 @@ def run_star(star: StarInput, settings: StarSettings) -> StarResult:
     rng = np.random.default_rng(star_seed(settings.seed, star.star_id))
     xh, missing = draw_xh(star, settings.draws, rng)
     draws, ok = planets_from_xh(xh, model)
-    return StarResult(star, draws, ok, missing, model.ci_reference)
+    return StarResult(star, draws.masked(ok), ok, missing, model.ci_reference)
 
 
 def with_draws(settings: StarSettings, draws: int) -> StarSettings:

@@ -7,7 +7,7 @@ import math
 import os
 from pathlib import Path
 
-from .cli import EXIT_OK, register
+from .cli import EXIT_INFEASIBLE, EXIT_OK, register
 from .exceptions import InputError
 
 __all__: list[str] = []
@@ -108,6 +108,11 @@ def _star(parser: argparse.ArgumentParser):
         print(f"  devolatilisation: {settings.pattern.label} ({settings.pattern.form}: "
               + ", ".join(f"{k} = {v:.4g}" for k, v in
                           settings.pattern.as_dict()["parameters"].items()) + ")")
+        if res.infeasible_fraction >= 1.0:
+            print(f"  infeasible: a mantle FeO of {settings.mantle_FeO_wt} wt% needs more iron "
+                  "than the star provides in every draw; lower --mantle-FeO-wt or use --dIW")
+            print(f"  written to {args.out}/planet.json, planet_draws.csv (values null)")
+            return EXIT_INFEASIBLE
         print(f"  core mass fraction {_fmt(data['core_mass_fraction'])}")
         for name in ("Mg/Si_bulk", "Fe/Si_bulk", "Fe/Mg_bulk", "Mg#_mantle"):
             print(f"  {name} {_fmt(data['molar_ratios'][name])}")

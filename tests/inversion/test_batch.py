@@ -24,7 +24,7 @@ def settings() -> StarSettings:
 
 
 def write_catalogue(path: Path, n: int = 10, bad: bool = True, seed: int = 0) -> Path:
-    """n synthetic stars; with ``bad`` four broken rows are mixed in."""
+    """n synthetic stars; with ``bad`` five awkward rows are mixed in (n >= 10)."""
     rng = np.random.default_rng(seed)
     rows = []
     for i in range(n):
@@ -38,6 +38,7 @@ def write_catalogue(path: Path, n: int = 10, bad: bool = True, seed: int = 0) ->
         rows[4]["Si_err"] = ""                     # value without uncertainty
         rows[6]["star_id"] = rows[5]["star_id"]    # repeated id
         rows[8]["Al"], rows[8]["Al_err"] = "", ""  # not measured: fine, flagged
+        rows[9]["Fe"] = "-1.5"                     # no core possible with 8 wt% FeO
     pd.DataFrame(rows).to_csv(path, index=False)
     return path
 
@@ -51,8 +52,9 @@ def test_bad_rows_are_recorded_and_the_batch_completes(tmp_path, settings):
     cat = write_catalogue(tmp_path / "cat.csv")
     s = run_batch(cat, tmp_path / "out", settings, partition_size=3, progress=False)
     assert s.complete and s.n_rows == 10
-    assert s.n_done == 7 and s.n_failed == 3
+    assert s.n_done == 6 and s.n_failed == 4
     reasons = dict(zip(s.failed["star_id"], s.failed["reason"], strict=True))
+    assert "needs more iron" in reasons["s009"]
     assert "not a number" in reasons["s002"]
     assert "missing uncertainty" in reasons["s004"]
     assert "duplicate star_id" in reasons["s005"]
@@ -62,7 +64,7 @@ def test_bad_rows_are_recorded_and_the_batch_completes(tmp_path, settings):
     ok = df[df["status"] == "ok"]
     assert ok["core_mass_fraction_median"].between(0.1, 0.6).all()
     failed_csv = pd.read_csv(tmp_path / "out" / "failed.csv")
-    assert len(failed_csv) == 3
+    assert len(failed_csv) == 4
 
 
 def test_unknown_column_is_a_file_error(tmp_path, capsys):
@@ -146,7 +148,7 @@ def test_batch_row_equals_the_single_star_run(tmp_path, settings):
 
 
 def test_batch_command(tmp_path, capsys):
-    cat = write_catalogue(tmp_path / "cat.csv", n=9)
+    cat = write_catalogue(tmp_path / "cat.csv", n=10)
     rc = main(["batch", str(cat), "--out", str(tmp_path / "o"), "--workers", "1",
                "--draws", "50", "--partition-size", "3"])
     assert rc == 0
@@ -159,7 +161,7 @@ def test_batch_command(tmp_path, capsys):
     import json
 
     summary = json.loads((tmp_path / "o" / "summary.json").read_text())
-    assert summary["partitions_skipped"] == 3 and summary["stars_done"] == 6
+    assert summary["partitions_skipped"] == 4 and summary["stars_done"] == 6
 
 
 def test_group_quantiles_equal_numpy_percentiles():

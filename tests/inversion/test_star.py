@@ -248,3 +248,15 @@ def test_star_command_bad_input_exits_2(tmp_path, capsys):
     assert "missing uncertainty" in capsys.readouterr().err
     assert main(["star", TEMPLATE, "--out", str(tmp_path / "o"), "--draws", "0"]) == 2
     assert main(["star", TEMPLATE, "--out", str(tmp_path / "o"), "--solar", "nope"]) == 2
+
+
+def test_a_star_too_poor_in_iron_is_infeasible(tmp_path, capsys):
+    # With an Earth-like mantle FeO of 8 wt%, a star with [Fe/H] = -1.3 at solar Mg and
+    # Si cannot form a core: every draw is infeasible and the command says so (exit 3).
+    t = tmp_path / "poor.csv"
+    t.write_text("element,value,uncertainty\nFe,-1.3,0.05\nMg,0,0.05\nSi,0,0.05\n")
+    assert main(["star", str(t), "--out", str(tmp_path / "o"), "--draws", "50"]) == 3
+    assert "needs more iron" in capsys.readouterr().out
+    data = json.loads((tmp_path / "o" / "planet.json").read_text())
+    assert data["core_mass_fraction"]["median"] is None
+    assert data["flags"]["infeasible_draw_fraction"] == 1.0
