@@ -145,8 +145,8 @@ def planet_draws(p: Any, planet: dict[str, Any], *,
     """Hand-off draws from :func:`inversion.planet.assemble` output (any B).
 
     Mantle species listed in :data:`inversion.planet.MAJOR_OXIDES` are reported as oxide
-    wt%; the others as element µg/g. Core elements: those with a positive share of the
-    core in any draw. Heat production from the mantle's U, Th and K (zero where the
+    wt%; the others as element µg/g. Core elements: Fe and those with a positive
+    effective D (``p.D``), Fe first. Heat production from the mantle's U, Th and K (zero where the
     model holds none of them).
 
     Parameters
@@ -170,7 +170,12 @@ def planet_draws(p: Any, planet: dict[str, Any], *,
     mantle_ox = {oxides[j]: mo[:, j] for j in major}
     trace = {els[j]: conc[:, j] * 1e6 for j in range(len(els)) if oxides[j] not in order}
     cw = planet["core_wt"]
-    core = {els[j]: cw[:, j] for j in np.argsort(-cw.mean(axis=0)) if (cw[:, j] > 0).any()}
+    # elements that can enter the core (D > 0, and Fe), Fe first, then in element order:
+    # the same columns for every set of draws of a problem
+    fe = els.index("Fe") if "Fe" in els else None
+    order = ([fe] if fe is not None else []) + [j for j in range(len(els))
+                                                 if j != fe and p.D[j] > 0]
+    core = {els[j]: cw[:, j] for j in order}
     bw = planet["bulk_wt"]
     bulk = {e: bw[:, j] for j, e in enumerate(planet["bulk_elements"])}
     ratios = {k: np.asarray(v, float) for k, v in planet["ratios"].items()}

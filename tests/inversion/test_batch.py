@@ -132,7 +132,10 @@ def test_dask_equals_single_process(tmp_path, settings):
     pd.testing.assert_frame_equal(single, _all_parts(tmp_path / "cli"), check_exact=True)
 
 
-def test_batch_row_equals_the_single_star_run(tmp_path, settings):
+def test_batch_row_equals_the_single_star_run(tmp_path, settings, monkeypatch):
+    import inversion.batch
+
+    monkeypatch.setattr(inversion.batch, "BLOCK_DRAWS", 150)  # blocks of one star
     cat = write_catalogue(tmp_path / "cat.csv", n=4, bad=False)
     run_batch(cat, tmp_path / "o", settings, partition_size=4, progress=False)
     df = _all_parts(tmp_path / "o")
