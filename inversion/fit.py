@@ -204,18 +204,20 @@ def _profile_points(p: Problem, vol: np.ndarray, passes: int) -> dict[str, np.nd
         sw = w.sum(axis=1, keepdims=True)
         w = np.where(sw > 0, w / np.where(sw > 0, sw, 1.0), 1.0 / K)
         v = u[:, K] if p.late_name is not None else np.zeros(B)
-        fwd0 = forward(p, w, vol, 0.0)
-        lam = lam_from_v(p, v, fwd0["M_s"]) if p.late_name is not None else np.zeros(B)
-        fwd = forward(p, w, vol, lam)
-        chi2 = (((fwd["log10N"][:, fi] - p.y[None, :]) / p.sigma[None, :]) ** 2).sum(axis=1)
+        # the core split does not depend on the late veneer: one forward pass, then mix
+        fwd = forward(p, w, vol, 0.0)
+        ratio = (1.0 - v)[:, None] * fwd["mantle"][:, fi] + v[:, None] * p.q_late[None, fi]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            model = np.log10(ratio / p.q_ci[None, fi])
+        chi2 = (((model - p.y[None, :]) / p.sigma[None, :]) ** 2).sum(axis=1)
         chi2 = np.where(ok & np.isfinite(chi2), chi2, np.inf)
         better = chi2 < best["chi2"]
         best["chi2"] = np.where(better, chi2, best["chi2"])
         best["u"][better] = u[better]
         k = fwd["k"]
         D_Fe = np.where(np.isfinite(fwd["D_Fe"]), fwd["D_Fe"], D_Fe)
-        M_s = fwd0["M_s"]
-        m0 = np.clip(fwd["ratio"][:, fi], 1e-30, None)
+        M_s = fwd["M_s"]
+        m0 = np.clip(ratio, 1e-30, None)
         m0 = np.where(ok[:, None], m0, 10.0 ** y_ratio[None, :])
     best["feasible"] = feasible_any
     return best
