@@ -130,7 +130,7 @@ def _write_fit(out: Path, case, p, result, findings: dict) -> None:
         "findings": findings,
         "notes": list(p.notes),
         "provenance": provenance(
-            tables=[p.condensation_table, "mcdonough2003", "mcdonoughsun1995"],
+            tables=[p.condensation_table, "mcdonough2003", "mcdonoughsun1995", "walker2009"],
             component_names=list(result.components) + ([p.late_name] if p.late_name else [])
             + ["CI"],
             extra={"case_file": case.path, "target_table": case.target.path,
