@@ -155,13 +155,21 @@ def volatility_diagram(
     df = df[np.isfinite(df["tc50"].astype(float))]
     props = _element_props(df["element"])
     df["geo"] = props["geochemical_class"].to_numpy()
+    tc_all = df["tc50"].astype(float).to_numpy()
+    x_lo = max(0.0, float(np.nanmin(tc_all)) - 60.0) if tc_all.size else 0.0
+    x_hi = 1900.0
     with plot_style():
         fig, ax = plt.subplots(figsize=(11.5, 5.6), layout="constrained")
         for cls, lo, hi in _cosmo_bands(f"tc50_{tc_table}"):
+            lo, hi = max(lo, x_lo), min(hi, x_hi)
+            if hi <= lo:
+                continue
             shade = "#f3f3f3" if _COSMO_ORDER.index(cls) % 2 == 0 else "#ffffff"
             ax.axvspan(lo, hi, color=shade, zorder=0, lw=0)
             ax.axvline(lo, color="#cfcfcf", lw=0.6, zorder=0)
-            ax.text(0.5 * (max(lo, 60.0) + min(hi, 1900)), 0.985,
+            if hi - lo < 60:
+                continue
+            ax.text(0.5 * (lo + hi), 0.985,
                     _COSMO_LABEL.get(cls, cls), transform=ax.get_xaxis_transform(),
                     ha="center", va="top", fontsize=8, color="#555555", zorder=1)
         ax.axhline(0.0, color="#888888", lw=0.8, ls=":", zorder=1)
@@ -182,7 +190,8 @@ def volatility_diagram(
             ax.scatter(tc[un], model[un], marker="_", s=90, color="#b5b5b5", lw=1.2,
                        zorder=2.8, label="model, element not in the target")
         if volatility is not None and volatility.get("form"):
-            _volatility_curve(ax, df, volatility, volatility_draws, interval_label)
+            _volatility_curve(ax, df, volatility, volatility_draws, interval_label,
+                              (x_lo, x_hi))
         obs = df["observed"].astype(float).to_numpy()
         sig = df["sigma"].astype(float).to_numpy()
         fitted = df["fitted"].astype(str).str.lower().isin(["true", "1"]).to_numpy()
@@ -225,7 +234,7 @@ def volatility_diagram(
                    label="not fitted (open symbol)")
         y0, y1 = ax.get_ylim()
         ax.set_ylim(y0, y1 + 0.09 * (y1 - y0))  # room for the class labels
-        ax.set_xlim(1900, max(0.0, np.nanmin(tc) - 60) if tc.size else 0)
+        ax.set_xlim(x_hi, x_lo)
         ax.set_xlabel(f"50% condensation temperature [K] ({tc_table}, 1e-4 bar; hot on the "
                       "left)")
         ax.set_ylabel(f"log10 (X/{reference})sample / (X/{reference})CI")
@@ -236,7 +245,8 @@ def volatility_diagram(
 
 
 def _volatility_curve(ax, df: pd.DataFrame, volatility: Mapping[str, object],
-                      draws: np.ndarray | None, interval_label: str) -> None:
+                      draws: np.ndarray | None, interval_label: str,
+                      x_range: tuple[float, float] = (60.0, 1900.0)) -> None:
     from .volatility import FORMS
 
     form = str(volatility["form"])
@@ -249,7 +259,7 @@ def _volatility_curve(ax, df: pd.DataFrame, volatility: Mapping[str, object],
         return
     if not np.all(np.isfinite(params)):
         return
-    grid = np.linspace(60.0, 1900.0, 400)
+    grid = np.linspace(max(x_range[0], 20.0), x_range[1], 400)
     tc = df["tc50"].astype(float).to_numpy()
     lith = (df["geo"] == "lithophile").to_numpy() & np.isfinite(df["model"].astype(float))
     if not lith.any():
@@ -404,8 +414,9 @@ def pair_plot(draws: pd.DataFrame, *, columns: Sequence[str] | None = None,
         data_s = data
     with plot_style():
         size = max(3.5, 1.7 * n)
-        fig, axes = plt.subplots(n, n, figsize=(size, size), squeeze=False,
-                                 layout="constrained")
+        fig, axes = plt.subplots(n, n, figsize=(size, size), squeeze=False)
+        fig.subplots_adjust(left=0.1, right=0.97, bottom=0.08, top=0.95, wspace=0.12,
+                            hspace=0.3)
         for i in range(n):
             for j in range(n):
                 ax = axes[i, j]

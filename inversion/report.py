@@ -381,6 +381,9 @@ def _rank_report(folder: Path) -> Report:
 
 
 # --------------------------------------------------------------------------- sample
+_VOL_PARAMS = ("T0", "slope", "log10_floor", "a", "b", "T50", "width")
+
+
 def _sample_report(folder: Path) -> Report:
     from . import plots
 
@@ -390,64 +393,114 @@ def _sample_report(folder: Path) -> Report:
     rep = Report(title=meta.get("title", folder.name), kind="sample", folder=str(folder),
                  provenance=prov)
     title = rep.title
+    idata = _load_idata(folder / "posterior.nc")
+    draws = _posterior_draws(idata) if idata is not None else None
+    comps = [str(c) for c in (meta.get("components") or [])]
+    if draws is not None and not comps:
+        comps = [c[2:] for c in draws.columns if c.startswith("x_")] or [
+            c[2:] for c in draws.columns if c.startswith("w_")]
+    # diagnostics first: a run that failed its gate says so at the top
+    diag = _read_json(folder / "diagnostics.json") if (folder / "diagnostics.json").exists() \
+        else (meta.get("diagnostics") or {})
+    if diag:
+        rep.diagnostics += _gate_lines(diag)
+        if diag.get("passed") is False:
+            rep.notes.insert(0, "This run FAILED its diagnostics gate (R-hat <= 1.01, bulk "
+                             "ESS >= 400, no divergences; Vehtari et al. 2021): treat its "
+                             "numbers as provisional and run longer.")
+    for k in ("log_marginal_likelihood", "elpd_loo", "loo"):
+        if meta.get(k) is not None:
+            rep.diagnostics.append((k.replace("_", " "), _fmt(meta[k]) if not isinstance(
+                meta[k], dict) else json.dumps(meta[k])[:300], ""))
     summary = _read_csv(folder / "summary.csv") if (folder / "summary.csv").exists() else None
     if summary is not None:
         rep.key_numbers += _summary_numbers(summary)
         rep.tables.append(("Posterior summary", _table_html(summary)))
-    if (folder / "diagnostics.json").exists():
-        diag = _read_json(folder / "diagnostics.json")
-        rep.diagnostics += _diag_lines(diag)
-    gate = meta.get("gate") or meta.get("gate_passed")
-    if gate is not None:
-        rep.diagnostics.insert(0, ("convergence gate", str(gate), "R-hat <= 1.01, bulk ESS "
-                                   ">= 400, no divergences (Vehtari et al. 2021)"))
-    draws = _posterior_draws(folder)
-    if (folder / "residuals.csv").exists():
-        resid = _read_csv(folder / "residuals.csv")
-        vol = meta.get("volatility") or {}
-        vol_draws = None
-        if draws is not None and vol.get("form"):
-            from .volatility import FORMS
+    elif draws is not None:
+        rep.key_numbers += _draw_numbers(draws)
+    # volatility diagram: the observed data with the posterior model and its band
+    resid = _read_csv(folder / "residuals.csv") if (folder / "residuals.csv").exists() \
+        else (_residuals_from_idata(idata, prov) if idata is not None else None)
+    vol = dict(meta.get("volatility") or {})
+    vol_names = [n for n in _VOL_PARAMS if draws is not None and n in draws.columns]
+    form = vol.get("form") or meta.get("volatility_form")
+    vol_draws = None
+    if form and vol_names:
+        from .volatility import FORMS
 
-            names = [n for n in FORMS[vol["form"]].params]
-            if all(n in draws.columns for n in names):
-                vol_draws = draws[names].to_numpy(float)
-                vol = {"form": vol["form"], **{n: float(np.median(draws[n])) for n in names}}
-        rep.figures.append(("Volatility diagram", "Observed abundances with the posterior "
-                            "model (median ticks, grey 90% intervals) and the volatility "
-                            "trend with its 90% credible band.",
+        names = list(FORMS[form].params) if form in FORMS else vol_names
+        if all(n in draws.columns for n in names):
+            vol_draws = draws[names].to_numpy(float)
+            vol = {"form": form, **{n: float(np.median(draws[n])) for n in names}}
+    if resid is not None and len(resid):
+        ctab = prov.get("condensation_table", "lodders2003")
+        rep.figures.append(("Volatility diagram", "Observed abundances (symbols) with the "
+                            "posterior model (black ticks: medians; grey bars: 90% "
+                            "credible intervals) and the volatility trend with its 90% band.",
                             lambda: plots.volatility_diagram(
-                                resid, reference=ref, volatility=vol,
-                                volatility_draws=vol_draws, title=title)))
+                                resid, reference=ref, volatility=vol if form else None,
+                                volatility_draws=vol_draws, tc_table=ctab, title=title)))
         if "z" in resid.columns:
-            rep.figures.append(("Residuals by element", "Posterior-median residuals.",
+            rep.figures.append(("Residuals by element", "Posterior-predictive z-scores: "
+                                "(observed - median model) / predictive spread.",
                                 lambda: plots.residuals_plot(resid, title=title)))
     if draws is not None:
-        comps = [c for c in (meta.get("components") or []) if c in draws.columns]
-        wcols = {c: f"w_{c}" for c in meta.get("components") or [] if f"w_{c}" in draws}
-        if wcols and not comps:
+        key = "x" if any(f"x_{c}" in draws.columns for c in comps) else "w"
+        wcols = {c: f"{key}_{c}" for c in comps if f"{key}_{c}" in draws.columns}
+        if wcols:
             wd = draws[list(wcols.values())].rename(columns={v: k for k, v in wcols.items()})
-            comps = list(wcols)
-        else:
-            wd = draws
-        if comps:
-            med = {c: float(np.median(wd[c])) for c in comps}
-            rep.figures.append(("Building-block weights", "Posterior distributions "
-                                "(violins) with medians and 5-95% intervals.",
+            med = {c: float(np.median(wd[c])) for c in wcols}
+            label = "mass fractions" if key == "x" else f"weights ({ref} basis)"
+            rep.figures.append(("Building blocks", f"Posterior {label}: violins with "
+                                "medians and 5-95% intervals.",
                                 lambda: plots.weights_plot(med, draws=wd, basis=ref)))
-        main = [c for c in draws.columns if c not in comps and draws[c].dtype.kind == "f"
-                and not c.startswith(("w_", "chain", "draw"))][:6]
+        main = [c for c in (*vol_names, "lam", "cmf", "tau") if c in draws.columns]
+        if len(wcols) > 1:
+            main += list(wcols.values())[:2]
         if len(main) >= 2:
-            rep.figures.append(("Pairwise posterior", "Main parameters, draws and marginals "
+            rep.figures.append(("Pairwise posterior", "Main parameters: draws and marginals "
                                 "(median and 5-95%).",
-                                lambda: plots.pair_plot(draws, columns=main)))
+                                lambda: plots.pair_plot(draws, columns=main[:6])))
     pdraws = _planet_draws(folder)
     if pdraws is not None:
         _planet_from_draws(rep, pdraws, meta)
     if (folder / "outliers.csv").exists():
-        rep.tables.append(("Flagged elements", _table_html(_read_csv(folder /
-                                                                     "outliers.csv"))))
+        out = _read_csv(folder / "outliers.csv")
+        if len(out):
+            rep.tables.append(("Flagged elements (posterior-predictive |z| > 3)",
+                               _table_html(out)))
+    rep.limits.append("Credible intervals are conditional on the model and its priors; "
+                      "the model-scatter term tau absorbs what the idealised model cannot "
+                      "explain, and a Student-t likelihood keeps single anomalous elements "
+                      "from dominating.")
     return rep
+
+
+def _gate_lines(diag: dict[str, Any]) -> list[tuple[str, str, str]]:
+    th = diag.get("thresholds") or {}
+    out = []
+    if "passed" in diag:
+        out.append(("convergence gate", "passed" if diag["passed"] else "FAILED",
+                    "R-hat <= 1.01, bulk ESS >= 400, no divergences (Vehtari et al. 2021)"))
+    if "rhat_max" in diag:
+        out.append(("largest R-hat", _fmt(diag["rhat_max"]),
+                    f"threshold {th.get('rhat_max', 1.01)}; worst: "
+                    f"{diag.get('worst_rhat_parameter', '?')}"))
+    if "ess_bulk_min" in diag:
+        out.append(("smallest bulk ESS", _fmt(diag["ess_bulk_min"]),
+                    f"threshold {th.get('ess_bulk_min', 400)}; worst: "
+                    f"{diag.get('worst_ess_parameter', '?')}"))
+    if "divergences" in diag:
+        out.append(("divergent transitions", str(diag["divergences"]),
+                    f"threshold {th.get('divergences_max', 0)}"))
+    known = {"passed", "rhat_max", "ess_bulk_min", "divergences", "thresholds",
+             "worst_rhat_parameter", "worst_ess_parameter", "reference"}
+    for k, v in diag.items():
+        if k not in known:
+            text = json.dumps(v) if isinstance(v, dict | list) else (
+                _fmt(v) if isinstance(v, float) else str(v))
+            out.append((k.replace("_", " "), text[:300], ""))
+    return out
 
 
 def _summary_numbers(summary: pd.DataFrame) -> list[tuple[str, str, str]]:
@@ -456,51 +509,108 @@ def _summary_numbers(summary: pd.DataFrame) -> list[tuple[str, str, str]]:
                      if c in summary.columns), summary.columns[0])
     for _, r in summary.iterrows():
         centre = next((r[c] for c in ("median", "mean", "value") if c in r), None)
-        lo = next((r[c] for c in ("q05", "hdi_5%", "lo", "p05", "hdi_3%") if c in r), None)
-        hi = next((r[c] for c in ("q95", "hdi_95%", "hi", "p95", "hdi_97%") if c in r), None)
+        lo = next((r[c] for c in ("q05", "p5", "p05", "hdi_5%", "lo", "hdi_3%", "p2.5")
+                   if c in r), None)
+        hi = next((r[c] for c in ("q95", "p95", "hdi_95%", "hi", "hdi_97%", "p97.5")
+                   if c in r), None)
         interval = f"[{_fmt(lo)}, {_fmt(hi)}]" if lo is not None and hi is not None else (
             f"sd {_fmt(r['sd'])}" if "sd" in r else "")
         out.append((str(r[name_col]), _fmt(centre), interval))
     return out[:40]
 
 
-def _diag_lines(diag: dict[str, Any]) -> list[tuple[str, str, str]]:
+def _draw_numbers(draws: pd.DataFrame) -> list[tuple[str, str, str]]:
     out = []
-    for k, v in diag.items():
-        if isinstance(v, dict | list):
-            text = json.dumps(v)
-            out.append((k, text[:300] + ("..." if len(text) > 300 else ""), ""))
-        else:
-            out.append((k, _fmt(v) if isinstance(v, float) else str(v), ""))
-    return out
+    for c in draws.columns:
+        if c.startswith(("mu[", "log10D[")):
+            continue
+        v = draws[c].to_numpy(float)
+        lo, med, hi = np.nanpercentile(v, [5, 50, 95])
+        out.append((c, _fmt(med), f"90% credible interval [{_fmt(lo)}, {_fmt(hi)}]"))
+    return out[:40]
 
 
-def _posterior_draws(folder: Path) -> pd.DataFrame | None:
-    for name in ("posterior_draws.csv", "draws.csv"):
-        if (folder / name).exists():
-            return _read_csv(folder / name)
-    nc = folder / "posterior.nc"
-    if not nc.exists():
+def _load_idata(path: Path) -> Any:
+    """The groups of an InferenceData netCDF file that the report reads.
+
+    Read with xarray directly (importing ArviZ costs several seconds); groups that the
+    file lacks are None.
+    """
+    if not path.exists():
         return None
-    try:
-        import arviz as az
+    from types import SimpleNamespace
 
-        idata = az.from_netcdf(nc)
-        post = idata.posterior
-    except Exception:  # noqa: BLE001 - an unreadable file just drops the figure
+    import xarray as xr
+
+    groups = {}
+    for g in ("posterior", "observed_data", "posterior_predictive"):
+        try:
+            with xr.open_dataset(path, group=g) as ds:
+                groups[g] = ds.load()
+        except OSError as err:
+            if g == "posterior":
+                raise InputError(f"cannot read the posterior: {err}", file=str(path)) from err
+            groups[g] = None
+        except Exception as err:  # noqa: BLE001 - netCDF/HDF5 raise several kinds
+            raise InputError(f"cannot read the posterior: {err}", file=str(path)) from err
+    return SimpleNamespace(**groups)
+
+
+def _posterior_draws(idata: Any) -> pd.DataFrame | None:
+    """Flatten the posterior (chains x draws) into one column per scalar quantity.
+
+    Vectors over components become ``w_<name>`` / ``x_<name>``; over isotopes
+    ``eps_pred[<name>]``; the per-element model ``mu`` is left out (see
+    :func:`_residuals_from_idata`).
+    """
+    post = getattr(idata, "posterior", None)
+    if post is None:
         return None
-    cols = {}
+    cols: dict[str, np.ndarray] = {}
     for name, da in post.data_vars.items():
-        arr = np.asarray(da.values)
+        if name == "mu":
+            continue
+        arr = np.asarray(da.values, dtype=float)
         flat = arr.reshape(arr.shape[0] * arr.shape[1], -1)
         extra = [d for d in da.dims if d not in ("chain", "draw")]
         if not extra:
             cols[name] = flat[:, 0]
-        elif len(extra) == 1 and flat.shape[1] <= 20:
+        elif len(extra) == 1 and flat.shape[1] <= 40:
             labels = [str(x) for x in da.coords[extra[0]].values]
             for j, lab in enumerate(labels):
-                cols[lab if name in ("w", "weights") else f"{name}[{lab}]"] = flat[:, j]
+                key = f"{name}_{lab}" if extra[0] == "components" else f"{name}[{lab}]"
+                cols[key] = flat[:, j]
     return pd.DataFrame(cols) if cols else None
+
+
+def _residuals_from_idata(idata: Any, prov: dict[str, Any]) -> pd.DataFrame | None:
+    """Residual table from the posterior: observed y, the model ``mu`` (median, 5-95%)
+    and the posterior-predictive spread as the scale of z."""
+    import components
+
+    try:
+        mu = idata.posterior["mu"]
+        obs = idata.observed_data["y_obs"]
+    except (AttributeError, KeyError, TypeError):
+        return None
+    els = [str(e) for e in mu.coords["elements"].values]
+    m = np.asarray(mu.values, float).reshape(-1, len(els))
+    lo, med, hi = np.percentile(m, [5, 50, 95], axis=0)
+    y = np.asarray(obs.values, float)
+    scale = np.full(len(els), np.nan)
+    try:
+        pp = np.asarray(idata.posterior_predictive["y_obs"].values, float).reshape(-1, len(els))
+        scale = pp.std(axis=0)
+    except (AttributeError, KeyError, TypeError):
+        pass
+    col = f"tc50_{prov.get('condensation_table', 'lodders2003')}"
+    props = components.elements()
+    tc = props.reindex(els)[col if col in props.columns else "tc50_lodders2003"].to_numpy()
+    z = (y - med) / scale
+    flag = np.where(np.abs(z) > 3, np.where(z > 0, "above model", "below model"), "")
+    return pd.DataFrame({"element": els, "tc50": tc, "observed": y, "model": med,
+                         "sigma": scale, "z": z, "fitted": True, "flag": flag,
+                         "model_lo": lo, "model_hi": hi})
 
 
 def _planet_draws(folder: Path) -> pd.DataFrame | None:

@@ -133,7 +133,7 @@ def _no_external(html: str) -> None:
 def test_fit_report_is_self_contained(result_folders):
     folder = result_folders["fit"]
     assert detect_kind(folder) == "fit"
-    assert main(["report", str(folder), "--figures"]) == 0
+    assert main(["report", str(folder)]) == 0
     html = (folder / "report.html").read_text(encoding="utf-8")
     for section in ("Key numbers", "Figures", "Diagnostics", "Provenance",
                     "Limits of the model", "Volatility diagram", "Residuals by element",
@@ -152,11 +152,6 @@ def test_fit_report_is_self_contained(result_folders):
     assert f"{fit['core_mass_fraction']:.4g}" in html
     # atomic write: no temporary files left behind
     assert not [p for p in folder.iterdir() if p.name.startswith(".report.")]
-    # --figures: each figure also as PNG and SVG files
-    pngs = sorted((folder / "figures").glob("*.png"))
-    svgs = sorted((folder / "figures").glob("*.svg"))
-    assert len(pngs) >= 4 and len(svgs) == len(pngs)
-    assert all(p.read_bytes().startswith(PNG_MAGIC) for p in pngs)
 
 
 def test_rank_report(result_folders, tmp_path):
@@ -246,9 +241,62 @@ def test_star_and_batch_reports(tmp_path):
     for folder, expect in ((star_dir, ("Whole planet", "core_mass_fraction", "Caution")),
                            (batch_dir, ("Across the catalogue", "CMF, median star",
                                         "Mg/Si (bulk, molar), median star", "demo-002"))):
-        assert main(["report", str(folder)]) == 0
+        assert main(["report", str(folder), "--figures"]) == 0
         html = (folder / "report.html").read_text(encoding="utf-8")
+        # --figures: each figure also as PNG and SVG files
+        pngs = sorted((folder / "figures").glob("*.png"))
+        svgs = sorted((folder / "figures").glob("*.svg"))
+        assert pngs and len(svgs) == len(pngs)
+        assert all(p.read_bytes().startswith(PNG_MAGIC) for p in pngs)
         for text in expect:
             assert text in html, (folder.name, text)
         assert len(re.findall(r"data:image/png;base64,", html)) >= 1
         _no_external(html)
+
+
+def _fake_sample_folder(folder: Path) -> Path:
+    """A sample folder with a small synthetic posterior in the layout of
+    ``inversion.bayes.build_model`` (no sampling: the report only reads it)."""
+    import arviz as az
+
+    rng = np.random.default_rng(7)
+    chains, draws = 2, 150
+    els = ["Al", "Ca", "Mg", "Si", "Fe", "Ni", "Na", "Zn"]
+    tc = components.elements().loc[els, "tc50_lodders2003"].to_numpy()
+    T0 = rng.normal(1350, 20, (chains, draws))
+    slope = np.abs(rng.normal(0.002, 0.0002, (chains, draws)))
+    mu = np.minimum(0.0, slope[..., None] * (tc[None, None, :] - T0[..., None]))
+    x_ci = rng.uniform(0.2, 0.4, (chains, draws))
+    idata = az.from_dict(
+        posterior={"T0": T0, "slope": slope, "lam": rng.uniform(0, 0.01, (chains, draws)),
+                   "tau": np.abs(rng.normal(0.03, 0.01, (chains, draws))),
+                   "cmf": rng.normal(0.32, 0.01, (chains, draws)),
+                   "x": np.stack([x_ci, 1 - x_ci], axis=-1), "mu": mu},
+        posterior_predictive={"y_obs": mu + rng.normal(0, 0.05, mu.shape)},
+        observed_data={"y_obs": mu.mean(axis=(0, 1)) + np.r_[0, 0, 0, 0, 0, 0.5, 0, 0]},
+        dims={"x": ["components"], "mu": ["elements"], "y_obs": ["elements"]},
+        coords={"components": ["CI", "EH"], "elements": els})
+    folder.mkdir()
+    idata.to_netcdf(str(folder / "posterior.nc"))
+    import json
+
+    (folder / "sample.json").write_text(json.dumps({
+        "title": "synthetic posterior", "components": ["CI", "EH"],
+        "volatility": {"form": "kinked"}}))
+    (folder / "diagnostics.json").write_text(json.dumps({
+        "rhat_max": 1.02, "ess_bulk_min": 120.0, "divergences": 0, "passed": False,
+        "worst_rhat_parameter": "T0", "worst_ess_parameter": "slope",
+        "thresholds": {"rhat_max": 1.01, "ess_bulk_min": 400, "divergences_max": 0}}))
+    return folder
+
+
+def test_sample_report_from_a_posterior(tmp_path):
+    folder = _fake_sample_folder(tmp_path / "sample")
+    assert detect_kind(folder) == "sample"
+    assert main(["report", str(folder)]) == 0
+    html = (folder / "report.html").read_text(encoding="utf-8")
+    for text in ("Volatility diagram", "Building blocks", "Pairwise posterior",
+                 "FAILED", "largest R-hat", "90% credible interval"):
+        assert text in html, text
+    assert len(re.findall(r"data:image/png;base64,", html)) >= 4
+    _no_external(html)
