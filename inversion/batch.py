@@ -413,16 +413,30 @@ def run_batch(catalogue: str | Path, out: str | Path, settings: StarSettings, *,
     else:
         from distributed import as_completed
 
-        futs = {}
+        # a bounded window of partitions in flight: memory stays flat for any catalogue
         s_future = client.scatter(settings, broadcast=True)
-        for i, r in todo:
-            futs[client.submit(run_partition, r, s_future, pure=False,
-                               key=f"planetmix-partition-{digest[:12]}-{i}")] = (i, len(r))
-        for fut in as_completed(futs):
-            i, n = futs[fut]
+        window = max(4, 2 * sum(client.nthreads().values()))
+        queue = iter(todo)
+        futs: dict[Any, tuple[int, int]] = {}
+        ac = as_completed()
+
+        def submit_next() -> None:
+            nxt = next(queue, None)
+            if nxt is not None:
+                i, r = nxt
+                f = client.submit(run_partition, r, s_future, pure=False,
+                                  key=f"planetmix-partition-{digest[:12]}-{i}")
+                futs[f] = (i, len(r))
+                ac.add(f)
+
+        for _ in range(window):
+            submit_next()
+        for fut in ac:
+            i, n = futs.pop(fut)
             _write_parquet_atomic(fut.result(), out / partition_name(i))
             fut.release()
             bar.update(n)
+            submit_next()
     bar.close()
     done_files = sorted(out.glob("part-*.parquet"))
     status = (pd.concat([pd.read_parquet(f, columns=["row", "star_id", "status", "reason"])

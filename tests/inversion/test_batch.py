@@ -116,16 +116,16 @@ def test_resume_guards(tmp_path, settings):
 def test_dask_equals_single_process(tmp_path, settings):
     from distributed import Client, LocalCluster
 
-    cat = write_catalogue(tmp_path / "cat.csv", n=10)
-    run_batch(cat, tmp_path / "single", settings, partition_size=3, progress=False)
+    cat = write_catalogue(tmp_path / "cat.csv", n=10)  # 5 partitions: more than in flight
+    run_batch(cat, tmp_path / "single", settings, partition_size=2, progress=False)
     with LocalCluster(n_workers=2, threads_per_worker=1, processes=False,
                       dashboard_address=None) as cluster, Client(cluster) as client:
-        s = run_batch(cat, tmp_path / "dask", settings, partition_size=3, client=client,
+        s = run_batch(cat, tmp_path / "dask", settings, partition_size=2, client=client,
                       progress=False)
         # the command line, sent to the same (existing) cluster by its address
         rc = main(["batch", str(cat), "--out", str(tmp_path / "cli"), "--scheduler",
                    cluster.scheduler_address, "--draws", "100", "--seed", "11",
-                   "--planet-mass-kg", "5.972e24", "--partition-size", "3"])
+                   "--planet-mass-kg", "5.972e24", "--partition-size", "2"])
     assert s.complete and rc == 0
     single = _all_parts(tmp_path / "single")
     pd.testing.assert_frame_equal(single, _all_parts(tmp_path / "dask"), check_exact=True)
