@@ -617,8 +617,8 @@ def heat_plot(heat: pd.DataFrame, *, unit: str = "TW", title: str | None = None)
                 ax.fill_between(t, heat["total_lo"], heat["total_hi"], color="#bbbbbb",
                                 alpha=0.5, lw=0, label="total, 90% interval")
             ax.plot(t, heat["total"], color="black", lw=2.0, label="total")
-            ax.text(t[0], float(heat["total"].iloc[0]), f" today {heat['total'].iloc[0]:.3g} "
-                    f"{unit}", va="bottom", fontsize=8)
+            ax.text(t[0], float(heat["total"].iloc[0]), f"today {heat['total'].iloc[0]:.3g} "
+                    f"{unit} ", ha="right", va="bottom", fontsize=8)
         ax.set_xlim(t.max(), t.min())
         ax.set_xlabel("time before present [Gyr]")
         ax.set_ylabel(f"heat production [{unit}]")

@@ -272,6 +272,7 @@ def _fit_report(folder: Path) -> Report:
                                 lambda: plots.heat_plot(table, unit=unit)))
             rep.key_numbers.append((f"mantle heat production today [{unit}]",
                                     _fmt(table["total"].iloc[0]), "238U+235U+232Th+40K"))
+            _add_source(rep, "turcotteschubert2014")
     if len(resid):
         flagged = resid[resid["flag"].fillna("").isin(["above model", "below model"])]
         if len(flagged):
@@ -279,6 +280,17 @@ def _fit_report(folder: Path) -> Report:
                 flagged[["element", "tc50", "observed", "model", "sigma", "z", "fitted",
                          "flag"]])))
     return rep
+
+
+def _add_source(rep: Report, key: str) -> None:
+    """Add a citation from the library's sources table to the report's provenance."""
+    import components
+
+    srcs = components.sources()
+    if key in srcs.index:
+        rep.provenance = dict(rep.provenance)
+        rep.provenance["sources"] = {**(rep.provenance.get("sources") or {}),
+                                     key: srcs.loc[key, "citation"]}
 
 
 def _mantle_mass(d: dict[str, Any], planet: pd.DataFrame) -> float | None:
@@ -684,6 +696,7 @@ def _planet_from_draws(rep: Report, draws: pd.DataFrame, meta: dict[str, Any]) -
                             lambda: plots.heat_plot(heat, unit="pW/kg of mantle")))
         rep.key_numbers.append(("mantle heat production today [pW/kg]", _fmt(med[0]),
                                 f"95% interval [{_fmt(lo[0])}, {_fmt(hi[0])}]"))
+        _add_source(rep, "turcotteschubert2014")
 
 
 # --------------------------------------------------------------------------- star / batch
