@@ -30,8 +30,8 @@ import pandas as pd
 from .heat import HISTORY_GYR, heat_history
 from .planet import MAJOR_OXIDES
 
-__all__ = ["PlanetDraws", "planet_draws", "summarise", "write_handoff", "STATS",
-           "PERCENTILES", "SCHEMA_VERSION"]
+__all__ = ["PlanetDraws", "planet_draws", "summarise", "write_handoff", "fit_handoff",
+           "STATS", "PERCENTILES", "SCHEMA_VERSION"]
 
 SCHEMA_VERSION = "1"
 #: Reported statistics and their percentiles.
@@ -264,3 +264,36 @@ def write_handoff(folder: str | Path, draws: PlanetDraws, *,
         df.insert(0, "draw", np.arange(len(df)))
         df.to_csv(folder / "planet_draws.csv", index=False, float_format="%.8g")
     return data
+
+
+def fit_handoff(folder: str | Path, p: Any, result: Any, *,
+                planet_mass_kg: float | None = None,
+                meta: dict[str, Any] | None = None) -> dict[str, Any]:
+    """Write the hand-off of a convex fit (one point estimate: the intervals collapse).
+
+    Parameters
+    ----------
+    folder : str or Path
+        An existing folder (e.g. the one of :func:`inversion.output.atomic_folder`).
+    p : Problem
+        The compiled problem of the fit.
+    result : FitResult
+        An optimal result of :func:`inversion.fit.fit_problem`.
+    planet_mass_kg : float, optional
+        Planet mass [kg] for the total heat production.
+    meta : dict, optional
+        Extra top-level keys.
+    """
+    from .model import forward
+    from .planet import assemble
+
+    w = np.array([result.weights[c] for c in p.components])[None]
+    vol = np.array(list(result.volatility.values()))[None]
+    fwd = forward(p, w, vol, result.late_accretion_fraction)
+    draws = planet_draws(p, assemble(p, fwd), planet_mass_kg=planet_mass_kg)
+    info = {"method": "convex fit (point estimate: the intervals collapse onto the value)",
+            "components": list(p.components), "weights": result.weights,
+            "volatility": {"form": result.volatility_form, **result.volatility},
+            "late_accretion_fraction": result.late_accretion_fraction}
+    info.update(meta or {})
+    return write_handoff(folder, draws, meta=info)

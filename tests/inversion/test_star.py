@@ -260,3 +260,23 @@ def test_a_star_too_poor_in_iron_is_infeasible(tmp_path, capsys):
     data = json.loads((tmp_path / "o" / "planet.json").read_text())
     assert data["core_mass_fraction"]["median"] is None
     assert data["flags"]["infeasible_draw_fraction"] == 1.0
+
+
+def test_fit_handoff_collapses_and_matches_the_fit(bse_case, tmp_path):
+    # The same writer for a convex fit: one point, every statistic equal to the value,
+    # and the CMF equal to the fit's own.
+    from inversion.case import load_case
+    from inversion.fit import fit_problem
+    from inversion.handoff import fit_handoff
+    from inversion.model import compile_problem
+
+    p = compile_problem(load_case(bse_case))
+    res = fit_problem(p)
+    data = fit_handoff(tmp_path, p, res, planet_mass_kg=5.972e24)
+    cmf = data["core_mass_fraction"]
+    assert all(cmf[s] == pytest.approx(res.core_mass_fraction, rel=1e-12) for s in STATS)
+    # McDonough & Sun (1995) mantle FeO 8.05 wt% sets the split; the final mantle also
+    # holds the late-accreted CI (~0.65 % of the mantle, its iron counted as FeO: +~0.15)
+    assert data["mantle_oxides_wt"]["FeO"]["median"] == pytest.approx(8.05, abs=0.25)
+    assert data["heat_production"]["total_w"]["median"] > 0
+    assert len(pd.read_csv(tmp_path / "planet_draws.csv")) == 1
