@@ -399,6 +399,8 @@ def run_batch(catalogue: str | Path, out: str | Path, settings: StarSettings, *,
             component_names=["CI", "BSE_MS95"],
             extra={"catalogue": str(Path(catalogue).resolve()), "command": "batch"})})
         os.replace(tmp, run_file)
+    for stale in out.glob(".part-*.parquet.tmp-*"):  # left by a run killed while writing
+        stale.unlink(missing_ok=True)
     parts = list(_chunks(rows, partition_size))
     todo = [(i, r) for i, r in parts if not (out / partition_name(i)).exists()]
     skipped = [(i, r) for i, r in parts if (out / partition_name(i)).exists()]

@@ -87,11 +87,13 @@ def test_interrupted_then_resumed_equals_uninterrupted(tmp_path, settings):
     part = run_batch(cat, tmp_path / "res", settings, partition_size=3, max_partitions=1,
                      progress=False)
     assert not part.complete and part.partitions_computed == 1
-    # a partition lost (e.g. killed while writing: only the temporary file existed)
+    # killed while writing the next partition: only its temporary file exists
+    (tmp_path / "res" / ".part-00001.parquet.tmp-12345").write_bytes(b"partial")
     res = run_batch(cat, tmp_path / "res", settings, partition_size=3, resume=True,
                     progress=False)
     assert res.complete and res.partitions_skipped == 1 and res.partitions_computed == 3
-    (tmp_path / "res" / "part-00002.parquet").unlink()
+    assert not list((tmp_path / "res").glob(".part-*"))
+    (tmp_path / "res" / "part-00002.parquet").unlink()  # a partition lost
     res = run_batch(cat, tmp_path / "res", settings, partition_size=3, resume=True,
                     progress=False)
     assert res.partitions_computed == 1 and res.partitions_skipped == 3
