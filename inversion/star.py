@@ -38,7 +38,7 @@ from __future__ import annotations
 import hashlib
 import json
 import math
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, field
 from functools import lru_cache
 from pathlib import Path
 from typing import Any
@@ -554,9 +554,3 @@ def run_star(star: StarInput, settings: StarSettings) -> StarResult:
     xh, missing = draw_xh(star, settings.draws, rng)
     draws, ok = planets_from_xh(xh, model)
     return StarResult(star, draws.masked(ok), ok, missing, model.ci_reference)
-
-
-def with_draws(settings: StarSettings, draws: int) -> StarSettings:
-    """The same settings with another number of draws."""
-    return replace(settings, draws=int(draws))
-
