@@ -53,12 +53,12 @@ __all__ = ["SamplerSettings", "Diagnostics", "SampleResult", "PRIOR_DISTRIBUTION
 GATE_RHAT_MAX = 1.01
 GATE_ESS_BULK_MIN = 400.0
 GATE_DIVERGENCES_MAX = 0
-#: Unrolled fixed-point iterations of the core split in the PyMC model (the numpy model
-#: runs :data:`inversion.model.CORE_ITERATIONS`; a test checks they agree to 1e-6 dex).
-#: The mantle-FeO split converges to ~1e-14 in 15 steps; the redox (dIW) split, whose
-#: D_Fe moves with the mean molar masses, needs ~25 for 1e-9.
+#: Plain unrolled iterations of the core split, when asked for (``iterations=``): the
+#: mantle-FeO split converges to ~1e-14 in 15 steps; the redox (dIW) split, whose D_Fe
+#: moves with the mean molar masses, needs ~25 for 1e-9. The default is the implicit
+#: (one-Newton-step) form, which matches the numpy model to ~1e-12 with a far smaller
+#: graph (a 15-step unrolled graph took ~30 s to compile on a 2-core machine).
 CORE_UNROLL = 15
-CORE_UNROLL_DIW = 25
 #: Degrees of freedom of the Student-t likelihood (MODEL.md section 8).
 STUDENT_NU = 4.0
 #: Observed variable names in the model.
@@ -316,42 +316,197 @@ def pt_log10_retained(form: str, params: list[Any], tc: np.ndarray):
     raise AssertionError("unreachable")
 
 
-def _pt_core_split(a, p: Problem, D, iterations: int | None = None) -> dict[str, Any]:
-    """pytensor twin of :func:`inversion.model._core_split` for one bulk ``a`` (n,)."""
-    import pytensor.tensor as pt
+class _XP:
+    """Array-namespace shim: the same core-step code runs on numpy and on pytensor."""
 
-    if iterations is None:
-        iterations = CORE_UNROLL if p.mantle_Fe is not None else CORE_UNROLL_DIW
+    def __init__(self, symbolic: bool):
+        self.symbolic = symbolic
+        if symbolic:
+            import pytensor.tensor as pt
+
+            self.m = pt
+        else:
+            self.m = np
+
+    def sum(self, x):
+        return self.m.sum(x)
+
+    def maximum(self, x, y):
+        return self.m.maximum(x, y)
+
+    def where(self, c, x, y):
+        return self.m.switch(c, x, y) if self.symbolic else np.where(c, x, y)
+
+
+def _core_step(xp: _XP, p: Problem, a, D, s: list[Any]) -> tuple[list[Any], dict[str, Any]]:
+    """One step of the core fixed point (:func:`inversion.model._core_split`).
+
+    ``s`` is the state: ``[k]`` (mantle-FeO split) or ``[k, D_Fe]`` (redox split). Returns
+    the next state and the reservoirs computed from ``s``.
+    """
     fe = p.fe_index
     f = p.oxide_factor
     is_fe = np.zeros(len(p.elements))
     is_fe[fe] = 1.0
-    aw = p.atomic_weight
-    k = pt.as_tensor_variable(0.5)
-    D_fe = None
-    if p.dIW is not None:
-        D_fe = pt.as_tensor_variable(10 ** (-p.dIW / 2.0) * 50.0 / 55.0)
-    m = M_s = M_c = core = None
-    for _ in range(iterations):
-        if p.mantle_Fe is not None:
-            m = a / (1.0 + D * k) * (1.0 - is_fe)
-            s1 = pt.sum(m * f)
-            M_s = s1 / (1.0 - f[fe] * p.mantle_Fe)
-            m = m + is_fe * p.mantle_Fe * M_s
-        else:
-            Dk = D * (1.0 - is_fe) + is_fe * D_fe
-            m = a / (1.0 + Dk * k)
-            M_s = pt.sum(m * f)
+    k = s[0]
+    if p.mantle_Fe is not None:
+        m = a / (1.0 + D * k) * (1.0 - is_fe)
+        M_s = xp.sum(m * f) / (1.0 - f[fe] * p.mantle_Fe)
+        m = m + is_fe * p.mantle_Fe * M_s
         core = a - m
-        M_c = pt.sum(core)
-        if p.dIW is not None:
-            mol_sil = pt.sum(m / (aw * p.cations))
-            mol_met = pt.sum(pt.maximum(core, 0.0) / aw)
-            mbar_sil = M_s / mol_sil
-            mbar_met = pt.switch(mol_met > 0, M_c / pt.maximum(mol_met, 1e-300), aw[fe])
-            D_fe = 10 ** (-p.dIW / 2.0) * mbar_sil / mbar_met
-        k = pt.maximum(M_c, 0.0) / M_s
-    return {"mantle": m, "core": core, "M_s": M_s, "M_c": M_c, "k": k}
+        M_c = xp.sum(core)
+        return [xp.maximum(M_c, 0.0) / M_s], {"mantle": m, "core": core, "M_s": M_s,
+                                              "M_c": M_c}
+    aw = p.atomic_weight
+    Dk = D * (1.0 - is_fe) + is_fe * s[1]
+    m = a / (1.0 + Dk * k)
+    M_s = xp.sum(m * f)
+    core = a - m
+    M_c = xp.sum(core)
+    mol_sil = xp.sum(m / (aw * p.cations))
+    mol_met = xp.sum(xp.maximum(core, 0.0) / aw)
+    mbar_met = xp.where(mol_met > 0, M_c / xp.maximum(mol_met, 1e-300), aw[fe])
+    D_fe = 10 ** (-p.dIW / 2.0) * (M_s / mol_sil) / mbar_met
+    return [xp.maximum(M_c, 0.0) / M_s, D_fe], {"mantle": m, "core": core, "M_s": M_s,
+                                               "M_c": M_c}
+
+
+def _state0(p: Problem) -> np.ndarray:
+    if p.mantle_Fe is not None:
+        return np.array([0.5])
+    return np.array([0.5, 10 ** (-p.dIW / 2.0) * 50.0 / 55.0])
+
+
+def _step_and_jacobian(p: Problem, a: np.ndarray, D: np.ndarray, s: np.ndarray
+                       ) -> tuple[np.ndarray, np.ndarray]:
+    """The core step G(s) and its Jacobian dG/ds (analytic for the mantle-FeO split,
+    central differences for the redox split)."""
+    if p.mantle_Fe is not None:
+        fe = p.fe_index
+        f = p.oxide_factor
+        u = a.copy()
+        u[fe] = 0.0
+        F = p.mantle_Fe
+        c = 1.0 / (1.0 - f[fe] * F)
+        k = s[0]
+        t = 1.0 / (1.0 + D * k)
+        uf = u * f
+        M_s = c * np.dot(uf, t)
+        M_c = a.sum() - np.dot(u, t) - F * M_s
+        dt = -D * t * t
+        dM_s = c * np.dot(uf, dt)
+        dM_c = -np.dot(u, dt) - F * dM_s
+        if M_c <= 0:
+            return np.array([0.0]), np.zeros((1, 1))
+        return (np.array([M_c / M_s]),
+                np.array([[(dM_c * M_s - M_c * dM_s) / (M_s * M_s)]]))
+    xp = _XP(False)
+    G = np.array(_core_step(xp, p, a, D, list(s))[0], dtype=float)
+    J = np.empty((s.size, s.size))
+    for j in range(s.size):
+        h = 1e-6 * max(abs(s[j]), 1e-6)
+        up, dn = s.copy(), s.copy()
+        up[j] += h
+        dn[j] -= h
+        J[:, j] = (np.array(_core_step(xp, p, a, D, list(up))[0])
+                   - np.array(_core_step(xp, p, a, D, list(dn))[0])) / (2 * h)
+    return G, J
+
+
+def core_fixed_point(p: Problem, a: np.ndarray, D: np.ndarray, *, max_iter: int = 500,
+                     rtol: float = 1e-13, s0: np.ndarray | None = None
+                     ) -> tuple[np.ndarray, np.ndarray]:
+    """Fixed point of the core step for one bulk ``a`` (n,), and ``inv(I - J)``.
+
+    Newton's method on ``G(s) - s`` (falling back to plain iteration if a Newton step
+    leaves the physical range); ``J`` is the step's Jacobian at the fixed point, used by
+    the PyMC model's implicit gradient. Stops when the state changes by less than
+    ``rtol`` (relative); ``s0`` warm-starts it.
+    """
+    s = _state0(p) if s0 is None else np.asarray(s0, float).copy()
+    eye = np.eye(s.size)
+    G, J = _step_and_jacobian(p, a, D, s)
+    for _ in range(max_iter):
+        if s.size == 1:
+            den = 1.0 - J[0, 0]
+            nxt = s + (G - s) / den if den != 0 else G
+        else:
+            try:
+                nxt = s + np.linalg.solve(eye - J, G - s)
+            except np.linalg.LinAlgError:
+                nxt = G
+        if not (np.all(np.isfinite(nxt)) and nxt[0] >= 0 and (nxt.size == 1 or nxt[1] > 0)):
+            nxt = G
+        done = np.all(np.abs(nxt - s) <= rtol * np.maximum(np.abs(s), 1e-300))
+        s = nxt
+        G, J = _step_and_jacobian(p, a, D, s)
+        if done:
+            break
+    return s, np.linalg.inv(eye - J)
+
+
+def _fixed_point_op(p: Problem):
+    """A pytensor Op: (a, D) -> (fixed-point state, inv(I - J)), treated as constants."""
+    import pytensor.tensor as pt
+    from pytensor.graph.basic import Apply
+    from pytensor.graph.op import Op
+
+    size = 1 if p.mantle_Fe is not None else 2
+
+    class CoreFixedPoint(Op):
+        __props__ = ()
+        problem = p
+
+        def make_node(self, a, D):
+            a = pt.as_tensor_variable(a)
+            D = pt.as_tensor_variable(D)
+            return Apply(self, [a, D], [pt.dvector(), pt.dmatrix()])
+
+        def perform(self, node, inputs, outputs):
+            # warm start from the previous call (sampling moves in small steps); the
+            # result does not depend on the start, only the iteration count does
+            last = node.tag.__dict__.get("last_state")
+            s, minv = core_fixed_point(self.problem, np.asarray(inputs[0]),
+                                       np.asarray(inputs[1]), s0=last)
+            if not np.all(np.isfinite(s)) or s[0] < 0:
+                s, minv = core_fixed_point(self.problem, np.asarray(inputs[0]),
+                                           np.asarray(inputs[1]))
+            node.tag.last_state = s
+            outputs[0][0] = s.astype(float)
+            outputs[1][0] = minv.astype(float)
+
+        def infer_shape(self, fgraph, node, shapes):
+            return [(size,), (size, size)]
+
+        def L_op(self, inputs, outputs, grads):
+            return [pt.zeros_like(inputs[0]), pt.zeros_like(inputs[1])]
+
+    return CoreFixedPoint()
+
+
+def _pt_core_split(a, p: Problem, D, iterations: int | None = None) -> dict[str, Any]:
+    """pytensor twin of :func:`inversion.model._core_split` for one bulk ``a`` (n,).
+
+    ``iterations=None`` (the default) solves the fixed point in numpy and takes one
+    symbolic Newton step from it, ``s1 = s* + inv(I - J) (G(s*) - s*)``, whose value is
+    the fixed point and whose derivative is the implicit-function derivative
+    ``inv(I - J) dG/dtheta``: a small graph that compiles fast. An integer unrolls that
+    many plain iterations instead (the textbook route, kept for checks).
+    """
+    import pytensor.tensor as pt
+
+    xp = _XP(True)
+    if iterations is not None:
+        s = [pt.as_tensor_variable(v) for v in _state0(p)]
+        for _ in range(iterations):
+            nxt, res = _core_step(xp, p, a, D, s)
+            s = nxt
+        return res
+    s_star, minv = _fixed_point_op(p)(a, D)
+    g, _ = _core_step(xp, p, a, D, [s_star[i] for i in range(len(_state0(p)))])
+    s1 = s_star + pt.dot(minv, pt.stack(g) - s_star)
+    _, res = _core_step(xp, p, a, D, [s1[i] for i in range(len(_state0(p)))])
+    return res
 
 
 def model_log10N(p: Problem, w, vol: list[Any], lam, D, *, iterations: int | None = None
@@ -395,8 +550,7 @@ def build_model(p: Problem, priors: dict[str, dict[str, Any]] | None = None, *,
         Observed log10 N of the fitted elements (defaults to ``p.y``; simulation studies
         pass synthetic data here).
     iterations : int, optional
-        Unrolled fixed-point iterations of the core split (default :data:`CORE_UNROLL`,
-        or :data:`CORE_UNROLL_DIW` for the redox split).
+        Unrolled fixed-point iterations of the core split instead of the implicit form.
 
     Returns
     -------
@@ -450,7 +604,8 @@ def build_model(p: Problem, priors: dict[str, dict[str, Any]] | None = None, *,
             pm.Deterministic("x", x / pt.sum(x), dims="components")
         pm.Deterministic("cmf", out["cmf"])
         scale = pt.sqrt(p.sigma ** 2 + tau ** 2)
-        pm.StudentT(OBS_ELEMENTS, nu=STUDENT_NU, mu=mu, sigma=scale, observed=y,
+        y_data = pm.Data("y_data", y, dims="elements")
+        pm.StudentT(OBS_ELEMENTS, nu=STUDENT_NU, mu=mu, sigma=scale, observed=y_data,
                     dims="elements")
         if p.isotopes:
             v = out["v"]
@@ -662,7 +817,7 @@ def sample(p: Problem, settings: SamplerSettings | None = None, *,
     settings = settings or SamplerSettings()
     priors = priors or default_priors(p)
     rng = np.random.default_rng(settings.seed)
-    chain_seeds = [int(s) for s in rng.integers(0, 2**31 - 1, size=settings.chains)]
+    nuts_seed = int(rng.integers(0, 2**31 - 1))
     ppc_seed = int(rng.integers(0, 2**31 - 1))
     smc_seed = int(rng.integers(0, 2**31 - 1))
     t0 = time.perf_counter()
@@ -676,7 +831,7 @@ def sample(p: Problem, settings: SamplerSettings | None = None, *,
     t1 = time.perf_counter()
     with model:
         idata = pm.sample(draws=settings.draws, tune=settings.tune, chains=settings.chains,
-                          cores=cores, random_seed=chain_seeds, initvals=inits,
+                          cores=cores, random_seed=nuts_seed, initvals=inits,
                           init="adapt_diag", target_accept=settings.target_accept,
                           progressbar=progress, compute_convergence_checks=False,
                           idata_kwargs={"log_likelihood": log_likelihood})
@@ -703,9 +858,10 @@ def sample(p: Problem, settings: SamplerSettings | None = None, *,
         smc_info = {"log_marginal_likelihood_per_chain": per_chain.tolist(),
                     "draws": settings.smc_draws, "chains": settings.smc_chains,
                     "seconds": time.perf_counter() - t2}
-    seeds = {"seed": settings.seed, "chain_seeds": chain_seeds, "posterior_predictive_seed":
+    seeds = {"seed": settings.seed, "nuts_seed": nuts_seed, "posterior_predictive_seed":
              ppc_seed, "smc_seed": smc_seed,
-             "generator": "numpy.random.default_rng(seed).integers(0, 2**31 - 1)"}
+             "generator": "numpy.random.default_rng(seed).integers(0, 2**31 - 1), in this "
+             "order; PyMC splits nuts_seed into one stream per chain"}
     start = {"fit_status": getattr(fit, "status", None), "initial_values": inits}
     timing = {"fit_seconds": t_fit, "sampling_seconds": t_nuts,
               "total_seconds": time.perf_counter() - t0}
@@ -720,3 +876,190 @@ def _with_y(p: Problem, y: np.ndarray) -> Problem:
     y_all = p.y_all.copy()
     y_all[p.fit_index] = y
     return replace(p, y=np.asarray(y, float), y_all=y_all)
+
+
+# --------------------------------------------------------------------------- outputs
+def posterior_arrays(p: Problem, idata: Any) -> dict[str, np.ndarray]:
+    """Posterior draws flattened over (chain, draw): ``w`` (S, K), ``vol`` (S, p),
+    ``lam`` (S,), ``D`` (S, n), ``tau`` (S,), ``chain`` and ``draw`` (S,)."""
+    post = idata.posterior
+    nc, nd = post.sizes["chain"], post.sizes["draw"]
+    S = nc * nd
+    K = len(p.components)
+    w = post["w"].values.reshape(S, K) if "w" in post else np.ones((S, 1))
+    form = get_form(p.volatility_form)
+    vol = np.stack([post[n].values.reshape(S) for n in form.params], axis=1)
+    lam = post["lam"].values.reshape(S) if "lam" in post else np.zeros(S)
+    D = np.broadcast_to(p.D, (S, p.D.size)).copy()
+    part = _partitioned(p)
+    if part:
+        D[:, part] = 10.0 ** post["log10D"].values.reshape(S, len(part))
+    chain, draw = np.meshgrid(post["chain"].values, post["draw"].values, indexing="ij")
+    return {"w": w, "vol": vol, "lam": lam, "D": D, "tau": post["tau"].values.reshape(S),
+            "chain": chain.ravel(), "draw": draw.ravel()}
+
+
+def planet_draws(p: Problem, idata: Any) -> pd.DataFrame:
+    """Whole-planet quantities per posterior draw (numpy forward model, vectorised).
+
+    Columns: ``chain``, ``draw``, ``mantle_<oxide>_wt`` (wt%), ``core_<element>_wt``
+    (wt%, elements present in the core), ``core_mass_fraction``,
+    ``late_accretion_fraction`` (of the mantle), ``late_accretion_planet_fraction``, and
+    the molar ratios of :data:`inversion.planet.RATIO_NAMES`.
+    """
+    from .planet import assemble
+
+    d = posterior_arrays(p, idata)
+    fwd = forward(p, d["w"], d["vol"], d["lam"], D=d["D"])
+    pl = assemble(p, fwd)
+    cols: dict[str, np.ndarray] = {"chain": d["chain"], "draw": d["draw"]}
+    for j, ox in enumerate(pl["oxides"]):
+        cols[f"mantle_{ox}_wt"] = pl["mantle_oxides_wt"][:, j]
+    core = pl["core_wt"]
+    for j, e in enumerate(pl["elements"]):
+        if np.any(core[:, j] > 0):
+            cols[f"core_{e}_wt"] = core[:, j]
+    cols["core_mass_fraction"] = pl["cmf"]
+    cols["late_accretion_fraction"] = d["lam"]
+    cols["late_accretion_planet_fraction"] = d["lam"] * (1.0 - pl["cmf"])
+    for name, val in pl["ratios"].items():
+        cols[name] = np.asarray(val)
+    return pd.DataFrame(cols)
+
+
+def outliers(p: Problem, idata: Any, *, threshold: float = 3.0) -> pd.DataFrame:
+    """Observed elements whose posterior-predictive residual exceeds ``threshold`` scales.
+
+    For every observed element (fitted or not), the residual ``y - mu`` and the scale
+    ``sqrt(sigma**2 + tau**2)`` are computed per draw; ``z`` is the posterior median of
+    their ratio. ``tail_probability`` is the posterior-predictive probability of a
+    replicate at least as far from the model (Student-t, nu = 4).
+    """
+    from scipy import stats
+
+    d = posterior_arrays(p, idata)
+    fwd = forward(p, d["w"], d["vol"], d["lam"], D=d["D"])
+    obs = np.isfinite(p.y_all)
+    obs[p.ref_index] = False
+    mu = fwd["log10N"][:, obs]
+    y = p.y_all[obs]
+    scale = np.sqrt(p.sigma_all[obs][None, :] ** 2 + d["tau"][:, None] ** 2)
+    z_draws = (y[None, :] - mu) / scale
+    z = np.median(z_draws, axis=0)
+    tail = np.mean(2 * stats.t.sf(np.abs(z_draws), STUDENT_NU), axis=0)
+    fitted = np.zeros(len(p.elements), dtype=bool)
+    fitted[p.fit_index] = True
+    els = np.array(p.elements)[obs]
+    df = pd.DataFrame({
+        "element": els, "tc50_K": p.tc[obs], "fitted": fitted[obs],
+        "observed_log10N": y, "predicted_log10N": np.median(mu, axis=0),
+        "residual_dex": y - np.median(mu, axis=0), "scale_dex": np.median(scale, axis=0),
+        "z": z, "tail_probability": tail,
+        "direction": np.where(z > 0, "above model", "below model"),
+    })
+    return df[np.abs(df["z"]) > threshold].sort_values("z", key=np.abs, ascending=False
+                                                        ).reset_index(drop=True)
+
+
+def summary_table(idata: Any, var_names: list[str]) -> pd.DataFrame:
+    """Every parameter (one row per coordinate): mean, sd, 5%, 50%, 95%, r_hat, ess_bulk."""
+    import arviz as az
+
+    post = idata.posterior
+    rh = az.rhat(idata, var_names=var_names)
+    es = az.ess(idata, var_names=var_names, method="bulk")
+    rows = []
+    for name in var_names:
+        da = post[name]
+        extra = [d for d in da.dims if d not in ("chain", "draw")]
+        vals = da.values.reshape(da.sizes["chain"] * da.sizes["draw"], -1)
+        labels = [name] if not extra else [f"{name}[{c}]" for c in da[extra[0]].values]
+        r = np.atleast_1d(rh[name].values).ravel()
+        e = np.atleast_1d(es[name].values).ravel()
+        for j, lab in enumerate(labels):
+            v = vals[:, j]
+            q = np.quantile(v, [0.05, 0.5, 0.95])
+            rows.append({"parameter": lab, "mean": v.mean(), "sd": v.std(ddof=1),
+                         "q05": q[0], "q50": q[1], "q95": q[2], "r_hat": r[j],
+                         "ess_bulk": e[j]})
+    return pd.DataFrame(rows)
+
+
+def _interval(v: np.ndarray) -> dict[str, float]:
+    q = np.quantile(v, [0.05, 0.5, 0.95])
+    return {"median": float(q[1]), "q05": float(q[0]), "q95": float(q[2])}
+
+
+def main_parameters(p: Problem, idata: Any, planet: pd.DataFrame | None = None
+                    ) -> dict[str, Any]:
+    """Posterior medians and 90% intervals of the main parameters (for ``sample.json``)."""
+    d = posterior_arrays(p, idata)
+    fwd_x = d["w"] / p.c_comp_R[None, :]
+    fwd_x = fwd_x / fwd_x.sum(axis=1, keepdims=True)
+    out: dict[str, Any] = {
+        "weights": {c: _interval(d["w"][:, k]) for k, c in enumerate(p.components)},
+        "mass_fractions": {c: _interval(fwd_x[:, k]) for k, c in enumerate(p.components)},
+        "volatility": {"form": p.volatility_form, **{
+            n: _interval(d["vol"][:, j])
+            for j, n in enumerate(get_form(p.volatility_form).params)}},
+        "tau_dex": _interval(d["tau"]),
+    }
+    if p.late_name is not None:
+        out["late_accretion_fraction"] = _interval(d["lam"])
+    if planet is not None:
+        out["core_mass_fraction"] = _interval(planet["core_mass_fraction"].to_numpy())
+        if p.late_name is not None:
+            out["late_accretion_planet_fraction"] = _interval(
+                planet["late_accretion_planet_fraction"].to_numpy())
+    else:
+        out["core_mass_fraction"] = _interval(idata.posterior["cmf"].values.ravel())
+    return out
+
+
+def compare_runs(idatas: dict[str, Any], *, evidence: dict[str, float | None] | None = None
+                 ) -> pd.DataFrame:
+    """Rank posteriors of the same observations by PSIS-LOO (``arviz.compare``).
+
+    Parameters
+    ----------
+    idatas : dict
+        label -> InferenceData with a ``log_likelihood`` group holding ``y_obs``.
+    evidence : dict, optional
+        label -> log marginal likelihood (SMC); adds ``log_marginal_likelihood`` and
+        ``log10_bayes_factor`` against the best-ranked run where known.
+
+    Raises
+    ------
+    InputError
+        Fewer than two runs, a run without log-likelihood, or runs of different data.
+    """
+    import arviz as az
+
+    if len(idatas) < 2:
+        raise InputError("give at least two result folders to compare", field="DIR")
+    ref_label, ref = next(iter(idatas.items()))
+    for label, idata in idatas.items():
+        if "log_likelihood" not in idata.groups() or OBS_ELEMENTS not in idata.log_likelihood:
+            raise InputError("the posterior has no log-likelihood of the elements",
+                             file=label, field="log_likelihood")
+        a = ref.observed_data[OBS_ELEMENTS]
+        b = idata.observed_data[OBS_ELEMENTS]
+        if (list(a["elements"].values) != list(b["elements"].values)
+                or not np.allclose(a.values, b.values)):
+            raise InputError(f"observations differ from those of {ref_label}; PSIS-LOO "
+                             "compares posteriors of the same target and fitted elements",
+                             file=label, field="observed_data")
+    import warnings
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        table = az.compare(idatas, ic="loo", var_name=OBS_ELEMENTS)
+    table = table.reset_index().rename(columns={"index": "run"})
+    if evidence:
+        lml = [evidence.get(r) for r in table["run"]]
+        table["log_marginal_likelihood"] = lml
+        best = lml[0]
+        table["log10_bayes_factor_vs_best"] = [
+            (v - best) / math.log(10) if v is not None and best is not None else None
+            for v in lml]
+    return table

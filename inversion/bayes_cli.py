@@ -1,0 +1,208 @@
+"""``planetmix sample`` and ``planetmix compare``: the Bayesian commands.
+
+``sample`` writes ``posterior.nc``, ``summary.csv``, ``planet_draws.parquet``,
+``outliers.csv``, ``diagnostics.json`` and ``sample.json`` into the result folder
+(atomically) and exits 4 when the diagnostics gate fails (the results are still written,
+marked as failing). ``compare`` ranks result folders of the same target by PSIS-LOO.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+from pathlib import Path
+from typing import Any
+
+from .cli import EXIT_GATE, EXIT_OK, register
+from .exceptions import InputError
+
+__all__ = ["write_sample", "read_run"]
+
+
+def write_sample(out: Path, case: Any, p: Any, result: Any) -> dict[str, Any]:
+    """Write every output of a sampling run into ``out``; return the ``sample.json`` data."""
+    from dataclasses import asdict
+
+    from .bayes import (
+        main_parameters,
+        outliers,
+        planet_draws,
+        summary_table,
+    )
+    from .output import atomic_folder, provenance, write_json
+
+    idata = result.idata
+    names = [n for n in idata.posterior.data_vars if n not in ("mu", "eps_pred")]
+    free = [n for n in names if n not in ("x", "cmf")]
+    planet = planet_draws(p, idata)
+    table = summary_table(idata, names)
+    outl = outliers(p, idata)
+    diag = result.diagnostics.to_dict()
+    status = "passed" if result.passed else "failed diagnostics gate"
+    data = {
+        "title": case.title,
+        "status": status,
+        "gate_messages": result.diagnostics.messages(),
+        "components": list(p.components),
+        "weights_basis": f"{p.reference} (reference-element) basis",
+        "late_accretion_component": p.late_name,
+        "fit_elements": p.fit_elements,
+        "parameters": free,
+        "posterior": main_parameters(p, idata, planet),
+        "log_marginal_likelihood": result.log_marginal_likelihood,
+        "smc": result.smc,
+        "settings": asdict(result.settings),
+        "seeds": result.seeds,
+        "start": result.start,
+        "priors": result.priors,
+        "likelihood": {"elements": "StudentT(nu=4, mu, sqrt(sigma^2 + tau^2))",
+                       "isotopes": "Normal(eps_pred, sigma_obs)"},
+        "timing_seconds": result.timing,
+        "diagnostics": diag,
+        "notes": list(p.notes),
+        "provenance": provenance(
+            tables=[p.condensation_table, "mcdonough2003", "mcdonoughsun1995", "vehtari2021"],
+            component_names=list(p.components) + ([p.late_name] if p.late_name else [])
+            + ["CI"],
+            extra={"case_file": case.path, "target_table": case.target.path,
+                   "reference_element": p.reference,
+                   "iron_split": ({"mantle_FeO_wt": case.core.mantle_FeO_wt}
+                                  if case.core.mantle_FeO_wt is not None
+                                  else {"dIW": case.core.dIW}),
+                   "sampler": "PyMC NUTS, started from the convex optimum (jittered)"}),
+    }
+    with atomic_folder(out) as tmp:
+        result.idata.to_netcdf(str(tmp / "posterior.nc"))
+        table.to_csv(tmp / "summary.csv", index=False)
+        planet.to_parquet(tmp / "planet_draws.parquet", index=False)
+        outl.to_csv(tmp / "outliers.csv", index=False)
+        write_json(tmp / "diagnostics.json", {**diag, "status": status})
+        write_json(tmp / "sample.json", data)
+    return data
+
+
+def _fmt(d: dict[str, float], scale: float = 1.0, spec: str = ".4g") -> str:
+    return (f"{d['median'] * scale:{spec}} [{d['q05'] * scale:{spec}}, "
+            f"{d['q95'] * scale:{spec}}]")
+
+
+@register("sample", "sample the posterior of a case with NUTS (PyMC) and gate it")
+def _sample(parser: argparse.ArgumentParser):
+    parser.add_argument("case", help="case file (TOML)")
+    parser.add_argument("--out", required=True, help="result folder")
+    parser.add_argument("--draws", type=int, default=None, help="kept draws per chain "
+                        "(default: [sampler] draws, else 1000)")
+    parser.add_argument("--tune", type=int, default=None, help="tuning draws per chain "
+                        "(default: [sampler] tune, else 1000)")
+    parser.add_argument("--chains", type=int, default=None,
+                        help="chains (default: [sampler] chains, else 4)")
+    parser.add_argument("--seed", type=int, default=None,
+                        help="random seed (default: [sampler] seed, else 0)")
+    parser.add_argument("--evidence", action="store_true",
+                        help="also run sequential Monte Carlo for the log marginal likelihood")
+    parser.add_argument("--quiet", action="store_true", help="no progress display")
+
+    def run(args: argparse.Namespace) -> int:
+        from .bayes import check_priors, check_sampler_settings, sample
+        from .case import load_case
+        from .model import compile_problem
+
+        case = load_case(args.case)
+        p = compile_problem(case)
+        priors = check_priors(p, case.priors, file=case.path)
+        settings = check_sampler_settings(case.sampler, file=case.path, draws=args.draws,
+                                          tune=args.tune, chains=args.chains, seed=args.seed,
+                                          evidence=args.evidence or None)
+        result = sample(p, settings, priors=priors, progress=not args.quiet)
+        data = write_sample(Path(args.out), case, p, result)
+        post = data["posterior"]
+        print(f"{case.title}: {'+'.join(p.components)}, {settings.chains} chains x "
+              f"{settings.draws} draws (seed {settings.seed})")
+        print("  weights (" + p.reference + " basis, median [5%, 95%]): " + "; ".join(
+            f"{k} {_fmt(v, spec='.3f')}" for k, v in post["weights"].items()))
+        print(f"  volatility ({p.volatility_form}): " + "; ".join(
+            f"{k} {_fmt(v)}" for k, v in post["volatility"].items() if k != "form"))
+        if "late_accretion_fraction" in post:
+            print(f"  late accretion: {_fmt(post['late_accretion_fraction'], 100, '.3f')} % of "
+                  f"the mantle, {_fmt(post['late_accretion_planet_fraction'], 100, '.3f')} %"
+                  " of the planet")
+        print(f"  core mass fraction {_fmt(post['core_mass_fraction'], spec='.3f')}; "
+              f"model scatter tau {_fmt(post['tau_dex'], spec='.3f')} dex")
+        if data["log_marginal_likelihood"] is not None:
+            print(f"  log marginal likelihood (SMC): {data['log_marginal_likelihood']:.2f}")
+        d = data["diagnostics"]
+        print(f"  diagnostics: R-hat max {d['rhat_max']:.4f} (<= {d['thresholds']['rhat_max']}),"
+              f" bulk ESS min {d['ess_bulk_min']:.0f} (>= "
+              f"{d['thresholds']['ess_bulk_min']:.0f}), divergences {d['divergences']} "
+              "[Vehtari et al. 2021]")
+        print(f"  written to {args.out}/posterior.nc, summary.csv, planet_draws.parquet, "
+              "outliers.csv, diagnostics.json, sample.json")
+        if not result.passed:
+            print("  DIAGNOSTICS GATE FAILED; results are marked as failing:")
+            for m in result.diagnostics.messages():
+                print("    " + m)
+            return EXIT_GATE
+        return EXIT_OK
+
+    return run
+
+
+def read_run(folder: str | Path) -> tuple[Any, dict[str, Any]]:
+    """Read a ``sample`` result folder: the InferenceData and ``sample.json``."""
+    import arviz as az
+
+    folder = Path(folder)
+    nc = folder / "posterior.nc"
+    js = folder / "sample.json"
+    if not nc.exists() or not js.exists():
+        raise InputError("not a sample result folder (needs posterior.nc and sample.json)",
+                         file=str(folder))
+    meta = json.loads(js.read_text(encoding="utf-8"))
+    return az.from_netcdf(str(nc)), meta
+
+
+@register("compare", "rank sample results of the same target by PSIS-LOO")
+def _compare(parser: argparse.ArgumentParser):
+    parser.add_argument("dirs", nargs="+", metavar="DIR", help="result folders of sample")
+    parser.add_argument("--out", default=None, help="folder for comparison.csv")
+
+    def run(args: argparse.Namespace) -> int:
+        import math
+
+        from .bayes import compare_runs
+        from .output import atomic_folder
+
+        idatas, evidence, gate = {}, {}, {}
+        for d in args.dirs:
+            idata, meta = read_run(d)
+            label = str(d)
+            if label in idatas:
+                raise InputError("a folder is listed twice", field="DIR", value=label)
+            idatas[label] = idata
+            evidence[label] = meta.get("log_marginal_likelihood")
+            gate[label] = meta.get("status")
+        table = compare_runs(idatas, evidence=evidence if any(
+            v is not None for v in evidence.values()) else None)
+        table.insert(1, "components", [
+            "+".join(json.loads((Path(r) / "sample.json").read_text())["components"])
+            for r in table["run"]])
+        table["gate"] = [gate[r] for r in table["run"]]
+        cols = ["rank", "run", "components", "elpd_loo", "p_loo", "elpd_diff", "dse",
+                "weight", "warning", "gate"]
+        if "log_marginal_likelihood" in table:
+            cols += ["log_marginal_likelihood", "log10_bayes_factor_vs_best"]
+        table = table[cols]
+        print(table.to_string(index=False, float_format=lambda v: f"{v:.3f}"))
+        if "log10_bayes_factor_vs_best" in table:
+            for _, r in table.iloc[1:].iterrows():
+                bf = r["log10_bayes_factor_vs_best"]
+                if bf is not None and not (isinstance(bf, float) and math.isnan(bf)):
+                    print(f"  Bayes factor {table.iloc[0]['run']} : {r['run']} = "
+                          f"10^{-bf:.2f}")
+        if args.out:
+            with atomic_folder(args.out) as tmp:
+                table.to_csv(tmp / "comparison.csv", index=False)
+            print(f"written to {args.out}/comparison.csv")
+        return EXIT_OK
+
+    return run
