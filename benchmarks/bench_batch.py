@@ -87,6 +87,9 @@ def main(argv: list[str] | None = None) -> int:
 
         t = time.perf_counter()
         with local_cluster(args.workers) as cluster, Client(cluster) as client:
+            from inversion.batch import warm_worker
+
+            client.run(warm_worker, settings)  # imports and model set-up, as run_batch does
             t_start = time.perf_counter() - t
             t = time.perf_counter()
             s2 = run_batch(cat, work / "dask", settings, partition_size=args.partition_size,
@@ -95,7 +98,7 @@ def main(argv: list[str] | None = None) -> int:
             rss_workers = client.run(_maxrss_mb)
         speed = t_single / t_dask
         print(f"Dask, {args.workers} workers: {t_dask:.1f} s ({args.stars / t_dask:.0f} "
-              f"stars/s; cluster start {t_start:.1f} s not counted), {s2.n_done} done; "
+              f"stars/s; cluster start and warm-up {t_start:.1f} s not counted), {s2.n_done} done; "
               f"speed-up {speed:.2f}x")
         print("peak RSS per worker: " + ", ".join(f"{v:.0f} MB" for v in
                                                   rss_workers.values()))

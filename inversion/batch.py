@@ -43,7 +43,7 @@ from .star import (
 )
 
 __all__ = ["read_catalogue", "CatalogueRow", "run_partition", "run_batch", "BatchSummary",
-           "partition_name", "quantiles_by_group", "local_cluster", "tune_allocator",
+           "partition_name", "quantiles_by_group", "local_cluster", "tune_allocator", "warm_worker",
            "ALLOCATOR_ENV"]
 
 #: glibc allocator settings for the processes of a batch: the large temporary arrays of a
@@ -262,6 +262,13 @@ def run_partition(rows: list[CatalogueRow], settings: StarSettings) -> pd.DataFr
     return out[lead + [c for c in out.columns if c not in lead]]
 
 
+def warm_worker(settings: StarSettings) -> bool:
+    """Import the engine and build the star model in a Dask worker (run once per worker
+    before the partitions, so the first partitions do not carry the start-up cost)."""
+    star_model(settings)
+    return True
+
+
 def tune_allocator() -> bool:
     """Apply :data:`ALLOCATOR_ENV` to this process (glibc ``mallopt``); False elsewhere.
 
@@ -415,6 +422,8 @@ def run_batch(catalogue: str | Path, out: str | Path, settings: StarSettings, *,
     else:
         from distributed import as_completed
 
+        # every worker imports the engine and builds the model once, before any partition
+        client.run(warm_worker, settings)
         # a bounded window of partitions in flight: memory stays flat for any catalogue
         s_future = client.scatter(settings, broadcast=True)
         window = max(4, 2 * sum(client.nthreads().values()))
