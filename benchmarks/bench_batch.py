@@ -93,7 +93,7 @@ def main(argv: list[str] | None = None) -> int:
             t_start = time.perf_counter() - t
             t = time.perf_counter()
             s2 = run_batch(cat, work / "dask", settings, partition_size=args.partition_size,
-                           client=client, progress=False)
+                           client=client, progress=False, workers_write=True)
             t_dask = time.perf_counter() - t
             rss_workers = client.run(_maxrss_mb)
         speed = t_single / t_dask

@@ -44,6 +44,7 @@ from .star import (
 
 __all__ = ["read_catalogue", "CatalogueRow", "run_partition", "run_batch", "BatchSummary",
            "partition_name", "quantiles_by_group", "local_cluster", "tune_allocator", "warm_worker",
+           "write_partition",
            "ALLOCATOR_ENV"]
 
 #: glibc allocator settings for the processes of a batch: the large temporary arrays of a
@@ -309,6 +310,13 @@ def _write_parquet_atomic(df: pd.DataFrame, path: Path) -> None:
     os.replace(tmp, path)
 
 
+def write_partition(rows: list[CatalogueRow], settings: StarSettings,
+                    path: str | Path) -> str:
+    """Compute one partition and write it atomically (temporary file, then rename)."""
+    _write_parquet_atomic(run_partition(rows, settings), Path(path))
+    return str(path)
+
+
 @dataclass(frozen=True)
 class BatchSummary:
     """What a batch run did: stars done, failed (with reasons), partitions skipped."""
@@ -349,7 +357,8 @@ def _chunks(rows: list[CatalogueRow], size: int) -> Iterator[tuple[int, list[Cat
 
 def run_batch(catalogue: str | Path, out: str | Path, settings: StarSettings, *,
               partition_size: int = 200, resume: bool = False, client: Any = None,
-              max_partitions: int | None = None, progress: bool = True) -> BatchSummary:
+              max_partitions: int | None = None, progress: bool = True,
+              workers_write: bool = False) -> BatchSummary:
     """Run the star-to-planet computation for every star of a catalogue.
 
     Parameters
@@ -369,6 +378,11 @@ def run_batch(catalogue: str | Path, out: str | Path, settings: StarSettings, *,
         Stop after computing this many partitions (the rest are left for a resumed run).
     progress : bool
         Progress bar on standard error.
+    workers_write : bool
+        With a client: each worker writes its partition file itself (atomically) and
+        returns only its name. Needs ``out`` on a file system the workers share (always
+        true of a local cluster); otherwise the results travel to this process, which
+        writes them.
 
     Returns
     -------
@@ -417,7 +431,7 @@ def run_batch(catalogue: str | Path, out: str | Path, settings: StarSettings, *,
                disable=not progress)
     if client is None:
         for i, r in todo:
-            _write_parquet_atomic(run_partition(r, settings), out / partition_name(i))
+            write_partition(r, settings, out / partition_name(i))
             bar.update(len(r))
     else:
         from distributed import as_completed
@@ -435,8 +449,13 @@ def run_batch(catalogue: str | Path, out: str | Path, settings: StarSettings, *,
             nxt = next(queue, None)
             if nxt is not None:
                 i, r = nxt
-                f = client.submit(run_partition, r, s_future, pure=False,
-                                  key=f"planetmix-partition-{digest[:12]}-{i}")
+                key = f"planetmix-partition-{digest[:12]}-{i}"
+                if workers_write:
+                    f = client.submit(write_partition, r, s_future,
+                                      str(out.resolve() / partition_name(i)), pure=False,
+                                      key=key)
+                else:
+                    f = client.submit(run_partition, r, s_future, pure=False, key=key)
                 futs[f] = (i, len(r))
                 ac.add(f)
 
@@ -444,7 +463,9 @@ def run_batch(catalogue: str | Path, out: str | Path, settings: StarSettings, *,
             submit_next()
         for fut in ac:
             i, n = futs.pop(fut)
-            _write_parquet_atomic(fut.result(), out / partition_name(i))
+            res = fut.result()
+            if not workers_write:
+                _write_parquet_atomic(res, out / partition_name(i))
             fut.release()
             bar.update(n)
             submit_next()

@@ -186,7 +186,8 @@ def _batch(parser: argparse.ArgumentParser):
         try:
             summary = run_batch(args.catalogue, args.out, settings,
                                 partition_size=args.partition_size, resume=args.resume,
-                                client=client, progress=True)
+                                client=client, progress=True,
+                                workers_write=cluster is not None)
         finally:
             if client is not None:
                 client.close()

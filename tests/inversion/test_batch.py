@@ -124,12 +124,15 @@ def test_dask_equals_single_process(tmp_path, settings):
                       dashboard_address=None) as cluster, Client(cluster) as client:
         s = run_batch(cat, tmp_path / "dask", settings, partition_size=2, client=client,
                       progress=False)
+        w = run_batch(cat, tmp_path / "dask_w", settings, partition_size=2, client=client,
+                      progress=False, workers_write=True)
         # the command line, sent to the same (existing) cluster by its address
         rc = main(["batch", str(cat), "--out", str(tmp_path / "cli"), "--scheduler",
                    cluster.scheduler_address, "--draws", "100", "--seed", "11",
                    "--planet-mass-kg", "5.972e24", "--partition-size", "2"])
-    assert s.complete and rc == 0
+    assert s.complete and w.complete and rc == 0
     single = _all_parts(tmp_path / "single")
+    pd.testing.assert_frame_equal(single, _all_parts(tmp_path / "dask_w"), check_exact=True)
     pd.testing.assert_frame_equal(single, _all_parts(tmp_path / "dask"), check_exact=True)
     pd.testing.assert_frame_equal(single, _all_parts(tmp_path / "cli"), check_exact=True)
 
