@@ -38,6 +38,7 @@ REPORT_KINDS: dict[str, tuple[str, ...]] = {
     "sample": ("sample.json",),
     "fit": ("fit.json", "residuals.csv"),
     "rank": ("ranking.csv",),
+    "compare": ("comparison.csv",),
     "batch": ("summary.json", "run.json"),
     "star": ("planet.json",),
 }
@@ -424,18 +425,31 @@ def _sample_report(folder: Path) -> Report:
         if meta.get(k) is not None:
             rep.diagnostics.append((k.replace("_", " "), _fmt(meta[k]) if not isinstance(
                 meta[k], dict) else json.dumps(meta[k])[:300], ""))
+    for line in meta.get("gate_messages") or []:
+        rep.notes.append(str(line))
+    for line in meta.get("notes") or []:
+        rep.notes.append(str(line))
+    post = meta.get("posterior") or {}
+    if post:
+        rep.key_numbers += _posterior_numbers(post, ref)
     summary = _read_csv(folder / "summary.csv") if (folder / "summary.csv").exists() else None
     if summary is not None:
-        rep.key_numbers += _summary_numbers(summary)
-        rep.tables.append(("Posterior summary", _table_html(summary)))
-    elif draws is not None:
+        if not post:
+            rep.key_numbers += _summary_numbers(summary)
+        rep.tables.append(("Posterior summary (every parameter)", _table_html(summary)))
+        if "r_hat" in summary.columns and "ess_bulk" in summary.columns:
+            worst = summary.sort_values("r_hat", ascending=False).head(3)
+            rep.diagnostics.append(("parameters with the largest R-hat", ", ".join(
+                f"{r['parameter']} {_fmt(r['r_hat'])}" for _, r in worst.iterrows()), ""))
+    elif draws is not None and not post:
         rep.key_numbers += _draw_numbers(draws)
     # volatility diagram: the observed data with the posterior model and its band
     resid = _read_csv(folder / "residuals.csv") if (folder / "residuals.csv").exists() \
         else (_residuals_from_idata(idata, prov) if idata is not None else None)
     vol = dict(meta.get("volatility") or {})
     vol_names = [n for n in _VOL_PARAMS if draws is not None and n in draws.columns]
-    form = vol.get("form") or meta.get("volatility_form")
+    form = (vol.get("form") or (post.get("volatility") or {}).get("form")
+            or meta.get("volatility_form") or _form_of(vol_names))
     vol_draws = None
     if form and vol_names:
         from .volatility import FORMS
@@ -488,6 +502,45 @@ def _sample_report(folder: Path) -> Report:
     return rep
 
 
+def _form_of(names: list[str]) -> str | None:
+    """The volatility form whose parameters are ``names`` (None when unclear)."""
+    from .volatility import FORMS
+
+    hits = [f for f, spec in FORMS.items() if set(spec.params) == set(names)]
+    return hits[0] if len(hits) == 1 else None
+
+
+def _interval_text(d: Any, scale: float = 1.0) -> tuple[str, str]:
+    if isinstance(d, dict) and "median" in d:
+        lo = d.get("q05", d.get("p5"))
+        hi = d.get("q95", d.get("p95"))
+        return (_fmt(d["median"] * scale),
+                f"90% credible interval [{_fmt(lo * scale)}, {_fmt(hi * scale)}]"
+                if lo is not None and hi is not None else "")
+    return _fmt(d), ""
+
+
+def _posterior_numbers(post: dict[str, Any], ref: str) -> list[tuple[str, str, str]]:
+    """Key numbers from ``sample.json`` ``posterior`` (medians and 90% intervals)."""
+    out = []
+    for c, d in (post.get("mass_fractions") or {}).items():
+        out.append((f"mass fraction of {c}", *_interval_text(d)))
+    for c, d in (post.get("weights") or {}).items():
+        out.append((f"weight of {c} ({ref} basis)", *_interval_text(d)))
+    vol = post.get("volatility") or {}
+    for k, d in vol.items():
+        if k != "form":
+            out.append((f"volatility {k} ({vol.get('form', '')})", *_interval_text(d)))
+    labels = {"late_accretion_fraction": "late accretion, fraction of mantle",
+              "late_accretion_planet_fraction": "late accretion, fraction of planet",
+              "core_mass_fraction": "core mass fraction",
+              "tau_dex": "model scatter tau [dex]"}
+    for k, label in labels.items():
+        if k in post:
+            out.append((label, *_interval_text(post[k])))
+    return out
+
+
 def _gate_lines(diag: dict[str, Any]) -> list[tuple[str, str, str]]:
     th = diag.get("thresholds") or {}
     out = []
@@ -520,7 +573,7 @@ def _summary_numbers(summary: pd.DataFrame) -> list[tuple[str, str, str]]:
     name_col = next((c for c in ("parameter", "name", "variable", "Unnamed: 0")
                      if c in summary.columns), summary.columns[0])
     for _, r in summary.iterrows():
-        centre = next((r[c] for c in ("median", "mean", "value") if c in r), None)
+        centre = next((r[c] for c in ("median", "q50", "mean", "value") if c in r), None)
         lo = next((r[c] for c in ("q05", "p5", "p05", "hdi_5%", "lo", "hdi_3%", "p2.5")
                    if c in r), None)
         hi = next((r[c] for c in ("q95", "p95", "hdi_95%", "hi", "hdi_97%", "p97.5")
@@ -809,9 +862,45 @@ def _batch_report(folder: Path) -> Report:
     return rep
 
 
+def _compare_report(folder: Path) -> Report:
+    from . import plots
+
+    table = _read_csv(folder / "comparison.csv")
+    rep = Report(title=f"PSIS-LOO comparison ({folder.name})", kind="compare",
+                 folder=str(folder))
+    if "elpd_loo" not in table.columns:
+        raise InputError("comparison table without an elpd_loo column",
+                         file=str(folder / "comparison.csv"), field="elpd_loo")
+    best = table.sort_values("elpd_loo", ascending=False).iloc[0]
+    rep.key_numbers.append(("runs compared", str(len(table)), ""))
+    rep.key_numbers.append(("best by PSIS-LOO", str(best.get("components", best.get("run"))),
+                            f"elpd_loo {_fmt(best['elpd_loo'])}"))
+    for _, r in table.iterrows():
+        if "log10_bayes_factor_vs_best" in table.columns and pd.notna(
+                r.get("log10_bayes_factor_vs_best")):
+            rep.key_numbers.append((f"log10 Bayes factor vs best: {r.get('components')}",
+                                    _fmt(r["log10_bayes_factor_vs_best"]), "SMC evidence"))
+        if str(r.get("warning", "")).lower() in ("true", "1"):
+            rep.diagnostics.append((f"PSIS warning: {r.get('components')}", "Pareto k > 0.7",
+                                    "LOO estimate unreliable for this run"))
+        if "gate" in table.columns and str(r.get("gate")) != "passed":
+            rep.diagnostics.append((f"gate: {r.get('components')}", str(r.get("gate")),
+                                    "this run failed its convergence gate"))
+    shown = table.assign(status="optimal")
+    rep.figures.append(("Hypothesis ranking (PSIS-LOO)", "Difference in expected log "
+                        "predictive density from the best run (error bars: standard error "
+                        "of the difference).",
+                        lambda: plots.ranking_plot(shown, criterion="elpd_loo")))
+    rep.tables.append(("Comparison", _table_html(table)))
+    rep.limits.append("PSIS-LOO compares runs fitted to the same target and elements; "
+                      "it says which predicts held-out elements best, not whether any is "
+                      "adequate.")
+    return rep
+
+
 _BUILDERS: dict[str, Callable[[Path], Report]] = {
     "fit": _fit_report, "rank": _rank_report, "sample": _sample_report,
-    "star": _star_report, "batch": _batch_report,
+    "star": _star_report, "batch": _batch_report, "compare": _compare_report,
 }
 
 

@@ -300,3 +300,20 @@ def test_sample_report_from_a_posterior(tmp_path):
         assert text in html, text
     assert len(re.findall(r"data:image/png;base64,", html)) >= 4
     _no_external(html)
+
+
+def test_compare_report(tmp_path):
+    folder = tmp_path / "cmp"
+    folder.mkdir()
+    pd.DataFrame({"rank": [0, 1], "run": ["a", "b"], "components": ["CI+H", "H"],
+                  "elpd_loo": [-40.0, -55.0], "p_loo": [5.0, 4.0], "elpd_diff": [0.0, 15.0],
+                  "dse": [0.0, 4.0], "weight": [0.9, 0.1], "warning": [False, True],
+                  "gate": ["passed", "failed diagnostics gate"]}).to_csv(
+        folder / "comparison.csv", index=False)
+    assert detect_kind(folder) == "compare"
+    assert main(["report", str(folder)]) == 0
+    html = (folder / "report.html").read_text(encoding="utf-8")
+    for text in ("Hypothesis ranking (PSIS-LOO)", "best by PSIS-LOO", "CI+H",
+                 "PSIS warning: H", "gate: H"):
+        assert text in html, text
+    _no_external(html)
