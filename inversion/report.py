@@ -489,7 +489,10 @@ def _sample_report(folder: Path) -> Report:
                                 lambda: plots.pair_plot(draws, columns=main[:6])))
     pdraws = _planet_draws(folder)
     if pdraws is not None:
-        _planet_from_draws(rep, pdraws, meta)
+        # the same 90% intervals as the posterior summary
+        _planet_from_draws(rep, pdraws, meta, q=(5.0, 95.0),
+                           skip=("core_mass_fraction",) if "core_mass_fraction" in post
+                           else ())
     if (folder / "outliers.csv").exists():
         out = _read_csv(folder / "outliers.csv")
         if len(out):
@@ -711,9 +714,17 @@ def _draw_column(name: str) -> tuple[str, str, str] | None:
     return None
 
 
-def _planet_from_draws(rep: Report, draws: pd.DataFrame, meta: dict[str, Any]) -> None:
-    """Whole-planet figure, numbers and heat history from a wide table of planet draws."""
+def _planet_from_draws(rep: Report, draws: pd.DataFrame, meta: dict[str, Any], *,
+                       q: tuple[float, float] = (2.5, 97.5), skip: tuple[str, ...] = ()
+                       ) -> None:
+    """Whole-planet figure, numbers and heat history from a wide table of planet draws.
+
+    ``q`` are the percentiles of the interval shown; key numbers named in ``skip`` are
+    left out (already reported from another file).
+    """
     from . import plots
+
+    width = f"{q[1] - q[0]:g}%"
 
     rows = []
     for c in draws.columns:
@@ -723,17 +734,20 @@ def _planet_from_draws(rep: Report, draws: pd.DataFrame, meta: dict[str, Any]) -
         v = pd.to_numeric(draws[c], errors="coerce").dropna().to_numpy()
         if not v.size:
             continue
-        lo, med, hi = np.percentile(v, [2.5, 50, 97.5])
+        lo, med, hi = np.percentile(v, [q[0], 50, q[1]])
         rows.append((*where[:2], med, where[2], lo, hi))
     if not rows:
         return
     planet = pd.DataFrame(rows, columns=["reservoir", "species", "value", "unit", "lo", "hi"])
-    rep.figures.append(("Whole planet", "Medians with 95% central intervals (2.5-97.5%) "
-                        "over the draws.", lambda: plots.planet_plot(planet)))
+    rep.figures.append(("Whole planet", f"Medians with {width} central intervals "
+                        f"({q[0]:g}-{q[1]:g}%) over the draws.",
+                        lambda: plots.planet_plot(planet)))
     for _, r in planet[planet["reservoir"].isin(["planet", "ratio"])].iterrows():
+        if r["species"] in skip:
+            continue
         rep.key_numbers.append((str(r["species"]), _fmt(r["value"]),
-                                f"95% interval [{_fmt(r['lo'])}, {_fmt(r['hi'])}]"))
-    rep.tables.append(("Planet (medians and 95% intervals over the draws)",
+                                f"{width} interval [{_fmt(r['lo'])}, {_fmt(r['hi'])}]"))
+    rep.tables.append((f"Planet (medians and {width} intervals over the draws)",
                        _table_html(planet)))
     heat_cols = [c for c in draws.columns if str(c).startswith("heat_W_per_kg_")
                  and str(c).endswith("Gyr")]
@@ -741,14 +755,15 @@ def _planet_from_draws(rep: Report, draws: pd.DataFrame, meta: dict[str, Any]) -
         t = np.array([float(str(c)[len("heat_W_per_kg_"):-3]) for c in heat_cols])
         order = np.argsort(t)
         vals = draws[[heat_cols[i] for i in order]].to_numpy(float) * 1e12
-        lo, med, hi = np.nanpercentile(vals, [2.5, 50, 97.5], axis=0)
+        lo, med, hi = np.nanpercentile(vals, [q[0], 50, q[1]], axis=0)
         heat = pd.DataFrame({"time_Gyr_ago": t[order], "total": med, "total_lo": lo,
                              "total_hi": hi})
-        rep.figures.append(("Radiogenic heat production", "Per kg of mantle, median and 95% "
-                            "interval over the draws (Turcotte & Schubert 2014, Table 4.2).",
+        rep.figures.append(("Radiogenic heat production", f"Per kg of mantle, median and "
+                            f"{width} interval over the draws (Turcotte & Schubert 2014, "
+                            "Table 4.2).",
                             lambda: plots.heat_plot(heat, unit="pW/kg of mantle")))
         rep.key_numbers.append(("mantle heat production today [pW/kg]", _fmt(med[0]),
-                                f"95% interval [{_fmt(lo[0])}, {_fmt(hi[0])}]"))
+                                f"{width} interval [{_fmt(lo[0])}, {_fmt(hi[0])}]"))
         _add_source(rep, "turcotteschubert2014")
 
 
