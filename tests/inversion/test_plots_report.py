@@ -280,9 +280,31 @@ def _fake_sample_folder(folder: Path) -> Path:
     idata.to_netcdf(str(folder / "posterior.nc"))
     import json
 
+    def interval(v):
+        q = np.percentile(v, [5, 50, 95])
+        return {"median": q[1], "q05": q[0], "q95": q[2]}
+
+    cmf = idata.posterior["cmf"].values.ravel()
     (folder / "sample.json").write_text(json.dumps({
         "title": "synthetic posterior", "components": ["CI", "EH"],
-        "volatility": {"form": "kinked"}}))
+        "status": "failed diagnostics gate",
+        "gate_messages": ["bulk ESS 120 < 400 (slope): run more draws"],
+        "posterior": {"mass_fractions": {"CI": interval(x_ci), "EH": interval(1 - x_ci)},
+                      "volatility": {"form": "kinked", "T0": interval(T0),
+                                     "slope": interval(slope)},
+                      "core_mass_fraction": interval(cmf)}}))
+    pd.DataFrame({"parameter": ["T0", "slope"], "mean": [1350.0, 0.002], "sd": [20, 2e-4],
+                  "q05": [1317.0, 0.0017], "q50": [1350.0, 0.002], "q95": [1383.0, 0.0023],
+                  "r_hat": [1.02, 1.0], "ess_bulk": [150.0, 120.0]}).to_csv(
+        folder / "summary.csv", index=False)
+    pd.DataFrame({"chain": 0, "draw": np.arange(300), "core_mass_fraction": cmf,
+                  "mantle_MgO_wt": rng.normal(38, 0.5, 300),
+                  "mantle_SiO2_wt": rng.normal(45, 0.5, 300),
+                  "core_Fe_wt": rng.normal(85, 1, 300),
+                  "Mg/Si_bulk": rng.normal(1.1, 0.02, 300)}).to_parquet(
+        folder / "planet_draws.parquet", index=False)
+    pd.DataFrame({"element": ["Ni"], "z": [4.2], "direction": ["above model"]}).to_csv(
+        folder / "outliers.csv", index=False)
     (folder / "diagnostics.json").write_text(json.dumps({
         "rhat_max": 1.02, "ess_bulk_min": 120.0, "divergences": 0, "passed": False,
         "worst_rhat_parameter": "T0", "worst_ess_parameter": "slope",
@@ -296,7 +318,9 @@ def test_sample_report_from_a_posterior(tmp_path):
     assert main(["report", str(folder)]) == 0
     html = (folder / "report.html").read_text(encoding="utf-8")
     for text in ("Volatility diagram", "Building blocks", "Pairwise posterior",
-                 "FAILED", "largest R-hat", "90% credible interval"):
+                 "Whole planet", "FAILED", "largest R-hat", "90% credible interval",
+                 "mass fraction of CI", "run more draws", "Flagged elements",
+                 "Posterior summary"):
         assert text in html, text
     assert len(re.findall(r"data:image/png;base64,", html)) >= 4
     _no_external(html)
