@@ -116,6 +116,8 @@ def _read_csv(path: Path) -> pd.DataFrame:
 
 
 def _fmt(v: Any, digits: int = 4) -> str:
+    if v is None:
+        return "n/a"
     try:
         f = float(v)
     except (TypeError, ValueError):
@@ -206,23 +208,30 @@ def _fit_report(folder: Path) -> Report:
         for r in d.get("reasons", []):
             rep.diagnostics.append(("infeasible", r, "the hypothesis cannot meet its "
                                     "constraints; this is an answer, not a poor fit"))
-    for k, v in (d.get("weights") or {}).items():
+    feasible = status == "optimal"
+    for k, v in ((d.get("weights") or {}) if feasible else {}).items():
         mf = (d.get("mass_fractions") or {}).get(k)
         rep.key_numbers.append((f"weight of {k} ({ref} basis)", _fmt(v),
                                 f"mass fraction {_fmt(mf)}"))
     vol = dict(d.get("volatility") or {})
     for k, v in vol.items():
-        if k != "form":
+        if k != "form" and feasible:
             rep.key_numbers.append((f"volatility {k} ({vol.get('form')})", _fmt(v), ""))
-    rep.key_numbers.append(("late accretion, fraction of mantle",
-                            _fmt(d.get("late_accretion_fraction")),
-                            f"component {d.get('late_accretion_component')}"))
+    if feasible:
+        rep.key_numbers.append(("late accretion, fraction of mantle",
+                                _fmt(d.get("late_accretion_fraction")),
+                                f"component {d.get('late_accretion_component')}"))
     la = (d.get("findings") or {}).get("late_accretion") or {}
     if la.get("fraction_of_planet") is not None:
         rep.key_numbers.append(("late accretion, fraction of planet",
                                 _fmt(la["fraction_of_planet"]),
                                 f"{_fmt(la.get('mass_kg'))} kg"))
-    rep.key_numbers.append(("core mass fraction", _fmt(d.get("core_mass_fraction")), ""))
+    if feasible:
+        rep.key_numbers.append(("core mass fraction", _fmt(d.get("core_mass_fraction")),
+                                ""))
+    else:
+        rep.key_numbers.append(("estimates", "none", "an infeasible hypothesis has no "
+                                "estimates; see the diagnostics for the binding constraints"))
     for k, v in (d.get("isotopes_predicted") or {}).items():
         rep.key_numbers.append((f"predicted {k}", _fmt(v), ""))
     rep.diagnostics += [
@@ -232,9 +241,10 @@ def _fit_report(folder: Path) -> Report:
          "BIC = chi2 + p ln n"),
     ]
     n_fit = int(d.get("n_elements") or 0)
-    if n_fit:
-        rep.diagnostics.append(("reduced chi2", _fmt(float(d.get("chi2", math.nan))
-                                                      / max(n_fit - int(d.get("n_params", 0)),
+    chi2 = d.get("chi2")
+    if n_fit and isinstance(chi2, int | float):
+        rep.diagnostics.append(("reduced chi2", _fmt(float(chi2)
+                                                      / max(n_fit - int(d.get("n_params") or 0),
                                                             1)),
                                 "above 1: scatter beyond the stated uncertainties "
                                 "(the idealised model is not exact)"))

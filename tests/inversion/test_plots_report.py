@@ -341,3 +341,18 @@ def test_compare_report(tmp_path):
                  "PSIS warning: H", "gate: H"):
         assert text in html, text
     _no_external(html)
+
+
+def test_report_of_an_infeasible_fit(result_folders, tmp_path):
+    """CI alone cannot meet an Earth-like e54Cr of -0.4 (CI: +1.56): the fit is
+    infeasible (exit 3) and its report says so instead of showing estimates."""
+    base = result_folders["base"]
+    case = write_case(tmp_path, target=str(base / "target.csv"), candidates=["CI"],
+                      exclude=EARTH_EXCLUDE, title="infeasible",
+                      extra="[isotopes]\ne54Cr = [-0.4, 0.05]\n")
+    out = tmp_path / "infeasible"
+    assert main(["fit", str(case), "--out", str(out)]) == 3
+    assert main(["report", str(out)]) == 0
+    html = (out / "report.html").read_text(encoding="utf-8")
+    assert "infeasible" in html and "e54Cr" in html and "has no estimates" in html
+    assert "None" not in html
