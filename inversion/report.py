@@ -1051,8 +1051,18 @@ def _provenance_html(prov: dict[str, Any]) -> str:
         "reference_element", "condensation_table", "packages", "reference_tables",
         "components", "sources", "seed", "sampler"}}
     for k, v in other.items():
-        text = json.dumps(v) if isinstance(v, dict | list) else str(v)
-        rows.append((k, text[:600] + ("..." if len(text) > 600 else ""), ""))
+        note = ""
+        if isinstance(v, dict) and v and all(isinstance(x, int | float) for x in v.values()):
+            text = ", ".join(f"{a} {_fmt(b, 3)}" for a, b in v.items() if b)
+            if any(not b for b in v.values()):
+                note = "not listed: 0" + (" (Fe: set by the iron split)"
+                                          if k == "partition_coefficients" else "")
+        elif isinstance(v, list) and all(isinstance(x, str | int | float) for x in v):
+            text = ", ".join(map(str, v))
+        else:
+            text = json.dumps(v) if isinstance(v, dict | list) else str(v)
+        rows.append((k.replace("_", " "), text[:1500] + ("..." if len(text) > 1500 else ""),
+                     note))
     out = _rows(rows, ("item", "value", "note"))
     src = _sources_html(prov)
     if src:
