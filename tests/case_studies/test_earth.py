@@ -104,18 +104,25 @@ def test_isotopes_exclude_all_single_groups_but_enstatite(mixtures):
     assert all(f.status == "infeasible" for k, f in singles.items() if k != "EH")
 
 
-def test_enstatite_dominated_mixture_is_among_the_best(mixtures):
+#: Kass & Raftery (1995, J. Am. Stat. Assoc. 90, 773): a BIC difference above 6 is
+#: "strong" evidence against the worse hypothesis (from memory).
+STRONG_DELTA_BIC = 6.0
+
+
+def test_an_enstatite_rich_earth_is_not_disfavoured(mixtures):
+    """An enstatite-dominated Earth (Dauphas 2017, Nature 541, 521: the Earth's accreted
+    material was isotopically enstatite-like; from memory) is not strongly disfavoured.
+    Whether it ranks first, or CI + L does, changes with a single value of the tables
+    (CV's P; README.md), so only this weaker statement is tested."""
     ok = {s: f for s, f in mixtures.items() if f.status == "optimal"}
     best_bic = min(f.bic for f in ok.values())
-    near = {s: f for s, f in ok.items() if f.bic - best_bic <= 2.0}
-    eh_rich = [f for s, f in near.items() if "EH" in s and f.mass_fractions["EH"] >= 0.9]
-    # Dauphas (2017, Nature 541, 521): the Earth's accreted material was isotopically
-    # enstatite-like (from memory)
+    eh_rich = [f for s, f in ok.items() if "EH" in s and f.mass_fractions["EH"] >= 0.9
+               and f.bic - best_bic < STRONG_DELTA_BIC]
     assert eh_rich
-    # enstatite-rich Earths carry more metal than the Earth's core holds: README.md
-    # reports the overshoot; here within 0.05 of 0.325 (our tolerance)
+    # enstatite-rich Earths carry more metal than the Earth's core holds: their CMF
+    # exceeds 0.325 by more than the 0.03 granted to the CI fit above (README.md)
     for f in eh_rich:
-        assert EARTH_CMF < f.core_mass_fraction < EARTH_CMF + 0.05
+        assert f.core_mass_fraction - EARTH_CMF > 0.03
 
 
 @pytest.mark.slow
