@@ -484,29 +484,39 @@ def ranking_plot(table: pd.DataFrame, *, criterion: str | None = None, top: int 
         y = np.arange(len(t))[::-1]
         d = t["_delta"].to_numpy(dtype=float)
         finite_max = np.nanmax(d[t["_ok"].to_numpy()]) if t["_ok"].any() else 1.0
+        symlog = finite_max > 60
+
+        def text_x(v: float) -> float:
+            return v * 1.06 + 0.15 if symlog else v + finite_max * 0.01
         for yi, di, okk in zip(y, d, t["_ok"], strict=True):
             if okk:
                 colour = (OKABE_ITO["green"] if di <= 2 else OKABE_ITO["orange"] if di <= 10
                           else OKABE_ITO["vermillion"])
-                ax.barh(yi, max(di, finite_max * 0.004), color=colour, height=0.7)
-                ax.text(max(di, 0) + finite_max * 0.01, yi, f"{di:.1f}", va="center",
+                ax.barh(yi, max(di, 0.03 if symlog else finite_max * 0.004), color=colour,
+                        height=0.7)
+                ax.text(text_x(max(di, 0)), yi, f"{di:.1f}", va="center",
                         fontsize=7)
             else:
                 ax.barh(yi, finite_max or 1.0, color="white", edgecolor="#999999",
                         hatch="xx", height=0.7)
-                ax.text(finite_max * 0.02, yi, "infeasible", va="center", fontsize=7.5,
-                        color="#444444")
+                ax.text(text_x(0.0), yi, "infeasible", va="center", fontsize=7.5,
+                        color="#444444", bbox={"facecolor": "white", "edgecolor": "none",
+                                               "pad": 1.0})
         if higher_better:
             for col in ("dse", "se"):
                 if col in t.columns:
                     e = pd.to_numeric(t[col], errors="coerce").to_numpy()
                     ax.errorbar(d, y, xerr=e, fmt="none", ecolor="black", capsize=2, lw=0.8)
                     break
+        if symlog:
+            # keep the small differences that matter visible next to very large ones
+            ax.set_xscale("symlog", linthresh=10.0)
+            ax.set_xlim(0, finite_max * 1.8)
         ax.set_yticks(y, labels, fontsize=8)
         name = {"bic": "BIC", "aic": "AIC", "chi2": "chi2",
                 "elpd_loo": "elpd (PSIS-LOO)"}.get(criterion, criterion)
-        ax.set_xlabel(f"Δ{name} from the best hypothesis (0 = best; "
-                      "green ≤ 2, orange ≤ 10, red > 10)")
+        ax.set_xlabel(f"Δ{name} from the best hypothesis (0 = best; green ≤ 2, orange ≤ 10, "
+                      f"red > 10){'; linear to 10, logarithmic above' if symlog else ''}")
         ax.grid(axis="y", visible=False)
         if title:
             ax.set_title(title, loc="left")
