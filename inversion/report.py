@@ -1,7 +1,8 @@
 """One self-contained HTML report of a result folder.
 
 :func:`build_report` reads a folder written by ``planetmix fit``, ``rank``, ``sample``,
-``star`` or a batch run, recognises its kind by the files it holds (:func:`detect_kind`),
+``compare``, ``star`` or ``batch``, recognises its kind by the files it holds
+(:func:`detect_kind`),
 draws the figures (:mod:`inversion.plots`) and writes ``report.html`` into the folder: the
 figures embedded as base64 PNG, the key numbers with their uncertainties, the diagnostics,
 the provenance (reference tables, sources, versions, settings) and the limits of the model.
@@ -1077,7 +1078,8 @@ def build_report(folder: str | Path, *, out: str | Path | None = None,
     Parameters
     ----------
     folder : str or Path
-        A result folder of ``planetmix fit``, ``rank``, ``sample``, ``star`` or a batch.
+        A result folder of ``planetmix fit``, ``rank``, ``sample``, ``compare``, ``star``
+        or ``batch``.
     out : str or Path, optional
         The HTML file (default ``folder/report.html``). Written atomically.
     figures : bool
