@@ -178,10 +178,12 @@ def earth_calibrated_pattern(form: str = "kinked",
 def read_pattern(path: str | Path) -> Pattern:
     """Read a devolatilisation pattern from a ``fit.json`` or ``sample.json`` result.
 
-    The file needs ``volatility`` with ``form`` and each parameter of the form, either a
-    number or an object holding ``median`` (or ``mean``). The condensation table is read
-    from ``provenance.condensation_table`` or ``condensation_table`` (default
-    lodders2003).
+    The file needs ``volatility`` (fit.json) or ``posterior.volatility`` (sample.json)
+    with ``form`` and each parameter of the form, either a number or an object holding
+    ``median`` (or ``mean``): the posterior median is used, its spread is not propagated.
+    The condensation table is read from ``provenance.condensation_table``,
+    ``condensation_table`` or the condensation table among
+    ``provenance.reference_tables`` (default lodders2003).
     """
     file = str(path)
     p = Path(path)
@@ -191,7 +193,12 @@ def read_pattern(path: str | Path) -> Pattern:
         data = json.loads(p.read_text(encoding="utf-8"))
     except (json.JSONDecodeError, UnicodeDecodeError) as err:
         raise InputError(f"not valid JSON: {err}", file=file) from err
-    vol = data.get("volatility") if isinstance(data, dict) else None
+    vol = None
+    if isinstance(data, dict):
+        vol = data.get("volatility")
+        post = data.get("posterior")
+        if vol is None and isinstance(post, dict):  # sample.json: posterior summaries
+            vol = post.get("volatility")
     if not isinstance(vol, dict) or "form" not in vol:
         raise InputError("no 'volatility' object with a 'form'; give a fit.json or "
                          "sample.json result", file=file, field="volatility")
@@ -207,7 +214,10 @@ def read_pattern(path: str | Path) -> Pattern:
                              "number", file=file, field=f"volatility.{name}", value=v)
         params.append(float(v))
     prov = data.get("provenance", {}) if isinstance(data.get("provenance"), dict) else {}
-    table = prov.get("condensation_table", data.get("condensation_table", "lodders2003"))
+    listed = [t for t in prov.get("reference_tables", []) or []
+              if isinstance(t, str) and t in CONDENSATION_TABLES]
+    table = prov.get("condensation_table", data.get(
+        "condensation_table", listed[0] if listed else "lodders2003"))
     table = check_option("condensation table", table, CONDENSATION_TABLES, file=file,
                          field="condensation_table")
     return Pattern(form, tuple(params), table, f"from {p.name}",

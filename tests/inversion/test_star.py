@@ -187,10 +187,14 @@ def test_read_pattern(tmp_path, earth_pattern):
     (tmp_path / "fit.json").write_text(json.dumps(fit))
     p = read_pattern(tmp_path / "fit.json")
     assert p.params == (1300.0, 0.003) and p.form == "kinked"
-    sample = {"volatility": {"form": "kinked", "T0": {"median": 1310.0},
-                             "slope": {"median": 0.002}}}
+    # sample.json as bayes_cli writes it: posterior medians and 90 % intervals
+    sample = {"posterior": {"volatility": {
+        "form": "kinked", "T0": {"median": 1310.0, "q05": 1250.0, "q95": 1380.0},
+        "slope": {"median": 0.002, "q05": 0.001, "q95": 0.003}}},
+        "provenance": {"reference_tables": ["wood2019", "mcdonough2003"]}}
     (tmp_path / "sample.json").write_text(json.dumps(sample))
-    assert read_pattern(tmp_path / "sample.json").params == (1310.0, 0.002)
+    ps = read_pattern(tmp_path / "sample.json")
+    assert ps.params == (1310.0, 0.002) and ps.condensation_table == "wood2019"
     (tmp_path / "bad.json").write_text(json.dumps({"volatility": {"form": "kinked",
                                                                   "T0": 1300.0}}))
     with pytest.raises(InputError, match="slope"):
