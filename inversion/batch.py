@@ -20,6 +20,7 @@ from __future__ import annotations
 import hashlib
 import os
 import time
+import uuid
 from collections.abc import Iterator
 from dataclasses import dataclass
 from pathlib import Path
@@ -441,6 +442,9 @@ def run_batch(catalogue: str | Path, out: str | Path, settings: StarSettings, *,
         # a bounded window of partitions in flight: memory stays flat for any catalogue
         s_future = client.scatter(settings, broadcast=True)
         window = max(4, 2 * sum(client.nthreads().values()))
+        # task keys unique to this run: a later run on the same client never picks up
+        # an earlier run's results
+        run_token = uuid.uuid4().hex[:12]
         queue = iter(todo)
         futs: dict[Any, tuple[int, int]] = {}
         ac = as_completed()
@@ -449,7 +453,7 @@ def run_batch(catalogue: str | Path, out: str | Path, settings: StarSettings, *,
             nxt = next(queue, None)
             if nxt is not None:
                 i, r = nxt
-                key = f"planetmix-partition-{digest[:12]}-{i}"
+                key = f"planetmix-partition-{i:05d}-{run_token}"
                 if workers_write:
                     f = client.submit(write_partition, r, s_future,
                                       str(out.resolve() / partition_name(i)), pure=False,
