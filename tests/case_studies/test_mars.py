@@ -111,8 +111,8 @@ def test_best_fit_mixture(hypotheses):
 
 def test_core_against_seismology(hypotheses):
     # the core of the published-like pairs: within the seismic range widened by 0.025,
-    # the change a +-15 % change of the mantle FeO (17.9 wt%, Wänke & Dreibus 1988) makes
-    # (README.md)
+    # the smaller end of the 0.02-0.04 change that +-15 % on the mantle FeO (17.9 wt%,
+    # Wänke & Dreibus 1988) makes (README.md)
     lo, hi = seismic_cmf_range()
     for s in (("CI", "H"), ("H", "EH")):
         assert lo - 0.025 < hypotheses[s].core_mass_fraction < hi + 0.025, s
