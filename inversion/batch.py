@@ -223,12 +223,14 @@ def run_partition(rows: list[CatalogueRow], settings: StarSettings) -> pd.DataFr
                 meta[r.row] = {"solar_ratio": " ".join(miss),
                                "not_used": " ".join(r.star.unused)}
             draws, ok = planets_from_xh(xh, model)
-            df = draws.to_dataframe(bulk=False, history=False)
+            cols = draws.columns(bulk=False, history=False)
             if draws.heat_history_w_per_kg is not None:
-                df[f"heat_W_per_kg_{draws.history_gyr[-1]:g}Gyr"] = \
+                cols[f"heat_W_per_kg_{draws.history_gyr[-1]:g}Gyr"] = \
                     draws.heat_history_w_per_kg[:, -1]
-            names = list(df.columns) if names is None else names
-            vals = df[names].to_numpy(dtype=float)
+            names = list(cols) if names is None else names
+            vals = np.empty((xh.shape[0], len(names)))
+            for j, name in enumerate(names):
+                vals[:, j] = cols[name]
             vals[~ok] = np.nan
             qs.append(quantiles_by_group(vals, len(blk)))
             oks.append(ok.reshape(len(blk), D))

@@ -122,6 +122,10 @@ class PlanetDraws:
         ``docs/handoff.md``): ``core_mass_fraction``, ``mantle_<oxide>_wt``,
         ``mantle_<element>_ppm``, ``core_<element>_wt``, ``bulk_<element>_wt``, the molar
         ratios by name, ``heat_W_per_kg``, ``heat_total_W``, ``heat_W_per_kg_<t>Gyr``."""
+        return pd.DataFrame(self.columns(bulk=bulk, history=history))
+
+    def columns(self, *, bulk: bool = True, history: bool = True) -> dict[str, np.ndarray]:
+        """The columns of :meth:`to_dataframe`, by name, as arrays of length B."""
         cols: dict[str, np.ndarray] = {"core_mass_fraction": np.asarray(
             self.core_mass_fraction, float)}
         cols.update({f"mantle_{k}_wt": v for k, v in self.mantle_oxides_wt.items()})
@@ -137,7 +141,7 @@ class PlanetDraws:
         if history and self.heat_history_w_per_kg is not None:
             for j, t in enumerate(self.history_gyr):
                 cols[f"heat_W_per_kg_{t:g}Gyr"] = self.heat_history_w_per_kg[:, j]
-        return pd.DataFrame(cols)
+        return cols
 
 
 def planet_draws(p: Any, planet: dict[str, Any], *,
