@@ -35,6 +35,9 @@ __all__ = [
 DATA_DIR = Path(__file__).resolve().parent / "data"
 
 COMPONENT_KINDS = ("chondrite", "silicate_reference", "user")
+#: Header keys by which a user's component CSV carries its own isotope anomalies
+#: (``# e54Cr: 0.12 0.05`` = value and 1-sigma).
+ISOTOPE_HEADER_KEYS = ("D17O", "e50Ti", "e54Cr", "e48Ca")
 
 
 @dataclass(frozen=True)
@@ -70,6 +73,7 @@ class Component:
     recalled: pd.Series
     path: str = ""
     source_keys: tuple[str, ...] = field(default=())
+    isotopes: dict[str, tuple[float, float]] = field(default_factory=dict)
 
     def ratio_to(self, reference: str) -> pd.Series:
         """Mass ratios C_i / C_ref of every element.
@@ -144,6 +148,16 @@ def _component_from_file(path: Path, *, require_sources: bool, name: str | None 
                          file=file, field="kind", value=kind)
     keys = tuple(sorted({k.strip() for s in parsed.sources for k in str(s).split(";")
                          if k.strip()}))
+    iso: dict[str, tuple[float, float]] = {}
+    for q in ISOTOPE_HEADER_KEYS:
+        if q in meta:
+            parts = meta[q].replace(",", " ").split()
+            try:
+                value, sigma = (float(x) for x in parts)
+            except ValueError as err:
+                raise InputError(f"give '# {q}: value 1-sigma' (two numbers)", file=file,
+                                 field=q, value=meta[q]) from err
+            iso[q] = (value, sigma)
     return Component(
         name=name or meta.get("name") or path.stem,
         kind=kind,
@@ -154,6 +168,7 @@ def _component_from_file(path: Path, *, require_sources: bool, name: str | None 
         recalled=parsed.recalled,
         path=file,
         source_keys=keys,
+        isotopes=iso,
     )
 
 

@@ -126,7 +126,10 @@ def _write_fit(out: Path, case, p, result, findings: dict) -> None:
         "n_elements": result.n_elements,
         "n_params": result.n_params,
         "fit_elements": p.fit_elements,
+        "isotopes_observed": {k: {"value": v, "sigma": s} for k, (v, s) in
+                              case.isotopes.items()},
         "isotopes_predicted": result.isotopes,
+        "planet_mass_kg": case.target.planet_mass_kg,
         "findings": findings,
         "notes": list(p.notes),
         "provenance": provenance(

@@ -273,14 +273,19 @@ def compile_problem(case: Case, *, minimum_sigma_dex: float = 0.02) -> Problem:
         for c in list(case.candidates) + ([case.late_component] if case.late_component
                                           else []):
             rows = iso_table[(iso_table["body"] == c.name) & (iso_table["quantity"] == qname)]
-            if rows.empty:
+            if qname in c.isotopes:
+                eps_value = c.isotopes[qname][0]
+            elif not rows.empty:
+                eps_value = float(rows["value"].iloc[0])
+            else:
                 raise InputError(f"no {qname} value for building block {c.name} in the "
-                                 "library; remove the constraint or the candidate",
+                                 f"library; remove the constraint or the candidate, or give "
+                                 f"it in the component file as '# {qname}: value 1-sigma'",
                                  file=case.path, field=f"isotopes.{qname}", value=c.name)
             if carrier not in c.composition.index:
                 raise InputError(f"building block {c.name} has no {carrier}, the carrier of "
                                  f"{qname}", file=case.path, field=f"isotopes.{qname}")
-            eps.append(float(rows["value"].iloc[0]))
+            eps.append(eps_value)
             qc.append(float(c.composition[carrier] / c.composition[ref]))
         K = len(case.candidates)
         iso.append({"name": qname, "carrier": carrier, "value": val, "sigma": sig,

@@ -103,3 +103,11 @@ def test_generated_tables_fail_only_with_input_error(tmp_path, rows, header) -> 
     except InputError:
         return
     assert (c.composition >= 0).all()
+
+
+def test_user_component_carries_its_isotopes(tmp_path) -> None:
+    p = _write(tmp_path, "# name: Mine\n# e54Cr: 0.12 0.05\nelement,value,unit\nMg,9.5,wt%\n")
+    assert components.read_component(p).isotopes == {"e54Cr": (0.12, 0.05)}
+    bad = _write(tmp_path, "# e54Cr: high\nelement,value,unit\nMg,9.5,wt%\n")
+    with pytest.raises(InputError, match="e54Cr"):
+        components.read_component(bad)
