@@ -153,7 +153,11 @@ def _write_fit(out: Path, case, p, result, findings: dict) -> None:
         write_json(tmp / "fit.json", data)
         result.residuals.to_csv(tmp / "residuals.csv", index=False)
         if planet is not None:
+            from .handoff import fit_handoff
+
             planet.to_csv(tmp / "planet.csv", index=False)
+            fit_handoff(tmp, p, result, planet_mass_kg=case.target.planet_mass_kg,
+                        meta={"title": case.title})
 
 
 @register("fit", "fit a case with all its building blocks (convex inversion)")
@@ -187,7 +191,8 @@ def _fit(parser: argparse.ArgumentParser):
               f"on {result.n_elements} elements; AIC {result.aic:.1f}; BIC {result.bic:.1f}")
         for line in summary_lines(f):
             print("  " + line)
-        print(f"  written to {args.out}/fit.json, residuals.csv, planet.csv")
+        print(f"  written to {args.out}/fit.json, residuals.csv, planet.csv, and the hand-off "
+              "planet.json, planet_draws.csv")
         return EXIT_OK
 
     return run
