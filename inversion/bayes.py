@@ -239,6 +239,7 @@ class SamplerSettings:
     target_accept: float = 0.9
     cores: int | None = None
     jitter: float = 0.02
+    init: str = "adapt_diag"
     evidence: bool = False
     smc_draws: int = 1000
     smc_chains: int = 2
@@ -413,6 +414,39 @@ def _step_and_jacobian(p: Problem, a: np.ndarray, D: np.ndarray, s: np.ndarray
     return G, J
 
 
+def _feo_fixed_point(p: Problem, a: np.ndarray, D: np.ndarray, k: float, max_iter: int,
+                     rtol: float) -> tuple[np.ndarray, np.ndarray]:
+    """Scalar Newton iteration for the mantle-FeO split (the sampler's hot path)."""
+    fe = p.fe_index
+    u = a.copy()
+    u[fe] = 0.0
+    F = p.mantle_Fe
+    c = 1.0 / (1.0 - p.oxide_factor[fe] * F)
+    uf = u * p.oxide_factor
+    A = float(a.sum())
+    dg = 0.0
+    for _ in range(max_iter):
+        t = 1.0 / (1.0 + D * k)
+        M_s = c * float(uf @ t)
+        M_c = A - float(u @ t) - F * M_s
+        if not M_c > 0:
+            g, dg = 0.0, 0.0
+        else:
+            dt = -D * t * t
+            dM_s = c * float(uf @ dt)
+            dM_c = -float(u @ dt) - F * dM_s
+            g = M_c / M_s
+            dg = (dM_c * M_s - M_c * dM_s) / (M_s * M_s)
+        nxt = k + (g - k) / (1.0 - dg) if dg != 1.0 else g
+        if not (nxt >= 0 and math.isfinite(nxt)):
+            nxt = g
+        done = abs(nxt - k) <= rtol * max(abs(k), 1e-300)
+        k = nxt
+        if done:
+            break
+    return np.array([k]), np.array([[1.0 / (1.0 - dg)]])
+
+
 def core_fixed_point(p: Problem, a: np.ndarray, D: np.ndarray, *, max_iter: int = 500,
                      rtol: float = 1e-13, s0: np.ndarray | None = None
                      ) -> tuple[np.ndarray, np.ndarray]:
@@ -423,6 +457,8 @@ def core_fixed_point(p: Problem, a: np.ndarray, D: np.ndarray, *, max_iter: int 
     the PyMC model's implicit gradient. Stops when the state changes by less than
     ``rtol`` (relative); ``s0`` warm-starts it.
     """
+    if p.mantle_Fe is not None:
+        return _feo_fixed_point(p, a, D, 0.5 if s0 is None else float(s0[0]), max_iter, rtol)
     s = _state0(p) if s0 is None else np.asarray(s0, float).copy()
     eye = np.eye(s.size)
     G, J = _step_and_jacobian(p, a, D, s)
@@ -603,7 +639,10 @@ def build_model(p: Problem, priors: dict[str, dict[str, Any]] | None = None, *,
         if K > 1:
             pm.Deterministic("x", x / pt.sum(x), dims="components")
         pm.Deterministic("cmf", out["cmf"])
-        scale = pt.sqrt(p.sigma ** 2 + tau ** 2)
+        # the squared uncertainties enter as data, not a constant: pytensor 2.38's
+        # constant-inlining rewrite fails (harmlessly, but loudly) on the constant form
+        sigma2 = pm.Data("sigma2_data", p.sigma ** 2, dims="elements")
+        scale = pt.sqrt(sigma2 + tau ** 2)
         y_data = pm.Data("y_data", y, dims="elements")
         pm.StudentT(OBS_ELEMENTS, nu=STUDENT_NU, mu=mu, sigma=scale, observed=y_data,
                     dims="elements")
@@ -832,14 +871,13 @@ def sample(p: Problem, settings: SamplerSettings | None = None, *,
     with model:
         idata = pm.sample(draws=settings.draws, tune=settings.tune, chains=settings.chains,
                           cores=cores, random_seed=nuts_seed, initvals=inits,
-                          init="adapt_diag", target_accept=settings.target_accept,
-                          progressbar=progress, compute_convergence_checks=False,
-                          idata_kwargs={"log_likelihood": log_likelihood})
-        t_nuts = time.perf_counter() - t1
-        if posterior_predictive:
-            pm.sample_posterior_predictive(idata, var_names=[OBS_ELEMENTS],
-                                           random_seed=ppc_seed, progressbar=False,
-                                           extend_inferencedata=True)
+                          init=settings.init, target_accept=settings.target_accept,
+                          progressbar=progress, compute_convergence_checks=False)
+    t_nuts = time.perf_counter() - t1
+    if log_likelihood:
+        add_log_likelihood(p, idata)
+    if posterior_predictive:
+        add_posterior_predictive(p, idata, np.random.default_rng(ppc_seed))
     names = parameter_names(model)
     diag = diagnose(idata, names)
     lml = None
@@ -868,6 +906,47 @@ def sample(p: Problem, settings: SamplerSettings | None = None, *,
     return SampleResult(idata=idata, diagnostics=diag, settings=settings, seeds=seeds,
                         priors=priors, start=start, timing=timing,
                         log_marginal_likelihood=lml, smc=smc_info)
+
+
+def add_log_likelihood(p: Problem, idata: Any) -> None:
+    """Add the pointwise log-likelihood group (elements ``y_obs``; isotopes ``eps_obs``).
+
+    Computed in numpy from the posterior's deterministics ``mu`` and ``eps_pred`` with
+    the model's densities (Student-t, nu = 4; Normal), which avoids compiling another
+    pytensor function.
+    """
+    import xarray as xr
+    from scipy import stats
+
+    post = idata.posterior
+    y = idata.observed_data[OBS_ELEMENTS].values
+    scale = np.sqrt(p.sigma ** 2 + post["tau"].values[..., None] ** 2)
+    ll = stats.t.logpdf(y, STUDENT_NU, loc=post["mu"].values, scale=scale)
+    data = {OBS_ELEMENTS: (("chain", "draw", "elements"), ll)}
+    coords = {"chain": post["chain"].values, "draw": post["draw"].values,
+              "elements": post["elements"].values}
+    if p.isotopes:
+        vals = np.array([d["value"] for d in p.isotopes])
+        sig = np.array([d["sigma"] for d in p.isotopes])
+        data["eps_obs"] = (("chain", "draw", "isotopes"),
+                           stats.norm.logpdf(vals, loc=post["eps_pred"].values, scale=sig))
+        coords["isotopes"] = post["isotopes"].values
+    idata.add_groups({"log_likelihood": xr.Dataset(data, coords=coords)})
+
+
+def add_posterior_predictive(p: Problem, idata: Any, rng: np.random.Generator) -> None:
+    """Add replicated observations of the fitted elements (``y_obs``) per draw, drawn in
+    numpy from the likelihood at the posterior's ``mu`` and ``tau``."""
+    import xarray as xr
+
+    post = idata.posterior
+    mu = post["mu"].values
+    scale = np.sqrt(p.sigma ** 2 + post["tau"].values[..., None] ** 2)
+    rep = mu + scale * rng.standard_t(STUDENT_NU, size=mu.shape)
+    idata.add_groups({"posterior_predictive": xr.Dataset(
+        {OBS_ELEMENTS: (("chain", "draw", "elements"), rep)},
+        coords={"chain": post["chain"].values, "draw": post["draw"].values,
+                "elements": post["elements"].values})})
 
 
 def _with_y(p: Problem, y: np.ndarray) -> Problem:
@@ -1063,3 +1142,130 @@ def compare_runs(idatas: dict[str, Any], *, evidence: dict[str, float | None] | 
             (v - best) / math.log(10) if v is not None and best is not None else None
             for v in lml]
     return table
+
+
+# --------------------------------------------------------------------------- calibration
+def draw_prior(p: Problem, priors: dict[str, dict[str, Any]], rng: np.random.Generator
+               ) -> dict[str, Any]:
+    """One draw of every parameter from its prior (numpy; for simulation studies)."""
+    def one(spec: dict[str, Any]) -> float:
+        d = spec["dist"]
+        if d == "Uniform":
+            return float(rng.uniform(spec["lower"], spec["upper"]))
+        if d == "Normal":
+            return float(rng.normal(spec["mu"], spec["sigma"]))
+        if d == "HalfNormal":
+            return float(abs(rng.normal(0.0, spec["sigma"])))
+        if d == "LogNormal":
+            return float(rng.lognormal(spec["mu"], spec["sigma"]))
+        if d == "TruncatedNormal":
+            while True:
+                v = rng.normal(spec["mu"], spec["sigma"])
+                if spec["lower"] <= v <= spec["upper"]:
+                    return float(v)
+        raise AssertionError(d)
+
+    out: dict[str, Any] = {}
+    K = len(p.components)
+    if K > 1:
+        a = priors["w"]["a"]
+        out["w"] = rng.dirichlet(np.full(K, a) if np.isscalar(a) else np.asarray(a))
+    for n in get_form(p.volatility_form).params:
+        out[n] = one(priors[n])
+    if p.late_name is not None:
+        out["lam"] = one(priors["lam"])
+    part = _partitioned(p)
+    if part:
+        out["log10D"] = np.array([one(priors[f"log10D_{p.elements[j]}"]) for j in part])
+    out["tau"] = one(priors["tau"])
+    return out
+
+
+def simulate(p: Problem, truth: dict[str, Any], rng: np.random.Generator) -> np.ndarray:
+    """Observations of the fitted elements drawn from the model's likelihood at ``truth``
+    (Student-t, nu = 4, scale sqrt(sigma**2 + tau**2)), via the numpy forward model."""
+    K = len(p.components)
+    w = truth.get("w", np.ones(K))
+    vol = [truth[n] for n in get_form(p.volatility_form).params]
+    D = p.D.copy()
+    part = _partitioned(p)
+    if part:
+        D[part] = 10.0 ** np.asarray(truth["log10D"])
+    mu = forward(p, np.asarray(w)[None], np.asarray(vol)[None], truth.get("lam", 0.0),
+                 D=D)["log10N"][0, p.fit_index]
+    scale = np.sqrt(p.sigma ** 2 + truth["tau"] ** 2)
+    return mu + scale * rng.standard_t(STUDENT_NU, size=mu.size)
+
+
+def _flat_truth(truth: dict[str, Any], p: Problem) -> dict[str, float]:
+    out = {}
+    for k, v in truth.items():
+        if np.ndim(v) == 0:
+            out[k] = float(v)
+        elif k == "w":
+            out.update({f"w[{c}]": float(x) for c, x in zip(p.components, v, strict=True)})
+        elif k == "log10D":
+            out.update({f"log10D[{p.elements[j]}]": float(x)
+                        for j, x in zip(_partitioned(p), v, strict=True)})
+    return out
+
+
+def sbc(p: Problem, n_replicates: int, *, draws: int = 200, tune: int = 200, chains: int = 2,
+        seed: int = 0, thin_to: int = 99, priors: dict[str, dict[str, Any]] | None = None,
+        progress: bool = False) -> pd.DataFrame:
+    """Simulation-based calibration (Talts et al. 2018) of the sampler on problem ``p``.
+
+    Each replicate draws parameters from the prior, simulates observations from the
+    numpy forward model and the likelihood, samples the posterior as :func:`sample` does
+    (NUTS from the jittered convex optimum; the step is compiled once and reused with new
+    data), and records the rank of the truth among ``thin_to`` thinned posterior draws
+    and whether the central 90% interval covers it.
+
+    Returns
+    -------
+    DataFrame
+        One row per replicate and scalar parameter: ``replicate``, ``parameter``,
+        ``truth``, ``rank`` (0..thin_to), ``covered90``, plus ``divergences``.
+    """
+    import pymc as pm
+
+    from .fit import fit_problem
+
+    priors = priors or default_priors(p)
+    rng = np.random.default_rng(seed)
+    model = build_model(p, priors)
+    rows = []
+    with model:
+        step = pm.NUTS(target_accept=0.9)
+        for r in range(n_replicates):
+            truth = draw_prior(p, priors, rng)
+            y = simulate(p, truth, rng)
+            pm.set_data({"y_data": y})
+            fit = fit_problem(_with_y(p, y))
+            inits = start_points(p, priors, fit, chains, rng, 0.02)
+            idata = pm.sample(draws=draws, tune=tune, chains=chains, cores=1, step=step,
+                              initvals=inits, random_seed=int(rng.integers(2**31 - 1)),
+                              progressbar=progress, compute_convergence_checks=False)
+            post = posterior_arrays(p, idata)
+            div = int(idata.sample_stats["diverging"].values.sum())
+            S = post["tau"].size
+            idx = np.linspace(0, S - 1, thin_to).round().astype(int)
+            flat = {"tau": post["tau"]}
+            for j, n in enumerate(get_form(p.volatility_form).params):
+                flat[n] = post["vol"][:, j]
+            if p.late_name is not None:
+                flat["lam"] = post["lam"]
+            if len(p.components) > 1:
+                for k, c in enumerate(p.components):
+                    flat[f"w[{c}]"] = post["w"][:, k]
+            for j in _partitioned(p):
+                flat[f"log10D[{p.elements[j]}]"] = np.log10(post["D"][:, j])
+            # thin by position after a random shuffle of chains' interleaving
+            order = rng.permutation(S)
+            for name, t in _flat_truth(truth, p).items():
+                v = flat[name]
+                q = np.quantile(v, [0.05, 0.95])
+                rows.append({"replicate": r, "parameter": name, "truth": t,
+                             "rank": int(np.sum(v[order][idx] < t)),
+                             "covered90": bool(q[0] <= t <= q[1]), "divergences": div})
+    return pd.DataFrame(rows)

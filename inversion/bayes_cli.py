@@ -98,6 +98,8 @@ def _sample(parser: argparse.ArgumentParser):
                         help="chains (default: [sampler] chains, else 4)")
     parser.add_argument("--seed", type=int, default=None,
                         help="random seed (default: [sampler] seed, else 0)")
+    parser.add_argument("--cores", type=int, default=None,
+                        help="processes for the chains (default: min(chains, CPUs))")
     parser.add_argument("--evidence", action="store_true",
                         help="also run sequential Monte Carlo for the log marginal likelihood")
     parser.add_argument("--quiet", action="store_true", help="no progress display")
@@ -112,7 +114,7 @@ def _sample(parser: argparse.ArgumentParser):
         priors = check_priors(p, case.priors, file=case.path)
         settings = check_sampler_settings(case.sampler, file=case.path, draws=args.draws,
                                           tune=args.tune, chains=args.chains, seed=args.seed,
-                                          evidence=args.evidence or None)
+                                          cores=args.cores, evidence=args.evidence or None)
         result = sample(p, settings, priors=priors, progress=not args.quiet)
         data = write_sample(Path(args.out), case, p, result)
         post = data["posterior"]
