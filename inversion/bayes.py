@@ -888,11 +888,14 @@ def sample(p: Problem, settings: SamplerSettings | None = None, *,
             smc = pm.sample_smc(draws=settings.smc_draws, chains=settings.smc_chains,
                                 cores=1, random_seed=smc_seed, progressbar=progress,
                                 compute_convergence_checks=False)
-        per_chain = np.array([float(np.asarray(v)[-1]) if np.ndim(v) else float(v)
-                              for v in np.asarray(
-                                  smc.sample_stats["log_marginal_likelihood"].values,
-                                  dtype=object).ravel()])
-        lml = float(np.log(np.mean(np.exp(per_chain - per_chain.max()))) + per_chain.max())
+        # one row per SMC chain, one value per stage (NaN-padded): the final stage's
+        # value is the chain's estimate
+        raw = np.asarray(smc.sample_stats["log_marginal_likelihood"].values, dtype=float)
+        raw = raw.reshape(settings.smc_chains, -1)
+        per_chain = np.array([row[np.isfinite(row)][-1] if np.isfinite(row).any()
+                              else np.nan for row in raw])
+        top = np.nanmax(per_chain)
+        lml = float(np.log(np.nanmean(np.exp(per_chain - top))) + top)
         smc_info = {"log_marginal_likelihood_per_chain": per_chain.tolist(),
                     "draws": settings.smc_draws, "chains": settings.smc_chains,
                     "seconds": time.perf_counter() - t2}
