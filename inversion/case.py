@@ -39,7 +39,8 @@ _ALLOWED: dict[str, set[str]] = {
     "late_accretion": {"component", "max_fraction"},
     "elements": {"exclude"},
     "fit": {"isotope_window_sigma", "cmf_range", "refine"},
-    "sampler": {"draws", "tune", "chains", "seed", "target_accept"},
+    "sampler": {"draws", "tune", "chains", "seed", "target_accept", "cores", "init",
+                "smc_draws", "smc_chains"},
 }
 
 

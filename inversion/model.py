@@ -42,7 +42,7 @@ __all__ = ["Problem", "compile_problem", "forward", "default_partition", "CORE_I
 
 #: Maximum fixed-point iterations for the core-to-mantle mass ratio (it stops earlier once
 #: k changes by < 1e-12 relative; chondritic bulk compositions need about ten).
-CORE_ITERATIONS = 30
+CORE_ITERATIONS = 200
 #: Elements kept out of the mass balance: oxygen comes from stoichiometry; H, C, N and
 #: the noble gases are not part of a rocky mantle's oxide budget.
 MODEL_EXCLUDED = frozenset({"O", "H", "C", "N", "He", "Ne", "Ar", "Kr", "Xe"})
