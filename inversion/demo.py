@@ -68,18 +68,27 @@ def _demo(parser: argparse.ArgumentParser):
                     return code
         truth = json.loads((src / "truth.json").read_text())
         fit = json.loads((out / "fit" / "fit.json").read_text())
-        print("\n== recovered vs hidden truth (convex fit)")
-        print(f"{'quantity':<28}{'truth':>10}{'recovered':>12}")
-        for k in fit["weights"]:
-            print(f"{'weight ' + k:<28}{truth['weights'].get(k, 0.0):>10.3f}"
-                  f"{fit['weights'][k]:>12.3f}")
-        for k in ("T0", "slope"):
-            print(f"{'volatility ' + k:<28}{truth['volatility'][k]:>10.4g}"
-                  f"{fit['volatility'][k]:>12.4g}")
-        print(f"{'late-accretion fraction':<28}{truth['late_accretion_fraction']:>10.4f}"
-              f"{fit['late_accretion_fraction']:>12.4f}")
-        print(f"{'core mass fraction':<28}{truth['core_mass_fraction']:>10.3f}"
-              f"{fit['core_mass_fraction']:>12.3f}")
+        post = None
+        if (out / "sample" / "sample.json").exists():
+            post = json.loads((out / "sample" / "sample.json").read_text())["posterior"]
+
+        def cell(block: dict | None) -> str:
+            if not block:
+                return ""
+            return f"{block['median']:.4g} [{block['q05']:.4g}, {block['q95']:.4g}]"
+
+        rows = [(f"weight {k}", truth["weights"].get(k, 0.0), fit["weights"][k],
+                 post and post["weights"][k]) for k in fit["weights"]]
+        rows += [(f"volatility {k}", truth["volatility"][k], fit["volatility"][k],
+                  post and post["volatility"][k]) for k in ("T0", "slope")]
+        rows += [("late-accretion fraction", truth["late_accretion_fraction"],
+                  fit["late_accretion_fraction"], post and post["late_accretion_fraction"]),
+                 ("core mass fraction", truth["core_mass_fraction"], fit["core_mass_fraction"],
+                  post and post["core_mass_fraction"])]
+        print("\n== recovered vs hidden truth")
+        print(f"{'quantity':<26}{'truth':>10}{'convex fit':>12}   posterior median [5%, 95%]")
+        for name, t, f, b in rows:
+            print(f"{name:<26}{t:>10.4g}{f:>12.4g}   {cell(b)}")
         reports = sorted(out.glob("*/report.html"))
         print(f"\ndemo finished in {time.perf_counter() - t0:.0f} s; results in {out}/")
         for r in reports:

@@ -35,7 +35,7 @@ TRUTH = {
     "noise_dex": 0.013,  # 3% (1-sigma) scatter on every concentration
     "seed": 20261201,
 }
-CANDIDATES = ["CI", "CV", "H", "EH", "EL"]
+CANDIDATES = ["CI", "CV", "H", "EH"]
 
 
 def main() -> None:
