@@ -44,8 +44,8 @@ def _demo(parser: argparse.ArgumentParser):
         ]
         if "sample" in _COMMANDS:
             draws = ["--draws", "100", "--tune", "100", "--chains", "2"] if args.quick else []
-            # a short run: a failed diagnostics gate (exit 4) is reported, not fatal
-            steps.append(("Bayesian posterior (short run)",
+            # a failed diagnostics gate (exit 4) is reported, not fatal
+            steps.append(("Bayesian posterior (settings from the case file)",
                           ["sample", case, "--out", str(out / "sample"), *draws], {0, 4}))
         if "star" in _COMMANDS:
             steps.append(("planet of the host star Kestrel-7",
