@@ -45,8 +45,8 @@ def ci_fits() -> dict[str, object]:
     return out
 
 
-def test_target_agrees_with_the_library_transcription():
-    """Two transcriptions of McDonough & Sun (1995) Table 5 (this case study's and the
+def test_target_agrees_with_the_library_copy():
+    """Two typed copies of McDonough & Sun (1995) Table 5 (this case study's and the
     library's) agree to 0.5 % on every element they share."""
     mine, _unc, _ = read_target(HERE / "bse_mcdonough1995.csv", default_uncertainty_pct=15)
     lib = components.load("BSE_MS95").composition

@@ -2,8 +2,8 @@
 
 Three kinds of check:
 
-* transcription checks against pyrolite's reference compositions, an independent
-  transcription of the same or of a neighbouring publication (our tables were typed
+* typed copy checks against pyrolite's reference compositions, an independent
+  typed copy of the same or of a neighbouring publication (our tables were typed
   without reading pyrolite's files);
 * physical sanity of every component (no negative values, totals near 100 wt%);
 * ratio facts from the literature, each with its source named beside the value.
@@ -110,7 +110,7 @@ def test_recalled_flags_are_booleans_and_groups_are_marked_recalled(lib):
     for g in GROUPS:
         derived = lib[g].sources == "derived_ci_scaled"
         assert lib[g].recalled[derived].all(), g
-    # Most of the CI table was checked against a transcription of Lodders (2003) Table 3.
+    # Most of the CI table was checked against a typed copy of Lodders (2003) Table 3.
     assert (~lib[CI].recalled).sum() >= 55
 
 
@@ -182,7 +182,7 @@ def test_chondrite_groups_close_with_lithophile_oxygen(lib, name):
     assert 0.75 < total < 1.03, total
 
 
-# -------------------------------------------------- CI against independent transcriptions
+# -------------------------------------------------- CI against independent typed copies
 
 def _tolerance(el: str, cosmo: pd.Series, lith: float, vol: float) -> float:
     cls = cosmo.get(el, "highly_volatile")
@@ -239,17 +239,17 @@ def test_ci_against_mcdonough_sun_1995(lib, cosmo_class):
 def test_ci_uncertainties_are_lodders_table3_sigmas(lib):
     # Lodders (2003) Table 3 gives the 1-sigma of the weighted group mean in ppm, e.g.
     # Mg 95870 +- 780, Si 106500 +- 1250, Fe 182800 +- 1470, N 2940 +- 20, P 920 +- 100
-    # (read from a transcription of the table).
+    # (read from a typed copy of the table).
     unc = lib[CI].uncertainty
     for el, s in {"Mg": 780, "Si": 1250, "Fe": 1470, "N": 20, "P": 100}.items():
         assert unc[el] == pytest.approx(s * 1e-6, rel=1e-9), el
     assert unc.notna().sum() >= 50
 
 
-# ------------------------------------------------ BSE against independent transcriptions
+# ------------------------------------------------ BSE against independent typed copies
 
 def test_bse_ms95_against_pyrolite(lib):
-    """Same publication (McDonough & Sun 1995 Table 5): a transcription check at 2%."""
+    """Same publication (McDonough & Sun 1995 Table 5): a typed copy check at 2%."""
     ours = lib["BSE_MS95"].composition
     ref = _pyrolite("Pyrolite_MS95")
     common = ours.index.intersection(ref.index)
@@ -260,7 +260,7 @@ def test_bse_ms95_against_pyrolite(lib):
 
 
 def test_bse_po14_against_pyrolite(lib, cosmo_class):
-    """Same publication (Palme & O'Neill 2014): a transcription check.
+    """Same publication (Palme & O'Neill 2014): a typed copy check.
 
     2% for refractory and main-component elements; 5% for the volatile and siderophile
     trace elements, where our typed As (0.066 ppm) and Se (0.079 ppm) differ by 3-4% from

@@ -86,7 +86,7 @@ def test_atomic_weight_spot_checks_iupac(el, sym, weight):
     "sym, tc50",
     [
         # Lodders (2003, ApJ 591, 1220) Table 8, 50% condensation temperatures (K) at 1e-4
-        # bar. Values from memory of the table; they agree with the transcription the data
+        # bar. Values from memory of the table; they agree with the typed copy the data
         # file was built from. The table gives whole kelvins (Ne to 0.1 K): tolerance 0.5 K.
         ("Al", 1653), ("Ca", 1517), ("Ti", 1582), ("Zr", 1741), ("Re", 1821), ("Os", 1812),
         ("W", 1789), ("Ir", 1603), ("Pt", 1408), ("Mg", 1336), ("Si", 1310), ("Fe", 1334),

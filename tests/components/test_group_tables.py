@@ -1,6 +1,6 @@
 """Chondrite-group tables after their enrichment from Lodders & Fegley (1998).
 
-* a transcription check of the group majors against an attributed, normalised copy of
+* a typed copy check of the group majors against an attributed, normalised copy of
   Lodders & Fegley (1998);
 * the CI-scaled rows (source ``derived_ci_scaled``) against their stated recipe;
 * the element coverage the inversion needs (elements every group holds).
