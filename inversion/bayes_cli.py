@@ -29,7 +29,7 @@ def write_sample(out: Path, case: Any, p: Any, result: Any) -> dict[str, Any]:
         planet_draws,
         summary_table,
     )
-    from .output import atomic_folder, provenance, write_json
+    from .output import atomic_folder, case_provenance, write_json
 
     idata = result.idata
     names = [n for n in idata.posterior.data_vars if n not in ("mu", "eps_pred")]
@@ -60,16 +60,8 @@ def write_sample(out: Path, case: Any, p: Any, result: Any) -> dict[str, Any]:
         "timing_seconds": result.timing,
         "diagnostics": diag,
         "notes": list(p.notes),
-        "provenance": provenance(
-            tables=[p.condensation_table, "mcdonough2003", "mcdonoughsun1995", "vehtari2021"],
-            component_names=list(p.components) + ([p.late_name] if p.late_name else [])
-            + ["CI"],
-            extra={"case_file": case.path, "target_table": case.target.path,
-                   "reference_element": p.reference,
-                   "iron_split": ({"mantle_FeO_wt": case.core.mantle_FeO_wt}
-                                  if case.core.mantle_FeO_wt is not None
-                                  else {"dIW": case.core.dIW}),
-                   "sampler": "PyMC NUTS, started from the convex optimum (jittered)"}),
+        "provenance": case_provenance(case, p, tables=["vehtari2021"], extra={
+            "sampler": "PyMC NUTS, started from the convex optimum (jittered)"}),
     }
     with atomic_folder(out) as tmp:
         result.idata.to_netcdf(str(tmp / "posterior.nc"))

@@ -105,7 +105,7 @@ def _library(parser: argparse.ArgumentParser):
 # --------------------------------------------------------------------------- fit
 def _write_fit(out: Path, case, p, result, findings: dict) -> None:
     from .fit import planet_of
-    from .output import atomic_folder, provenance, write_json
+    from .output import atomic_folder, case_provenance, write_json
 
     planet = planet_of(p, result) if result.status == "optimal" else None
     data = {
@@ -132,22 +132,10 @@ def _write_fit(out: Path, case, p, result, findings: dict) -> None:
         "planet_mass_kg": case.target.planet_mass_kg,
         "findings": findings,
         "notes": list(p.notes),
-        "provenance": provenance(
-            tables=[p.condensation_table, "mcdonough2003", "mcdonoughsun1995", "walker2009"],
-            component_names=list(result.components) + ([p.late_name] if p.late_name else [])
-            + ["CI"],
-            extra={"case_file": case.path, "target_table": case.target.path,
-                   "reference_element": p.reference,
-                   "condensation_table": p.condensation_table,
-                   "iron_split": ({"mantle_FeO_wt": case.core.mantle_FeO_wt}
-                                  if case.core.mantle_FeO_wt is not None
-                                  else {"dIW": case.core.dIW}),
-                   "partition_coefficients": dict(zip(p.elements, map(float, p.D),
-                                                      strict=True)),
-                   "solver": {"method": result.settings.solver,
-                              "gauss_newton_passes": result.settings.passes,
-                              "zoom_levels": result.settings.zoom_levels},
-                   "uncertainty_defaulted": list(case.target.uncertainty_defaulted)}),
+        "provenance": case_provenance(case, p, extra={
+            "solver": {"method": result.settings.solver,
+                       "gauss_newton_passes": result.settings.passes,
+                       "zoom_levels": result.settings.zoom_levels}}),
     }
     with atomic_folder(out) as tmp:
         write_json(tmp / "fit.json", data)

@@ -23,7 +23,8 @@ import numpy as np
 
 import components
 
-__all__ = ["atomic_folder", "write_json", "provenance", "to_jsonable", "package_version"]
+__all__ = ["atomic_folder", "write_json", "provenance", "case_provenance", "to_jsonable",
+           "package_version"]
 
 
 def package_version() -> str:
@@ -117,3 +118,26 @@ def provenance(*, tables: list[str], extra: dict[str, Any] | None = None,
     if extra:
         out.update(extra)
     return out
+
+
+def case_provenance(case: Any, p: Any, *, tables: list[str] | None = None,
+                    extra: dict[str, Any] | None = None) -> dict[str, Any]:
+    """Provenance of a result computed from a case file and its compiled problem.
+
+    Records the case and target files, the reference element, the condensation table,
+    the iron split, the partition coefficients in use and the building blocks, on top of
+    :func:`provenance`; ``tables`` and ``extra`` add what the method itself used.
+    """
+    core = ({"mantle_FeO_wt": case.core.mantle_FeO_wt}
+            if case.core.mantle_FeO_wt is not None else {"dIW": case.core.dIW})
+    info = {"case_file": case.path, "target_table": case.target.path,
+            "reference_element": p.reference, "condensation_table": p.condensation_table,
+            "iron_split": core,
+            "partition_coefficients": dict(zip(p.elements, map(float, p.D), strict=True)),
+            "uncertainty_defaulted": list(case.target.uncertainty_defaulted)}
+    info.update(extra or {})
+    return provenance(
+        tables=[p.condensation_table, "mcdonough2003", "mcdonoughsun1995", "walker2009",
+                *(tables or [])],
+        component_names=list(p.components) + ([p.late_name] if p.late_name else []) + ["CI"],
+        extra=info)
