@@ -299,15 +299,18 @@ def test_group_mg_si(lib, group, mgsi):
     assert _molar(lib[group].composition, "Mg", "Si") == pytest.approx(mgsi, abs=0.03)
 
 
+def _ci_normalised_ratio(lib, name: str, a: str, b: str) -> float:
+    """(a/b) of a library component over (a/b) of CI, by mass."""
+    c, ci = lib[name].composition, lib[CI].composition
+    return float((c[a] / c[b]) / (ci[a] / ci[b]))
+
+
 def test_refractory_lithophile_enrichment_pattern(lib):
     # CI-normalised Al/Si: CV is the refractory-enriched group (~1.35 x CI, Wasson &
     # Kallemeyn 1988, from memory); CM, CO above CI; ordinary and enstatite chondrites below
     # CI (refractory-depleted relative to Si), EH lowest.
-    ci = lib[CI].composition
-
     def al_si(name):
-        c = lib[name].composition
-        return (c["Al"] / c["Si"]) / (ci["Al"] / ci["Si"])
+        return _ci_normalised_ratio(lib, name, "Al", "Si")
 
     assert al_si("CV") == pytest.approx(1.35, abs=0.12)
     assert al_si("CV") > al_si("CO") > 1.0
@@ -330,11 +333,8 @@ def test_group_siderophile_order(lib):
 def test_volatile_depletion_of_carbonaceous_groups(lib):
     # Zn/Mg normalised to CI falls CI > CM > CO ~ CV (Wasson & Kallemeyn 1988: CM ~0.5,
     # CO and CV ~0.25 x CI; from memory): the classic carbonaceous volatility sequence.
-    ci = lib[CI].composition
-
     def zn(name):
-        c = lib[name].composition
-        return (c["Zn"] / c["Mg"]) / (ci["Zn"] / ci["Mg"])
+        return _ci_normalised_ratio(lib, name, "Zn", "Mg")
 
     assert zn("CM") == pytest.approx(0.5, abs=0.1)
     assert zn("CO") == pytest.approx(0.25, abs=0.07)
