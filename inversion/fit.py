@@ -15,14 +15,14 @@ from __future__ import annotations
 import itertools
 import math
 from concurrent.futures import ProcessPoolExecutor
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any
 
 import numpy as np
 import pandas as pd
 
 from .case import Case
-from .model import Problem, compile_problem, forward, lam_from_v
+from .model import Problem, compile_problem, forward, lam_from_v, relative_log_retained
 from .planet import assemble, planet_table
 from .qp import MAX_ENUMERATED_VARIABLES, solve_batch, solve_cvxpy
 from .volatility import get_form
@@ -103,7 +103,7 @@ def _design(p: Problem, vol: np.ndarray, k: np.ndarray, D_Fe: np.ndarray,
             M_s_prev: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, list[str]]:
     """Mantle-ratio design (B, n, m) and inequality rows (B, g, m) <= h for fixed k."""
     B = vol.shape[0]
-    logr = get_logr(p, vol)
+    logr = relative_log_retained(p, vol)
     rr = 10.0 ** logr  # (B, n)
     Q3 = p.Q if p.Q.ndim == 3 else p.Q[None]
     Qr = Q3 * rr[:, None, :]  # (B, K, n)
@@ -161,14 +161,6 @@ def _design(p: Problem, vol: np.ndarray, k: np.ndarray, D_Fe: np.ndarray,
     G = np.stack(rows, axis=1) if rows else np.zeros((B, 0, A.shape[2]))
     h = np.stack(hs, axis=1) if hs else np.zeros((B, 0))
     return A, G, h, names
-
-
-def get_logr(p: Problem, vol: np.ndarray) -> np.ndarray:
-    """Volatility factor log10(r_i / r_R) for each parameter set (B, n)."""
-    from .volatility import log10_retained
-
-    logr = log10_retained(p.volatility_form, vol, p.tc)
-    return logr - logr[:, p.ref_index:p.ref_index + 1]
 
 
 def _solve(A: np.ndarray, b: np.ndarray, G: np.ndarray, h: np.ndarray):
@@ -392,12 +384,12 @@ def _infeasible(p: Problem, vol: np.ndarray, n_params: int, settings: FitSetting
     if not reasons and len(p.isotopes) > 1:
         # jointly unreachable: say which pairs fail
         for a, b in itertools.combinations(range(len(p.isotopes)), 2):
-            sub = _replace_isotopes(p, (p.isotopes[a], p.isotopes[b]))
+            sub = replace(p, isotopes=(p.isotopes[a], p.isotopes[b]))
             if not _profile_points(sub, vol[None], 1)["feasible"][0]:
                 reasons.append(f"no mixture meets {p.isotopes[a]['name']} and "
                                f"{p.isotopes[b]['name']} together")
     if not reasons:
-        base = _replace_isotopes(p, ())
+        base = replace(p, isotopes=())
         if not _profile_points(base, vol[None], 1)["feasible"][0]:
             reasons.append("iron budget: the mantle FeO needs more iron than the building "
                            "blocks hold")
@@ -415,12 +407,6 @@ def _infeasible(p: Problem, vol: np.ndarray, n_params: int, settings: FitSetting
                                         "fitted", "flag"]),
         predicted=pd.Series(dtype=float), reasons=tuple(reasons), settings=settings,
     )
-
-
-def _replace_isotopes(p: Problem, isos: tuple) -> Problem:
-    from dataclasses import replace
-
-    return replace(p, isotopes=tuple(isos))
 
 
 def fit(case: Case, settings: FitSettings | None = None) -> FitResult:
@@ -498,9 +484,13 @@ def screen(case: Case, *, settings: FitSettings | None = None, workers: int = 1,
     return Ranking(table=table, fits=fits_sorted)
 
 
-def planet_of(p: Problem, result: FitResult) -> pd.DataFrame:
-    """Planet table (mantle, core, bulk, ratios) of a fit result."""
+def forward_of(p: Problem, result: FitResult) -> dict[str, np.ndarray]:
+    """The forward model evaluated at a fit's estimates (batch of one)."""
     w = np.array([result.weights[c] for c in p.components])[None]
     vol = np.array(list(result.volatility.values()))[None]
-    fwd = forward(p, w, vol, result.late_accretion_fraction)
-    return planet_table(p, assemble(p, fwd))
+    return forward(p, w, vol, result.late_accretion_fraction)
+
+
+def planet_of(p: Problem, result: FitResult) -> pd.DataFrame:
+    """Planet table (mantle, core, bulk, ratios) of a fit result."""
+    return planet_table(p, assemble(p, forward_of(p, result)))

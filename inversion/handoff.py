@@ -288,12 +288,10 @@ def fit_handoff(folder: str | Path, p: Any, result: Any, *,
     meta : dict, optional
         Extra top-level keys.
     """
-    from .model import forward
+    from .fit import forward_of
     from .planet import assemble
 
-    w = np.array([result.weights[c] for c in p.components])[None]
-    vol = np.array(list(result.volatility.values()))[None]
-    fwd = forward(p, w, vol, result.late_accretion_fraction)
+    fwd = forward_of(p, result)
     draws = planet_draws(p, assemble(p, fwd), planet_mass_kg=planet_mass_kg)
     info = {"method": "convex fit (point estimate: the intervals collapse onto the value)",
             "components": list(p.components), "weights": result.weights,

@@ -25,7 +25,7 @@ mantle with the late component's ratios:
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any
 
 import numpy as np
@@ -37,8 +37,8 @@ from .case import CONDENSATION_TABLES, ISOTOPE_CARRIERS, Case
 from .exceptions import InputError
 from .volatility import get_form, log10_retained
 
-__all__ = ["Problem", "compile_problem", "forward", "default_partition", "CORE_ITERATIONS",
-           "MODEL_EXCLUDED"]
+__all__ = ["Problem", "compile_problem", "forward", "relative_log_retained",
+           "default_partition", "CORE_ITERATIONS", "MODEL_EXCLUDED"]
 
 #: Maximum fixed-point iterations for the core-to-mantle mass ratio (it stops earlier once
 #: k changes by < 1e-12 relative; chondritic bulk compositions need about ten).
@@ -135,7 +135,7 @@ class Problem:
         rows = np.repeat(idx, repeat, axis=0)
         iso = tuple({**d, "eps": d["eps"][rows], "q_carrier": d["q_carrier"][rows]}
                     for d in self.isotopes)
-        return _replace(self, components=tuple(f"block{i}" for i in range(idx.shape[1])),
+        return replace(self, components=tuple(f"block{i}" for i in range(idx.shape[1])),
                         Q=self.Q[rows], imputed=self.imputed[idx[0]],
                         c_comp_R=self.c_comp_R[rows], isotopes=iso)
 
@@ -144,14 +144,8 @@ class Problem:
         idx = [self.components.index(n) for n in names]
         iso = tuple({**d, "eps": d["eps"][idx], "q_carrier": d["q_carrier"][idx]}
                     for d in self.isotopes)
-        return _replace(self, components=tuple(names), Q=self.Q[idx], imputed=self.imputed[idx],
+        return replace(self, components=tuple(names), Q=self.Q[idx], imputed=self.imputed[idx],
                         c_comp_R=self.c_comp_R[idx], isotopes=iso)
-
-
-def _replace(p: Problem, **kw: Any) -> Problem:
-    from dataclasses import replace
-
-    return replace(p, **kw)
 
 
 def _impute(comp: pd.Series, ci: pd.Series, els: list[str], classes: pd.Series) -> tuple[
@@ -350,6 +344,12 @@ def _core_split(a: np.ndarray, p: Problem, D: np.ndarray, k0: np.ndarray | None 
             "D_Fe": D_fe[:, 0]}
 
 
+def relative_log_retained(p: Problem, vol: np.ndarray) -> np.ndarray:
+    """Volatility factor log10(r_i / r_R) for each parameter set, shape (B, n)."""
+    logr = log10_retained(p.volatility_form, vol, p.tc)
+    return logr - logr[:, p.ref_index:p.ref_index + 1]
+
+
 def forward(p: Problem, w: np.ndarray, vol: np.ndarray, lam: np.ndarray | float = 0.0,
             *, D: np.ndarray | None = None) -> dict[str, np.ndarray]:
     """Run the forward model for a batch of parameter sets.
@@ -381,8 +381,7 @@ def forward(p: Problem, w: np.ndarray, vol: np.ndarray, lam: np.ndarray | float 
     w = np.broadcast_to(w, (B, w.shape[1]))
     vol = np.broadcast_to(vol, (B, vol.shape[1]))
     lam = np.broadcast_to(np.asarray(lam, float), (B,))
-    logr = log10_retained(p.volatility_form, vol, p.tc)
-    logr = logr - logr[:, p.ref_index:p.ref_index + 1]
+    logr = relative_log_retained(p, vol)
     # Q is (K, n), or (B, K, n) when hypotheses are stacked along the batch axis
     a = (w @ p.Q if p.Q.ndim == 2 else np.einsum("bk,bkn->bn", w, p.Q)) * 10.0 ** logr
     split = _core_split(a, p, p.D if D is None else D)
