@@ -3,7 +3,6 @@ the bulk silicate Earth against CI, infeasible hypotheses, and the fit/rank comm
 
 from __future__ import annotations
 
-import itertools
 import json
 
 import numpy as np
@@ -254,9 +253,3 @@ def test_element_absent_from_every_candidate(tmp_path, capsys) -> None:
     assert main(["fit", str(case), "--out", str(tmp_path / "o")]) == 2
     assert "absent from every building block" in capsys.readouterr().err
 
-
-def test_subsets_enumerated(tmp_path) -> None:
-    # combinatorics of screening: all subsets up to the maximum size
-    names = ["CI", "CV", "H", "EH"]
-    n = sum(1 for r in range(1, 4) for _ in itertools.combinations(names, r))
-    assert n == 14
