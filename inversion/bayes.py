@@ -31,6 +31,7 @@ from __future__ import annotations
 
 import math
 import os
+import sys
 import time
 from dataclasses import dataclass, field
 from typing import Any
@@ -40,6 +41,7 @@ import pandas as pd
 
 from .exceptions import InputError
 from .model import Problem, forward
+from .options import check_option
 from .volatility import get_form
 
 __all__ = ["SamplerSettings", "Diagnostics", "SampleResult", "PRIOR_DISTRIBUTIONS",
@@ -229,7 +231,11 @@ class SamplerSettings:
 
     Defaults: 4 chains of 1000 tuning and 1000 kept draws at target acceptance 0.9,
     which pass the gate on the library's cases (bulk ESS >= 400 needs about 100
-    effective draws per chain).
+    effective draws per chain). ``engine`` chooses the NUTS implementation:
+    ``"nutpie"`` (default; the log density and its gradient compiled with numba and
+    sampled by nutpie's compiled NUTS, chains in threads) or ``"pymc"`` (PyMC's own
+    NUTS in Python over the C-compiled log density, chains in processes; ~25x slower
+    per draw, kept for cross-checks and for machines without numba).
     """
 
     draws: int = 1000
@@ -243,9 +249,15 @@ class SamplerSettings:
     evidence: bool = False
     smc_draws: int = 1000
     smc_chains: int = 2
+    engine: str = "nutpie"
 
 
-_SAMPLER_KEYS = ("draws", "tune", "chains", "seed", "target_accept")
+#: NUTS implementations (``[sampler] engine``, ``--engine``).
+ENGINES = ("nutpie", "pymc")
+#: PyMC initialisations of the mass matrix (``[sampler] init``; ``engine = "pymc"`` only).
+PYMC_INITS = ("adapt_diag", "jitter+adapt_diag", "adapt_full", "jitter+adapt_full")
+_SAMPLER_KEYS = ("draws", "tune", "chains", "seed", "target_accept", "cores", "engine",
+                 "init", "jitter", "smc_draws", "smc_chains", "evidence")
 
 
 def check_sampler_settings(table: dict[str, Any] | None, *, file: str | None = None,
@@ -277,7 +289,14 @@ def check_sampler_settings(table: dict[str, Any] | None, *, file: str | None = N
             elif k == "evidence":
                 vals[k] = bool(v)
             elif k == "jitter":
+                if isinstance(v, bool) or not isinstance(v, int | float) or not 0 <= v <= 0.5:
+                    raise InputError("must be a number in [0, 0.5]", file=file, field=fld,
+                                     value=v)
                 vals[k] = float(v)
+            elif k == "engine":
+                vals[k] = check_option("sampler engine", v, ENGINES, file=file, field=fld)
+            elif k == "init":
+                vals[k] = check_option("sampler init", v, PYMC_INITS, file=file, field=fld)
             else:
                 raise InputError(f"unknown sampler setting; allowed: {list(_SAMPLER_KEYS)}",
                                  file=file, field=fld, value=v)
@@ -378,146 +397,131 @@ def _state0(p: Problem) -> np.ndarray:
     return np.array([0.5, 10 ** (-p.dIW / 2.0) * 50.0 / 55.0])
 
 
-def _step_and_jacobian(p: Problem, a: np.ndarray, D: np.ndarray, s: np.ndarray
-                       ) -> tuple[np.ndarray, np.ndarray]:
-    """The core step G(s) and its Jacobian dG/ds (analytic for the mantle-FeO split,
-    central differences for the redox split)."""
-    if p.mantle_Fe is not None:
-        fe = p.fe_index
-        f = p.oxide_factor
-        u = a.copy()
-        u[fe] = 0.0
-        F = p.mantle_Fe
-        c = 1.0 / (1.0 - f[fe] * F)
-        k = s[0]
-        t = 1.0 / (1.0 + D * k)
-        uf = u * f
-        M_s = c * np.dot(uf, t)
-        M_c = a.sum() - np.dot(u, t) - F * M_s
-        dt = -D * t * t
-        dM_s = c * np.dot(uf, dt)
-        dM_c = -np.dot(u, dt) - F * dM_s
-        if M_c <= 0:
-            return np.array([0.0]), np.zeros((1, 1))
-        return (np.array([M_c / M_s]),
-                np.array([[(dM_c * M_s - M_c * dM_s) / (M_s * M_s)]]))
-    xp = _XP(False)
-    G = np.array(_core_step(xp, p, a, D, list(s))[0], dtype=float)
-    J = np.empty((s.size, s.size))
-    for j in range(s.size):
-        h = 1e-6 * max(abs(s[j]), 1e-6)
-        up, dn = s.copy(), s.copy()
-        up[j] += h
-        dn[j] -= h
-        J[:, j] = (np.array(_core_step(xp, p, a, D, list(up))[0])
-                   - np.array(_core_step(xp, p, a, D, list(dn))[0])) / (2 * h)
-    return G, J
-
-
-def _feo_fixed_point(p: Problem, a: np.ndarray, D: np.ndarray, k: float, max_iter: int,
-                     rtol: float) -> tuple[np.ndarray, np.ndarray]:
-    """Scalar Newton iteration for the mantle-FeO split (the sampler's hot path)."""
-    fe = p.fe_index
-    u = a.copy()
-    u[fe] = 0.0
-    F = p.mantle_Fe
-    c = 1.0 / (1.0 - p.oxide_factor[fe] * F)
-    uf = u * p.oxide_factor
-    A = float(a.sum())
-    dg = 0.0
-    for _ in range(max_iter):
-        t = 1.0 / (1.0 + D * k)
-        M_s = c * float(uf @ t)
-        M_c = A - float(u @ t) - F * M_s
-        if not M_c > 0:
-            g, dg = 0.0, 0.0
-        else:
-            dt = -D * t * t
-            dM_s = c * float(uf @ dt)
-            dM_c = -float(u @ dt) - F * dM_s
-            g = M_c / M_s
-            dg = (dM_c * M_s - M_c * dM_s) / (M_s * M_s)
-        nxt = k + (g - k) / (1.0 - dg) if dg != 1.0 else g
-        if not (nxt >= 0 and math.isfinite(nxt)):
-            nxt = g
-        done = abs(nxt - k) <= rtol * max(abs(k), 1e-300)
-        k = nxt
-        if done:
-            break
-    return np.array([k]), np.array([[1.0 / (1.0 - dg)]])
-
-
-def core_fixed_point(p: Problem, a: np.ndarray, D: np.ndarray, *, max_iter: int = 500,
-                     rtol: float = 1e-13, s0: np.ndarray | None = None
-                     ) -> tuple[np.ndarray, np.ndarray]:
+def core_fixed_point(p: Problem, a: np.ndarray, D: np.ndarray, *,
+                     s0: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
     """Fixed point of the core step for one bulk ``a`` (n,), and ``inv(I - J)``.
 
-    Newton's method on ``G(s) - s`` (falling back to plain iteration if a Newton step
-    leaves the physical range); ``J`` is the step's Jacobian at the fixed point, used by
-    the PyMC model's implicit gradient. Stops when the state changes by less than
-    ``rtol`` (relative); ``s0`` warm-starts it.
+    Newton's method on ``G(s) - s`` in the compiled kernels of
+    :mod:`inversion.corekernel` (falling back to plain iteration if a Newton step leaves
+    the physical range); ``J`` is the step's Jacobian at the fixed point, used by the
+    PyMC model's implicit gradient. ``s0`` warm-starts it.
     """
+    from .corekernel import feo_fixed_point, redox_fixed_point
+
+    a = np.ascontiguousarray(a, dtype=float)
+    D = np.ascontiguousarray(D, dtype=float)
     if p.mantle_Fe is not None:
-        return _feo_fixed_point(p, a, D, 0.5 if s0 is None else float(s0[0]), max_iter, rtol)
-    s = _state0(p) if s0 is None else np.asarray(s0, float).copy()
-    eye = np.eye(s.size)
-    G, J = _step_and_jacobian(p, a, D, s)
-    for _ in range(max_iter):
-        if s.size == 1:
-            den = 1.0 - J[0, 0]
-            nxt = s + (G - s) / den if den != 0 else G
-        else:
-            try:
-                nxt = s + np.linalg.solve(eye - J, G - s)
-            except np.linalg.LinAlgError:
-                nxt = G
-        if not (np.all(np.isfinite(nxt)) and nxt[0] >= 0 and (nxt.size == 1 or nxt[1] > 0)):
-            nxt = G
-        done = np.all(np.abs(nxt - s) <= rtol * np.maximum(np.abs(s), 1e-300))
-        s = nxt
-        G, J = _step_and_jacobian(p, a, D, s)
-        if done:
-            break
-    return s, np.linalg.inv(eye - J)
+        return feo_fixed_point(a, D, p.oxide_factor, p.fe_index, float(p.mantle_Fe),
+                               0.5 if s0 is None else float(s0[0]))
+    s = _state0(p) if s0 is None else np.asarray(s0, float)
+    return redox_fixed_point(a, D, p.oxide_factor, p.atomic_weight, p.cations.astype(float),
+                             p.fe_index, float(p.dIW), s)
 
 
 def _fixed_point_op(p: Problem):
-    """A pytensor Op: (a, D) -> (fixed-point state, inv(I - J)), treated as constants."""
+    """The core fixed point of problem ``p`` as a pytensor Op applied to (a, D)."""
+    CoreFixedPoint = _op_class()
+    if p.mantle_Fe is not None:
+        op = CoreFixedPoint(redox=False, fe=int(p.fe_index), level=float(p.mantle_Fe))
+    else:
+        op = CoreFixedPoint(redox=True, fe=int(p.fe_index), level=float(p.dIW))
+    consts = (np.asarray(p.oxide_factor, float), np.asarray(p.atomic_weight, float),
+              np.asarray(p.cations, float))
+    return lambda a, D: op(a, D, *consts)
+
+
+def _core_fixed_point_op_class():
     import pytensor.tensor as pt
     from pytensor.graph.basic import Apply
     from pytensor.graph.op import Op
 
-    size = 1 if p.mantle_Fe is not None else 2
-
     class CoreFixedPoint(Op):
-        __props__ = ()
-        problem = p
+        """(a, D, oxide factors, atomic weights, cations) -> (fixed-point state,
+        inv(I - J)), both treated as constants by the gradient (the implicit derivative
+        enters through the one symbolic Newton step of :func:`_pt_core_split`).
 
-        def make_node(self, a, D):
-            a = pt.as_tensor_variable(a)
-            D = pt.as_tensor_variable(D)
-            return Apply(self, [a, D], [pt.dvector(), pt.dmatrix()])
+        ``redox`` chooses the split (mantle FeO or dIW), ``level`` is the mantle iron
+        mass fraction or dIW, ``fe`` the index of iron. Python evaluation warm-starts
+        from the previous call (sampling moves in small steps; the result does not
+        depend on the start, only the iteration count does); the numba evaluation
+        (nutpie) starts cold, which costs a few Newton steps.
+        """
+
+        __props__ = ("redox", "fe", "level")
+
+        def __init__(self, redox: bool, fe: int, level: float):
+            self.redox = bool(redox)
+            self.fe = int(fe)
+            self.level = float(level)
+            super().__init__()
+
+        def make_node(self, a, D, f, aw, cations):
+            ins = [pt.as_tensor_variable(v) for v in (a, D, f, aw, cations)]
+            return Apply(self, ins, [pt.dvector(), pt.dmatrix()])
 
         def perform(self, node, inputs, outputs):
-            # warm start from the previous call (sampling moves in small steps); the
-            # result does not depend on the start, only the iteration count does
+            from .corekernel import feo_fixed_point, redox_fixed_point
+
+            a, D, f, aw, cat = (np.ascontiguousarray(v, dtype=float) for v in inputs)
+
+            def solve(last):
+                if self.redox:
+                    s0 = last if last is not None else np.array(
+                        [0.5, 10 ** (-self.level / 2.0) * 50.0 / 55.0])
+                    return redox_fixed_point(a, D, f, aw, cat, self.fe, self.level, s0)
+                return feo_fixed_point(a, D, f, self.fe, self.level,
+                                       0.5 if last is None else float(last[0]))
+
             last = node.tag.__dict__.get("last_state")
-            s, minv = core_fixed_point(self.problem, np.asarray(inputs[0]),
-                                       np.asarray(inputs[1]), s0=last)
-            if not np.all(np.isfinite(s)) or s[0] < 0:
-                s, minv = core_fixed_point(self.problem, np.asarray(inputs[0]),
-                                           np.asarray(inputs[1]))
+            s, minv = solve(last)
+            if last is not None and not (np.all(np.isfinite(s)) and s[0] >= 0):
+                s, minv = solve(None)
             node.tag.last_state = s
-            outputs[0][0] = s.astype(float)
-            outputs[1][0] = minv.astype(float)
+            outputs[0][0] = s
+            outputs[1][0] = minv
 
         def infer_shape(self, fgraph, node, shapes):
+            size = 2 if self.redox else 1
             return [(size,), (size, size)]
 
         def L_op(self, inputs, outputs, grads):
-            return [pt.zeros_like(inputs[0]), pt.zeros_like(inputs[1])]
+            return [pt.zeros_like(v) for v in inputs]
 
-    return CoreFixedPoint()
+    from pytensor.link.numba.dispatch.basic import register_funcify_default_op_cache_key
+
+    @register_funcify_default_op_cache_key(CoreFixedPoint)
+    def _numba_core_fixed_point(op, node=None, **kwargs):
+        from pytensor.link.numba.dispatch.basic import numba_njit
+
+        from .corekernel import feo_fixed_point, redox_fixed_point
+
+        fe, level = op.fe, op.level
+        d_fe0 = 10 ** (-level / 2.0) * 50.0 / 55.0
+        if op.redox:
+            @numba_njit
+            def core_fixed_point_numba(a, D, f, aw, cations):
+                s0 = np.empty(2)
+                s0[0] = 0.5
+                s0[1] = d_fe0
+                return redox_fixed_point(a, D, f, aw, cations, fe, level, s0)
+        else:
+            @numba_njit
+            def core_fixed_point_numba(a, D, f, aw, cations):
+                return feo_fixed_point(a, D, f, fe, level)
+        return core_fixed_point_numba, 1
+
+    return CoreFixedPoint
+
+
+_OP_CLASS: list[type] = []
+
+
+def _op_class() -> type:
+    """The Op class, built on first use so that importing this module does not import
+    pytensor (the numpy paths of the engine do not need it)."""
+    if not _OP_CLASS:
+        _OP_CLASS.append(_core_fixed_point_op_class())
+    return _OP_CLASS[0]
 
 
 def _pt_core_split(a, p: Problem, D, iterations: int | None = None) -> dict[str, Any]:
@@ -834,7 +838,7 @@ def sample(p: Problem, settings: SamplerSettings | None = None, *,
         The convex optimum to start from (computed with
         :func:`inversion.fit.fit_problem` when omitted).
     progress : bool
-        Show PyMC's progress display.
+        Show the engine's progress display.
     y : ndarray, optional
         Synthetic observations replacing ``p.y`` (simulation studies).
     posterior_predictive, log_likelihood : bool
@@ -846,8 +850,10 @@ def sample(p: Problem, settings: SamplerSettings | None = None, *,
 
     Notes
     -----
-    One seed makes one ``numpy.random.Generator``; it yields the per-chain NUTS seeds,
-    the start-point jitter, the posterior-predictive seed and the SMC seed, all recorded.
+    One seed makes one ``numpy.random.Generator``; it yields the NUTS seed (split into
+    per-chain streams by the engine), the posterior-predictive seed, the SMC seed and the
+    start-point jitter seed, all recorded. ``timing`` separates the convex start, the
+    compilation of the log density and the sampling itself.
     """
     import pymc as pm
 
@@ -863,17 +869,32 @@ def sample(p: Problem, settings: SamplerSettings | None = None, *,
     if fit is None:
         obs_p = p if y is None else _with_y(p, y)
         fit = fit_problem(obs_p)
-    inits = start_points(p, priors, fit, settings.chains, rng, settings.jitter)
+    jitter_seed = int(rng.integers(0, 2**31 - 1))
     t_fit = time.perf_counter() - t0
     model = build_model(p, priors, y=y)
     cores = settings.cores or min(settings.chains, os.cpu_count() or 1)
-    t1 = time.perf_counter()
-    with model:
-        idata = pm.sample(draws=settings.draws, tune=settings.tune, chains=settings.chains,
-                          cores=cores, random_seed=nuts_seed, initvals=inits,
-                          init=settings.init, target_accept=settings.target_accept,
-                          progressbar=progress, compute_convergence_checks=False)
-    t_nuts = time.perf_counter() - t1
+    if settings.engine == "nutpie":
+        if progress:
+            print("compiling the log density and its gradient (numba; cached on disk for "
+                  "the next run of the same model) ...", file=sys.stderr, flush=True)
+        runner = _NutpieModel.build(model)
+        t_compile = runner.compile_seconds
+        idata, inits, t_nuts = runner.run(p, priors, fit, settings, cores=cores,
+                                          seed=nuts_seed, jitter_seed=jitter_seed,
+                                          progress=progress, y=y)
+    else:
+        inits = start_points(p, priors, fit, settings.chains,
+                             np.random.default_rng(jitter_seed), settings.jitter)
+        t1 = time.perf_counter()
+        with model:
+            idata = pm.sample(draws=settings.draws, tune=settings.tune,
+                              chains=settings.chains, cores=cores, random_seed=nuts_seed,
+                              initvals=inits, init=settings.init,
+                              target_accept=settings.target_accept, progressbar=progress,
+                              compute_convergence_checks=False)
+        # PyMC compiles inside pm.sample; its own sampling_time excludes that
+        t_nuts = float(idata.posterior.attrs.get("sampling_time", time.perf_counter() - t1))
+        t_compile = time.perf_counter() - t1 - t_nuts
     if log_likelihood:
         add_log_likelihood(p, idata)
     if posterior_predictive:
@@ -900,15 +921,102 @@ def sample(p: Problem, settings: SamplerSettings | None = None, *,
                     "draws": settings.smc_draws, "chains": settings.smc_chains,
                     "seconds": time.perf_counter() - t2}
     seeds = {"seed": settings.seed, "nuts_seed": nuts_seed, "posterior_predictive_seed":
-             ppc_seed, "smc_seed": smc_seed,
+             ppc_seed, "smc_seed": smc_seed, "start_jitter_seed": jitter_seed,
              "generator": "numpy.random.default_rng(seed).integers(0, 2**31 - 1), in this "
-             "order; PyMC splits nuts_seed into one stream per chain"}
+             "order; the engine splits nuts_seed into one stream per chain"}
     start = {"fit_status": getattr(fit, "status", None), "initial_values": inits}
-    timing = {"fit_seconds": t_fit, "sampling_seconds": t_nuts,
-              "total_seconds": time.perf_counter() - t0}
+    timing = {"fit_seconds": t_fit, "compile_seconds": t_compile,
+              "sampling_seconds": t_nuts, "total_seconds": time.perf_counter() - t0}
     return SampleResult(idata=idata, diagnostics=diag, settings=settings, seeds=seeds,
                         priors=priors, start=start, timing=timing,
                         log_marginal_likelihood=lml, smc=smc_info)
+
+
+def _unconstrain_function(model: Any):
+    """Compiled map from constrained values of the free parameters (a dict) to the flat
+    unconstrained vector, in the order of ``model.free_RVs`` (nutpie's order)."""
+    import pytensor
+    import pytensor.tensor as pt
+
+    ins, outs, names = [], [], []
+    for rv in model.free_RVs:
+        x = rv.type()
+        tr = model.rvs_to_transforms.get(rv)
+        y = tr.forward(x, *rv.owner.inputs) if tr is not None else x
+        ins.append(x)
+        outs.append(pt.as_tensor_variable(y).ravel())
+        names.append(rv.name)
+    fn = pytensor.function(ins, pt.concatenate(outs), mode="FAST_COMPILE",
+                           on_unused_input="ignore")
+    return lambda values: np.asarray(fn(*(np.asarray(values[n], float) for n in names)))
+
+
+@dataclass
+class _NutpieModel:
+    """A model compiled once for nutpie, sampled many times (with new data for SBC)."""
+
+    compiled: Any
+    unconstrain: Any
+    compile_seconds: float
+
+    @classmethod
+    def build(cls, model: Any) -> _NutpieModel:
+        import nutpie
+
+        t = time.perf_counter()
+        keep = [rv.name for rv in model.free_RVs] + [d.name for d in model.deterministics]
+        compiled = nutpie.compile_pymc_model(model, backend="numba", var_names=keep)
+        return cls(compiled, _unconstrain_function(model), time.perf_counter() - t)
+
+    def run(self, p: Problem, priors: dict[str, dict[str, Any]], fit: Any,
+            settings: SamplerSettings, *, cores: int, seed: int, jitter_seed: int,
+            progress: bool, y: np.ndarray | None = None
+            ) -> tuple[Any, list[dict[str, Any]], float]:
+        """NUTS by nutpie; returns the InferenceData (free parameters in the constrained
+        space, the deterministics, the observed data), the start points (in the order of
+        the chain seeds) and the sampling seconds.
+
+        Each chain starts from the convex optimum jittered by a generator seeded with
+        ``(jitter_seed, chain seed)``, so that a run is reproducible from its seed
+        whatever order nutpie's threads start in.
+        """
+        import threading
+        from dataclasses import replace as dc_replace
+
+        import nutpie
+
+        starts: dict[int, dict[str, Any]] = {}
+        lock = threading.Lock()
+
+        def initial_point(chain_seed: int) -> np.ndarray:
+            g = np.random.default_rng([jitter_seed, int(chain_seed) % 2**63])
+            iv = start_points(p, priors, fit, 1, g, settings.jitter)[0]
+            with lock:
+                starts[int(chain_seed)] = iv
+            return self.unconstrain(iv)
+
+        compiled = self.compiled if y is None else self.compiled.with_data(y_data=y)
+        compiled = dc_replace(compiled, initial_point_func=initial_point)
+        t = time.perf_counter()
+        idata = nutpie.sample(compiled, draws=settings.draws, tune=settings.tune,
+                              chains=settings.chains, cores=cores, seed=seed,
+                              target_accept=settings.target_accept, save_warmup=False,
+                              progress_bar=progress)
+        t_nuts = time.perf_counter() - t
+        _add_observed(idata, p, p.y if y is None else y)
+        return idata, [starts[k] for k in sorted(starts)], t_nuts
+
+
+def _add_observed(idata: Any, p: Problem, y: np.ndarray) -> None:
+    """The ``observed_data`` group (elements and isotopes), as PyMC writes it."""
+    import xarray as xr
+
+    data = {OBS_ELEMENTS: (("elements",), np.asarray(y, float))}
+    coords = {"elements": list(p.fit_elements)}
+    if p.isotopes:
+        data["eps_obs"] = (("isotopes",), np.array([d["value"] for d in p.isotopes]))
+        coords["isotopes"] = [d["name"] for d in p.isotopes]
+    idata.add_groups({"observed_data": xr.Dataset(data, coords=coords)})
 
 
 def add_log_likelihood(p: Problem, idata: Any) -> None:
@@ -1215,14 +1323,14 @@ def _flat_truth(truth: dict[str, Any], p: Problem) -> dict[str, float]:
 
 def sbc(p: Problem, n_replicates: int, *, draws: int = 200, tune: int = 200, chains: int = 2,
         seed: int = 0, thin_to: int = 99, priors: dict[str, dict[str, Any]] | None = None,
-        progress: bool = False) -> pd.DataFrame:
+        progress: bool = False, engine: str = "nutpie", cores: int = 1) -> pd.DataFrame:
     """Simulation-based calibration (Talts et al. 2018) of the sampler on problem ``p``.
 
     Each replicate draws parameters from the prior, simulates observations from the
     numpy forward model and the likelihood, samples the posterior as :func:`sample` does
-    (NUTS from the jittered convex optimum; the step is compiled once and reused with new
-    data), and records the rank of the truth among ``thin_to`` thinned posterior draws
-    and whether the central 90% interval covers it.
+    (NUTS from the jittered convex optimum; the log density is compiled once and reused
+    with new data), and records the rank of the truth among ``thin_to`` thinned
+    posterior draws and whether the central 90% interval covers it.
 
     Returns
     -------
@@ -1231,44 +1339,58 @@ def sbc(p: Problem, n_replicates: int, *, draws: int = 200, tune: int = 200, cha
         ``truth``, ``rank`` (0..thin_to), ``covered90``, plus ``divergences``.
     """
     import pymc as pm
+    from tqdm import tqdm
 
     from .fit import fit_problem
 
+    check_option("sampler engine", engine, ENGINES)
     priors = priors or default_priors(p)
     rng = np.random.default_rng(seed)
     model = build_model(p, priors)
+    settings = SamplerSettings(draws=draws, tune=tune, chains=chains, seed=seed,
+                               engine=engine, cores=cores)
     rows = []
-    with model:
-        step = pm.NUTS(target_accept=0.9)
-        for r in range(n_replicates):
-            truth = draw_prior(p, priors, rng)
-            y = simulate(p, truth, rng)
-            pm.set_data({"y_data": y})
-            fit = fit_problem(_with_y(p, y))
-            inits = start_points(p, priors, fit, chains, rng, 0.02)
-            idata = pm.sample(draws=draws, tune=tune, chains=chains, cores=1, step=step,
-                              initvals=inits, random_seed=int(rng.integers(2**31 - 1)),
-                              progressbar=progress, compute_convergence_checks=False)
-            post = posterior_arrays(p, idata)
-            div = int(idata.sample_stats["diverging"].values.sum())
-            S = post["tau"].size
-            idx = np.linspace(0, S - 1, thin_to).round().astype(int)
-            flat = {"tau": post["tau"]}
-            for j, n in enumerate(get_form(p.volatility_form).params):
-                flat[n] = post["vol"][:, j]
-            if p.late_name is not None:
-                flat["lam"] = post["lam"]
-            if len(p.components) > 1:
-                for k, c in enumerate(p.components):
-                    flat[f"w[{c}]"] = post["w"][:, k]
-            for j in _partitioned(p):
-                flat[f"log10D[{p.elements[j]}]"] = np.log10(post["D"][:, j])
-            # thin by position after a random shuffle of chains' interleaving
-            order = rng.permutation(S)
-            for name, t in _flat_truth(truth, p).items():
-                v = flat[name]
-                q = np.quantile(v, [0.05, 0.95])
-                rows.append({"replicate": r, "parameter": name, "truth": t,
-                             "rank": int(np.sum(v[order][idx] < t)),
-                             "covered90": bool(q[0] <= t <= q[1]), "divergences": div})
+    runner = _NutpieModel.build(model) if engine == "nutpie" else None
+    step = None
+    if runner is None:
+        with model:
+            step = pm.NUTS(target_accept=settings.target_accept)
+    for r in tqdm(range(n_replicates), desc="SBC replicates", disable=not progress):
+        truth = draw_prior(p, priors, rng)
+        y = simulate(p, truth, rng)
+        fit = fit_problem(_with_y(p, y))
+        if runner is not None:
+            idata, _, _ = runner.run(p, priors, fit, settings, cores=cores,
+                                     seed=int(rng.integers(2**31 - 1)),
+                                     jitter_seed=int(rng.integers(2**31 - 1)),
+                                     progress=False, y=y)
+        else:
+            inits = start_points(p, priors, fit, chains, rng, settings.jitter)
+            with model:
+                pm.set_data({"y_data": y})
+                idata = pm.sample(draws=draws, tune=tune, chains=chains, cores=1, step=step,
+                                  initvals=inits, random_seed=int(rng.integers(2**31 - 1)),
+                                  progressbar=False, compute_convergence_checks=False)
+        post = posterior_arrays(p, idata)
+        div = int(idata.sample_stats["diverging"].values.sum())
+        S = post["tau"].size
+        idx = np.linspace(0, S - 1, thin_to).round().astype(int)
+        flat = {"tau": post["tau"]}
+        for j, n in enumerate(get_form(p.volatility_form).params):
+            flat[n] = post["vol"][:, j]
+        if p.late_name is not None:
+            flat["lam"] = post["lam"]
+        if len(p.components) > 1:
+            for k, c in enumerate(p.components):
+                flat[f"w[{c}]"] = post["w"][:, k]
+        for j in _partitioned(p):
+            flat[f"log10D[{p.elements[j]}]"] = np.log10(post["D"][:, j])
+        # thin by position after a random shuffle of chains' interleaving
+        order = rng.permutation(S)
+        for name, t in _flat_truth(truth, p).items():
+            v = flat[name]
+            q = np.quantile(v, [0.05, 0.95])
+            rows.append({"replicate": r, "parameter": name, "truth": t,
+                         "rank": int(np.sum(v[order][idx] < t)),
+                         "covered90": bool(q[0] <= t <= q[1]), "divergences": div})
     return pd.DataFrame(rows)

@@ -126,6 +126,69 @@ def test_pytensor_model_matches_numpy_forward(tmp_path, redox, monkeypatch):
         np.testing.assert_allclose(got, ref, rtol=1e-6, atol=1e-8)
 
 
+@pytest.mark.parametrize("redox", [False, True])
+def test_numba_compiled_model_matches_numpy_forward(tmp_path, redox, monkeypatch):
+    """The log density nutpie samples is compiled with numba, where the core fixed point
+    runs as the compiled kernel itself (not the Python perform): same check as above."""
+    import pytensor
+    import pytensor.tensor as pt
+
+    import inversion.model as model_mod
+
+    monkeypatch.setattr(model_mod, "CORE_ITERATIONS", 200)
+    bse = components.load("BSE_MS95").composition
+    p = compile_problem(load_case(write_case(tmp_path, bse[ELEMENTS], candidates=["CI", "EH"])))
+    if redox:
+        p = replace(p, mantle_Fe=None, dIW=-2.2)
+    w, T0, slope, lam, Dv = pt.dvector(), pt.dscalar(), pt.dscalar(), pt.dscalar(), pt.dvector()
+    out = bayes.model_log10N(p, w, [T0, slope], lam, Dv)["log10N"]
+    import warnings
+
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        f = pytensor.function([w, T0, slope, lam, Dv], [out, pytensor.grad(out.sum(), T0)],
+                              mode="NUMBA")
+    # the kernel is inlined, not run through Python in numba's object mode
+    assert not [c for c in caught if "object mode" in str(c.message)]
+    rng = np.random.default_rng(12)
+    for _ in range(4):
+        ww = rng.dirichlet(np.ones(2))
+        vol = np.array([rng.uniform(1000, 1500), rng.uniform(0, 0.006)])
+        la = rng.uniform(0, 0.05)
+        D = p.D * 10 ** rng.normal(0, 0.3, p.D.size)
+        ref = forward(p, ww[None], vol[None], la, D=D)["log10N"][0]
+        got, dT0 = f(ww, vol[0], vol[1], la, D)
+        np.testing.assert_allclose(got, ref, rtol=1e-6, atol=1e-8)
+        h = 0.05
+        up = forward(p, ww[None], np.array([[vol[0] + h, vol[1]]]), la, D=D)["log10N"][0]
+        dn = forward(p, ww[None], np.array([[vol[0] - h, vol[1]]]), la, D=D)["log10N"][0]
+        assert dT0 == pytest.approx((up.sum() - dn.sum()) / (2 * h), rel=1e-4, abs=1e-9)
+
+
+def test_core_kernels_solve_their_fixed_point():
+    """The compiled kernels return s = G(s) and inv(I - J) (J by central differences)."""
+    from inversion import corekernel as ck
+
+    rng = np.random.default_rng(4)
+    n, fe = 12, 3
+    a = rng.uniform(0.01, 1.0, n)
+    a[fe] = 1.5
+    D = 10 ** rng.uniform(-2, 2, n)
+    f = rng.uniform(1.1, 2.2, n)
+    s, minv = ck.feo_fixed_point(a, D, f, fe, 0.06)
+    g, dg = ck._feo_g(a, D, f, fe, 0.06, s[0])
+    assert g == pytest.approx(s[0], rel=1e-12)
+    h = 1e-6 * s[0]
+    num = (ck._feo_g(a, D, f, fe, 0.06, s[0] + h)[0] - ck._feo_g(a, D, f, fe, 0.06,
+                                                                   s[0] - h)[0]) / (2 * h)
+    assert minv[0, 0] == pytest.approx(1 / (1 - num), rel=1e-6)
+    aw, cat = rng.uniform(20, 60, n), rng.choice([0.5, 1.0], n)
+    s2, minv2 = ck.redox_fixed_point(a, D, f, aw, cat, fe, -2.0, np.array([0.5, 10.0]))
+    np.testing.assert_allclose(ck.redox_step(a, D, f, aw, cat, fe, -2.0, s2[0], s2[1]), s2,
+                               rtol=1e-10)
+    assert np.all(np.isfinite(minv2)) and s2[0] > 0 and s2[1] > 0
+
+
 def test_implicit_core_gradient_matches_finite_differences(tmp_path):
     import pytensor
     import pytensor.tensor as pt
