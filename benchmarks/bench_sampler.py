@@ -135,11 +135,13 @@ def main() -> None:
     n = chain.shape[0] * chain.shape[1]
     ess_e = float(np.min(n / tau))
     trusted = chain.shape[0] >= 50 * np.max(tau)
+    caveat = ("" if trusted else ", under 50 tau: tau underestimated, ESS overestimated, "
+              "so the ratio below is a lower bound")
     print(f"emcee: {nwalkers} walkers x {args.emcee_steps} steps ({nd} parameters, "
           f"unconstrained space, numba log density): {t_emcee:.1f} s; min ESS {ess_e:.0f} "
           f"(max tau_int {np.max(tau):.0f} steps; kept chain = "
           f"{chain.shape[0] / np.max(tau):.0f} tau"
-          f"{'' if trusted else ', under 50 tau: tau underestimated, ESS overestimated, the ratio below a lower bound'}); "
+          f"{caveat}); "
           f"{ess_e / t_emcee:.2f} ESS/s; acceptance {np.mean(sampler.acceptance_fraction):.2f}")
     print(f"ratio NUTS (nutpie) / emcee ESS/s: {rate / (ess_e / t_emcee):.1f} (goal >= 20)")
     print(f"4-chain 1000-draw run of a {len(p.components)}-component case after compilation:"

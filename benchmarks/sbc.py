@@ -15,6 +15,7 @@ from __future__ import annotations
 import argparse
 import sys
 import tempfile
+import time
 from pathlib import Path
 
 import numpy as np
@@ -37,21 +38,31 @@ def main() -> None:
     ap.add_argument("--bins", type=int, default=10)
     ap.add_argument("--seed", type=int, default=0)
     ap.add_argument("--out", default="sbc_ranks.csv")
+    ap.add_argument("--engine", default="nutpie", choices=["nutpie", "pymc"])
+    ap.add_argument("--cores", type=int, default=2, help="threads for the chains (nutpie)")
     args = ap.parse_args()
     bse = components.load("BSE_MS95").composition
     with tempfile.TemporaryDirectory() as tmp:
         p = compile_problem(load_case(write_case(Path(tmp), bse[ELEMENTS],
                                                  candidates=["CI", "EH"])))
     L = 99
+    t0 = time.perf_counter()
     res = bayes.sbc(p, args.replicates, draws=args.draws, tune=args.tune, chains=2,
-                    seed=args.seed, thin_to=L, progress=False)
+                    seed=args.seed, thin_to=L, progress=True, engine=args.engine,
+                    cores=args.cores)
     res.to_csv(args.out, index=False)
-    print(f"{args.replicates} replicates, {L} thinned draws each; ranks in {args.out}")
+    print(f"{args.replicates} replicates ({args.engine}, 2 chains x {args.draws} draws), "
+          f"{L} thinned draws each, {time.perf_counter() - t0:.0f} s; ranks in {args.out}")
     print(f"{'parameter':<16} {'chi2 p':>8} {'cover90':>8}")
     for name, g in res.groupby("parameter", sort=False):
         counts = np.histogram(g["rank"], bins=args.bins, range=(0, L + 1))[0]
         print(f"{name:<16} {stats.chisquare(counts).pvalue:8.3f} "
               f"{g['covered90'].mean():8.2f}")
+    pvals = [stats.chisquare(np.histogram(g["rank"], bins=args.bins, range=(0, L + 1))[0]
+                             ).pvalue for _, g in res.groupby("parameter", sort=False)]
+    print(f"smallest per-parameter p {min(pvals):.3f} against the Bonferroni threshold "
+          f"0.05 / {len(pvals)} = {0.05 / len(pvals):.4f}: "
+          f"{'uniform' if min(pvals) > 0.05 / len(pvals) else 'NOT uniform'}")
     counts = np.histogram(res["rank"], bins=args.bins, range=(0, L + 1))[0]
     print(f"{'all (pooled)':<16} {stats.chisquare(counts).pvalue:8.3f} "
           f"{res['covered90'].mean():8.2f}; divergent replicates: "

@@ -4,8 +4,9 @@ The model is the pytensor twin of :func:`inversion.model.forward`: R-basis weigh
 the building blocks on the simplex, the chosen volatility form, core formation by an
 unrolled fixed point of the core-to-mantle mass ratio, late accretion, isotope mass
 balance, and a Student-t likelihood with a model-scatter term on the fitted elements.
-:func:`sample` runs NUTS from the convex optimum, applies the diagnostics gate and
-returns a :class:`SampleResult`; the posterior draws of the whole planet come from the
+:func:`sample` runs NUTS from the convex optimum (nutpie on the numba-compiled log density
+by default, PyMC's own NUTS on request), applies the diagnostics gate and returns a
+:class:`SampleResult`; the posterior draws of the whole planet come from the
 numpy forward model, vectorised over draws (:func:`planet_draws`).
 
 Notes
