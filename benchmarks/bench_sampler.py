@@ -69,7 +69,8 @@ def nuts_line(label: str, res, names: list[str]) -> float:
     ess = az.ess(res.idata, var_names=names, method="bulk")
     ess_min = min(float(np.min(ess[n].values)) for n in names)
     t = res.timing["sampling_seconds"]
-    print(f"{label}: 4 chains x 1000 draws (+1000 tune): sampling {t:.2f} s after "
+    extra = f", mass matrix {res.settings.mass_matrix}" if res.settings.engine == "nutpie" else ""
+    print(f"{label}: 4 chains x 1000 draws (+1000 tune{extra}): sampling {t:.2f} s after "
           f"compilation (compile {res.timing['compile_seconds']:.1f} s); min bulk ESS "
           f"{ess_min:.0f}; {ess_min / t:.1f} ESS/s; gate "
           f"{'passed' if res.passed else 'FAILED'} (R-hat max {res.diagnostics.rhat_max:.4f},"

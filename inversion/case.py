@@ -40,7 +40,7 @@ _ALLOWED: dict[str, set[str]] = {
     "elements": {"exclude"},
     "fit": {"isotope_window_sigma", "cmf_range", "refine"},
     "sampler": {"draws", "tune", "chains", "seed", "target_accept", "cores", "init",
-                "smc_draws", "smc_chains", "engine", "jitter"},
+                "smc_draws", "smc_chains", "engine", "jitter", "mass_matrix"},
 }
 
 

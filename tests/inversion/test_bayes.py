@@ -403,6 +403,11 @@ def test_bad_input_exits_2(tmp_path, capsys):
     assert "at least 2 chains" in capsys.readouterr().err
     assert main(["compare", str(tmp_path / "o")]) == 2
     assert not (tmp_path / "o").exists()
+    with pytest.raises(InputError, match="unknown sampler engine"):
+        bayes.check_sampler_settings({"engine": "stan"}, file="case.toml")
+    with pytest.raises(InputError, match="unknown mass-matrix adaptation"):
+        bayes.check_sampler_settings({"mass_matrix": "dense"}, file="case.toml")
+    assert bayes.check_sampler_settings({"mass_matrix": "low-rank"}).mass_matrix == "low-rank"
 
 
 @pytest.mark.slow
