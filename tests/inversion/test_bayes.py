@@ -95,6 +95,17 @@ def synthetic_run(tmp_path_factory):
             "code": code}
 
 
+def random_points(p, rng: np.random.Generator, n: int):
+    """``n`` random parameter sets (weights, kinked volatility, late fraction, D scattered
+    by 0.3 dex) with the numpy model's log10 N at each: the reference of the twin tests."""
+    for _ in range(n):
+        ww = rng.dirichlet(np.ones(len(p.components)))
+        vol = np.array([rng.uniform(1000, 1500), rng.uniform(0, 0.006)])
+        la = rng.uniform(0, 0.05)
+        D = p.D * 10 ** rng.normal(0, 0.3, p.D.size)
+        yield ww, vol, la, D, forward(p, ww[None], vol[None], la, D=D)["log10N"][0]
+
+
 # --------------------------------------------------------------------------- model twin
 @pytest.mark.parametrize("redox", [False, True])
 def test_pytensor_model_matches_numpy_forward(tmp_path, redox, monkeypatch):
@@ -115,13 +126,7 @@ def test_pytensor_model_matches_numpy_forward(tmp_path, redox, monkeypatch):
     Dv = pt.dvector()
     f = pytensor.function([w, T0, slope, lam, Dv],
                           bayes.model_log10N(p, w, [T0, slope], lam, Dv)["log10N"])
-    rng = np.random.default_rng(11)
-    for _ in range(6):
-        ww = rng.dirichlet(np.ones(3))
-        vol = np.array([rng.uniform(1000, 1500), rng.uniform(0, 0.006)])
-        la = rng.uniform(0, 0.05)
-        D = p.D * 10 ** rng.normal(0, 0.3, p.D.size)
-        ref = forward(p, ww[None], vol[None], la, D=D)["log10N"][0]
+    for ww, vol, la, D, ref in random_points(p, np.random.default_rng(11), 6):
         got = f(ww, vol[0], vol[1], la, D)
         np.testing.assert_allclose(got, ref, rtol=1e-6, atol=1e-8)
 
@@ -150,13 +155,7 @@ def test_numba_compiled_model_matches_numpy_forward(tmp_path, monkeypatch):
                               mode="NUMBA")
     # the kernel is inlined, not run through Python in numba's object mode
     assert not [c for c in caught if "object mode" in str(c.message)]
-    rng = np.random.default_rng(12)
-    for _ in range(4):
-        ww = rng.dirichlet(np.ones(2))
-        vol = np.array([rng.uniform(1000, 1500), rng.uniform(0, 0.006)])
-        la = rng.uniform(0, 0.05)
-        D = p.D * 10 ** rng.normal(0, 0.3, p.D.size)
-        ref = forward(p, ww[None], vol[None], la, D=D)["log10N"][0]
+    for ww, vol, la, D, ref in random_points(p, np.random.default_rng(12), 4):
         got, dT0 = f(ww, vol[0], vol[1], la, D)
         np.testing.assert_allclose(got, ref, rtol=1e-6, atol=1e-8)
         h = 0.05
