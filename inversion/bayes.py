@@ -411,6 +411,18 @@ def _state0(p: Problem) -> np.ndarray:
     return np.array([0.5, 10 ** (-p.dIW / 2.0) * 50.0 / 55.0])
 
 
+def _solve_core(redox: bool, fe: int, level: float, a: np.ndarray, D: np.ndarray,
+                f: np.ndarray, aw: np.ndarray, cations: np.ndarray,
+                s0: np.ndarray | None) -> tuple[np.ndarray, np.ndarray]:
+    from .corekernel import feo_fixed_point, redox_fixed_point
+
+    if redox:
+        start = np.array([0.5, 10 ** (-level / 2.0) * 50.0 / 55.0]) if s0 is None else s0
+        return redox_fixed_point(a, D, f, aw, cations, fe, level,
+                                 np.asarray(start, dtype=float))
+    return feo_fixed_point(a, D, f, fe, level, 0.5 if s0 is None else float(s0[0]))
+
+
 def core_fixed_point(p: Problem, a: np.ndarray, D: np.ndarray, *,
                      s0: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
     """Fixed point of the core step for one bulk ``a`` (n,), and ``inv(I - J)``.
@@ -420,16 +432,11 @@ def core_fixed_point(p: Problem, a: np.ndarray, D: np.ndarray, *,
     the physical range); ``J`` is the step's Jacobian at the fixed point, used by the
     PyMC model's implicit gradient. ``s0`` warm-starts it.
     """
-    from .corekernel import feo_fixed_point, redox_fixed_point
-
-    a = np.ascontiguousarray(a, dtype=float)
-    D = np.ascontiguousarray(D, dtype=float)
-    if p.mantle_Fe is not None:
-        return feo_fixed_point(a, D, p.oxide_factor, p.fe_index, float(p.mantle_Fe),
-                               0.5 if s0 is None else float(s0[0]))
-    s = _state0(p) if s0 is None else np.asarray(s0, float)
-    return redox_fixed_point(a, D, p.oxide_factor, p.atomic_weight, p.cations.astype(float),
-                             p.fe_index, float(p.dIW), s)
+    redox = p.mantle_Fe is None
+    return _solve_core(redox, p.fe_index, float(p.dIW if redox else p.mantle_Fe),
+                       np.ascontiguousarray(a, dtype=float),
+                       np.ascontiguousarray(D, dtype=float), p.oxide_factor, p.atomic_weight,
+                       p.cations.astype(float), s0)
 
 
 def _fixed_point_op(p: Problem):
@@ -474,22 +481,11 @@ def _core_fixed_point_op_class():
             return Apply(self, ins, [pt.dvector(), pt.dmatrix()])
 
         def perform(self, node, inputs, outputs):
-            from .corekernel import feo_fixed_point, redox_fixed_point
-
-            a, D, f, aw, cat = (np.ascontiguousarray(v, dtype=float) for v in inputs)
-
-            def solve(last):
-                if self.redox:
-                    s0 = last if last is not None else np.array(
-                        [0.5, 10 ** (-self.level / 2.0) * 50.0 / 55.0])
-                    return redox_fixed_point(a, D, f, aw, cat, self.fe, self.level, s0)
-                return feo_fixed_point(a, D, f, self.fe, self.level,
-                                       0.5 if last is None else float(last[0]))
-
+            args = [np.ascontiguousarray(v, dtype=float) for v in inputs]
             last = node.tag.__dict__.get("last_state")
-            s, minv = solve(last)
+            s, minv = _solve_core(self.redox, self.fe, self.level, *args, last)
             if last is not None and not (np.all(np.isfinite(s)) and s[0] >= 0):
-                s, minv = solve(None)
+                s, minv = _solve_core(self.redox, self.fe, self.level, *args, None)
             node.tag.last_state = s
             outputs[0][0] = s
             outputs[1][0] = minv
