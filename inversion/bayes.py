@@ -50,7 +50,7 @@ __all__ = ["SamplerSettings", "Diagnostics", "SampleResult", "PRIOR_DISTRIBUTION
            "GATE_RHAT_MAX", "GATE_ESS_BULK_MIN", "GATE_DIVERGENCES_MAX", "CORE_UNROLL",
            "STUDENT_NU", "default_priors", "check_priors", "check_sampler_settings",
            "build_model", "pt_log10_retained", "model_log10N", "sample", "diagnose",
-           "summary_table", "planet_draws", "outliers", "posterior_arrays",
+           "summary_table", "planet_draws", "posterior_planet", "outliers", "posterior_arrays",
            "main_parameters", "compare_runs"]
 
 #: Gate thresholds (Vehtari et al. 2021).
@@ -1112,19 +1112,30 @@ def posterior_arrays(p: Problem, idata: Any) -> dict[str, np.ndarray]:
             "chain": chain.ravel(), "draw": draw.ravel()}
 
 
-def planet_draws(p: Problem, idata: Any) -> pd.DataFrame:
+def posterior_planet(p: Problem, idata: Any, *, planet_mass_kg: float | None = None
+                     ) -> tuple[pd.DataFrame, Any]:
     """Whole-planet quantities per posterior draw (numpy forward model, vectorised).
 
-    Columns: ``chain``, ``draw``, ``mantle_<oxide>_wt`` (wt%), ``core_<element>_wt``
-    (wt%, elements present in the core), ``core_mass_fraction``,
-    ``late_accretion_fraction`` (of the mantle), ``late_accretion_planet_fraction``, and
-    the molar ratios of :data:`inversion.planet.RATIO_NAMES`.
+    Returns
+    -------
+    table : DataFrame
+        ``planet_draws.parquet``: ``chain``, ``draw``, ``mantle_<oxide>_wt`` (wt%),
+        ``core_<element>_wt`` (wt%, elements present in the core),
+        ``core_mass_fraction``, ``late_accretion_fraction`` (of the mantle),
+        ``late_accretion_planet_fraction``, the molar ratios of
+        :data:`inversion.planet.RATIO_NAMES`, and the mantle's radiogenic heat
+        production ``heat_W_per_kg`` (today), ``heat_W_per_kg_<t>Gyr`` (history) and
+        ``heat_total_W`` (with a planet mass).
+    handoff : inversion.handoff.PlanetDraws
+        The same draws in the interior-model hand-off form (``planet.json``).
     """
+    from .handoff import planet_draws as handoff_draws
     from .planet import assemble
 
     d = posterior_arrays(p, idata)
     fwd = forward(p, d["w"], d["vol"], d["lam"], D=d["D"])
     pl = assemble(p, fwd)
+    hand = handoff_draws(p, pl, planet_mass_kg=planet_mass_kg)
     cols: dict[str, np.ndarray] = {"chain": d["chain"], "draw": d["draw"]}
     for j, ox in enumerate(pl["oxides"]):
         cols[f"mantle_{ox}_wt"] = pl["mantle_oxides_wt"][:, j]
@@ -1137,7 +1148,14 @@ def planet_draws(p: Problem, idata: Any) -> pd.DataFrame:
     cols["late_accretion_planet_fraction"] = d["lam"] * (1.0 - pl["cmf"])
     for name, val in pl["ratios"].items():
         cols[name] = np.asarray(val)
-    return pd.DataFrame(cols)
+    cols.update({k: v for k, v in hand.columns(bulk=False).items() if k.startswith("heat_")})
+    return pd.DataFrame(cols), hand
+
+
+def planet_draws(p: Problem, idata: Any, *, planet_mass_kg: float | None = None
+                 ) -> pd.DataFrame:
+    """The table of :func:`posterior_planet` (one row per posterior draw)."""
+    return posterior_planet(p, idata, planet_mass_kg=planet_mass_kg)[0]
 
 
 def outliers(p: Problem, idata: Any, *, threshold: float = 3.0) -> pd.DataFrame:

@@ -26,15 +26,16 @@ def write_sample(out: Path, case: Any, p: Any, result: Any) -> dict[str, Any]:
     from .bayes import (
         main_parameters,
         outliers,
-        planet_draws,
+        posterior_planet,
         summary_table,
     )
+    from .handoff import write_handoff
     from .output import atomic_folder, case_provenance, write_json
 
     idata = result.idata
     names = [n for n in idata.posterior.data_vars if n not in ("mu", "eps_pred")]
     free = [n for n in names if n not in ("x", "cmf")]
-    planet = planet_draws(p, idata)
+    planet, handoff = posterior_planet(p, idata, planet_mass_kg=case.target.planet_mass_kg)
     table = summary_table(idata, names)
     outl = outliers(p, idata)
     diag = result.diagnostics.to_dict()
@@ -70,6 +71,11 @@ def write_sample(out: Path, case: Any, p: Any, result: Any) -> dict[str, Any]:
         outl.to_csv(tmp / "outliers.csv", index=False)
         write_json(tmp / "diagnostics.json", {**diag, "status": status})
         write_json(tmp / "sample.json", data)
+        # the interior-model hand-off (docs/handoff.md); per-draw rows are in the parquet
+        write_handoff(tmp, handoff, draws_csv=False, meta={
+            "title": case.title, "method": "Bayesian posterior (NUTS); intervals are "
+            "posterior quantiles", "status": status, "components": list(p.components),
+            "posterior_draws": len(planet), "provenance": data["provenance"]})
     return data
 
 
@@ -144,7 +150,7 @@ def _sample(parser: argparse.ArgumentParser):
               f"{d['thresholds']['ess_bulk_min']:.0f}), divergences {d['divergences']} "
               "[Vehtari et al. 2021]")
         print(f"  written to {args.out}/posterior.nc, summary.csv, planet_draws.parquet, "
-              "outliers.csv, diagnostics.json, sample.json")
+              "outliers.csv, diagnostics.json, sample.json, planet.json (hand-off)")
         if not result.passed:
             print("  DIAGNOSTICS GATE FAILED; results are marked as failing:")
             for m in result.diagnostics.messages():

@@ -239,7 +239,7 @@ def test_priors_override_and_reject(tmp_path):
 def test_sample_writes_every_file_and_the_gate(synthetic_run):
     out = synthetic_run["out"]
     for name in ("posterior.nc", "summary.csv", "planet_draws.parquet", "outliers.csv",
-                 "diagnostics.json", "sample.json"):
+                 "diagnostics.json", "sample.json", "planet.json"):
         assert (out / name).exists(), name
     diag = json.loads((out / "diagnostics.json").read_text())
     assert set(diag) >= {"rhat_max", "ess_bulk_min", "divergences", "passed", "thresholds"}
@@ -262,6 +262,17 @@ def test_sample_writes_every_file_and_the_gate(synthetic_run):
     assert len(planet) == 600
     assert {"mantle_MgO_wt", "core_Fe_wt", "core_mass_fraction", "Mg/Si_bulk"} <= set(planet)
     np.testing.assert_allclose(planet.filter(like="mantle_").sum(axis=1), 100.0, rtol=1e-9)
+    # the hand-off summarises the same draws (docs/handoff.md), heat production included
+    hand = json.loads((out / "planet.json").read_text())
+    assert hand["n_draws"] == 600
+    assert hand["core_mass_fraction"]["median"] == pytest.approx(
+        np.median(planet["core_mass_fraction"]), rel=1e-12)
+    assert hand["heat_production"]["w_per_kg_mantle"]["median"] == pytest.approx(
+        np.median(planet["heat_W_per_kg"]), rel=1e-12)
+    assert (planet["heat_W_per_kg"] > 0).all() and "heat_W_per_kg_4.5Gyr" in planet
+    # total = W/kg x mantle mass (5.97e24 kg planet, 1 - CMF of it mantle)
+    np.testing.assert_allclose(planet["heat_total_W"], planet["heat_W_per_kg"] * 5.97e24
+                               * (1 - planet["core_mass_fraction"]), rtol=1e-12)
     outl = pd.read_csv(out / "outliers.csv")
     assert {"element", "z", "direction", "residual_dex"} <= set(outl.columns)
     assert (outl["z"].abs() > 3).all()
