@@ -95,7 +95,8 @@ def main() -> None:
 
     settings = bayes.SamplerSettings(draws=1000, tune=1000, chains=4, seed=1)
     res = bayes.sample(p, settings, posterior_predictive=False, log_likelihood=False)
-    names = bayes.parameter_names(bayes.build_model(p, res.priors))
+    model = bayes.build_model(p, res.priors)
+    names = bayes.parameter_names(model)
     ndim = sum(int(np.prod(res.idata.posterior[n].shape[2:])) for n in names)
     print(f"{ndim} parameters")
     rate = nuts_line("NUTS (nutpie)", res, names)
@@ -107,7 +108,6 @@ def main() -> None:
         rate_pm = nuts_line("NUTS (PyMC) ", res_pm, names)
         print(f"ratio nutpie / PyMC NUTS ESS/s: {rate / rate_pm:.1f}")
 
-    model = bayes.build_model(p, res.priors)
     logp = model.compile_logp(mode="NUMBA")
     # start from the same (transformed) optimum as the NUTS chains
     init = res.start["initial_values"][0]

@@ -406,37 +406,23 @@ def _core_step(xp: _XP, p: Problem, a, D, s: list[Any]) -> tuple[list[Any], dict
 
 
 def _state0(p: Problem) -> np.ndarray:
-    if p.mantle_Fe is not None:
-        return np.array([0.5])
-    return np.array([0.5, 10 ** (-p.dIW / 2.0) * 50.0 / 55.0])
+    from .corekernel import start_state
+
+    redox = p.mantle_Fe is None
+    return start_state(redox, float(p.dIW if redox else p.mantle_Fe))
 
 
 def _solve_core(redox: bool, fe: int, level: float, a: np.ndarray, D: np.ndarray,
                 f: np.ndarray, aw: np.ndarray, cations: np.ndarray,
                 s0: np.ndarray | None) -> tuple[np.ndarray, np.ndarray]:
-    from .corekernel import feo_fixed_point, redox_fixed_point
+    """Fixed point of the core step and ``inv(I - J)`` by the compiled kernels of
+    :mod:`inversion.corekernel`; ``s0`` warm-starts it."""
+    from .corekernel import feo_fixed_point, redox_fixed_point, start_state
 
+    s0 = start_state(redox, level) if s0 is None else np.asarray(s0, dtype=float)
     if redox:
-        start = np.array([0.5, 10 ** (-level / 2.0) * 50.0 / 55.0]) if s0 is None else s0
-        return redox_fixed_point(a, D, f, aw, cations, fe, level,
-                                 np.asarray(start, dtype=float))
-    return feo_fixed_point(a, D, f, fe, level, 0.5 if s0 is None else float(s0[0]))
-
-
-def core_fixed_point(p: Problem, a: np.ndarray, D: np.ndarray, *,
-                     s0: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
-    """Fixed point of the core step for one bulk ``a`` (n,), and ``inv(I - J)``.
-
-    Newton's method on ``G(s) - s`` in the compiled kernels of
-    :mod:`inversion.corekernel` (falling back to plain iteration if a Newton step leaves
-    the physical range); ``J`` is the step's Jacobian at the fixed point, used by the
-    PyMC model's implicit gradient. ``s0`` warm-starts it.
-    """
-    redox = p.mantle_Fe is None
-    return _solve_core(redox, p.fe_index, float(p.dIW if redox else p.mantle_Fe),
-                       np.ascontiguousarray(a, dtype=float),
-                       np.ascontiguousarray(D, dtype=float), p.oxide_factor, p.atomic_weight,
-                       p.cations.astype(float), s0)
+        return redox_fixed_point(a, D, f, aw, cations, fe, level, s0)
+    return feo_fixed_point(a, D, f, fe, level, float(s0[0]))
 
 
 def _fixed_point_op(p: Problem):
@@ -503,17 +489,14 @@ def _core_fixed_point_op_class():
     def _numba_core_fixed_point(op, node=None, **kwargs):
         from pytensor.link.numba.dispatch.basic import numba_njit
 
-        from .corekernel import feo_fixed_point, redox_fixed_point
+        from .corekernel import feo_fixed_point, redox_fixed_point, start_state
 
         fe, level = op.fe, op.level
-        d_fe0 = 10 ** (-level / 2.0) * 50.0 / 55.0
         if op.redox:
             @numba_njit
             def core_fixed_point_numba(a, D, f, aw, cations):
-                s0 = np.empty(2)
-                s0[0] = 0.5
-                s0[1] = d_fe0
-                return redox_fixed_point(a, D, f, aw, cations, fe, level, s0)
+                return redox_fixed_point(a, D, f, aw, cations, fe, level,
+                                         start_state(True, level))
         else:
             @numba_njit
             def core_fixed_point_numba(a, D, f, aw, cations):
@@ -895,7 +878,7 @@ def sample(p: Problem, settings: SamplerSettings | None = None, *,
         t_compile = runner.compile_seconds
         idata, inits, t_nuts = runner.run(p, priors, fit, settings, cores=cores,
                                           seed=nuts_seed, jitter_seed=jitter_seed,
-                                          progress=progress, y=y)
+                                          progress=progress)
     else:
         inits = start_points(p, priors, fit, settings.chains,
                              np.random.default_rng(jitter_seed), settings.jitter)
@@ -992,9 +975,11 @@ class _NutpieModel:
             settings: SamplerSettings, *, cores: int, seed: int, jitter_seed: int,
             progress: bool, y: np.ndarray | None = None
             ) -> tuple[Any, list[dict[str, Any]], float]:
-        """NUTS by nutpie; returns the InferenceData (free parameters in the constrained
-        space, the deterministics, the observed data), the start points (in the order of
-        the chain seeds) and the sampling seconds.
+        """NUTS by nutpie, on the model's own observations or on ``y`` (SBC).
+
+        Returns the InferenceData (free parameters in the constrained space, the
+        deterministics, the observed data), the start points (in the order of the chain
+        seeds) and the sampling seconds.
 
         Each chain starts from the convex optimum jittered by a generator seeded with
         ``(jitter_seed, chain seed)``, so that a run is reproducible from its seed
@@ -1026,7 +1011,7 @@ class _NutpieModel:
                               target_accept=settings.target_accept, save_warmup=False,
                               progress_bar=progress, **mass)
         t_nuts = time.perf_counter() - t
-        _add_observed(idata, p, p.y if y is None else y)
+        _add_observed(idata, p, compiled.shared_data["y_data"])
         return idata, [starts[k] for k in sorted(starts)], t_nuts
 
 

@@ -30,10 +30,27 @@ import math
 import numba
 import numpy as np
 
-__all__ = ["feo_fixed_point", "redox_fixed_point", "redox_step"]
+__all__ = ["feo_fixed_point", "redox_fixed_point", "redox_step", "start_state"]
 
 _MAX_ITER = 500
 _RTOL = 1e-13
+#: Start of the core-to-mantle mass ratio k (Earth-like planets have k ~ 0.5).
+K_START = 0.5
+
+
+@numba.njit(cache=True)
+def start_state(redox: bool, level: float) -> np.ndarray:
+    """Start of the fixed-point iteration: ``[k]``, or ``[k, D_Fe]`` for the redox split
+    with ``D_Fe = 10**(-dIW/2) * 50/55`` (mean molar masses of silicate and metal of
+    about 50 and 55 g/mol, the same start as :func:`inversion.model._core_split`)."""
+    if redox:
+        s = np.empty(2)
+        s[0] = K_START
+        s[1] = 10.0 ** (-level / 2.0) * 50.0 / 55.0
+        return s
+    s = np.empty(1)
+    s[0] = K_START
+    return s
 
 
 @numba.njit(cache=True)
@@ -67,7 +84,7 @@ def _feo_g(a: np.ndarray, D: np.ndarray, f: np.ndarray, fe: int, F: float, k: fl
 
 @numba.njit(cache=True)
 def feo_fixed_point(a: np.ndarray, D: np.ndarray, f: np.ndarray, fe: int, F: float,
-                    k0: float = 0.5, max_iter: int = _MAX_ITER, rtol: float = _RTOL
+                    k0: float = K_START, max_iter: int = _MAX_ITER, rtol: float = _RTOL
                     ) -> tuple[np.ndarray, np.ndarray]:
     """Fixed point of the mantle-FeO core split by scalar Newton iteration.
 
