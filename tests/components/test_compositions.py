@@ -103,7 +103,7 @@ def test_recalled_flags_are_booleans_and_groups_are_marked_recalled(lib):
     # the majors of CM, CV and H, which were checked against an attributed (normalised) copy.
     checked = {"Mg", "Al", "Si", "S", "Ca", "Fe"}
     for g in GROUPS:
-        read = set(lib[g].recalled.index[~lib[g].recalled])
+        read = set(lib[g].recalled.index[~lib[g].recalled]) - {"O"}
         assert read == (checked if g in ("CM", "CV", "H") else set()), g
         assert (lib[g].sources[sorted(read)] == "loddersfegley1998").all(), g
     # derived (CI-scaled) rows are never flagged as read
@@ -170,6 +170,13 @@ def test_chondrite_groups_close_with_lithophile_oxygen(lib, name):
     # metal/sulfide) must fall between ~75 wt% (CM: FeO, water and organics missing) and
     # ~103 wt% (a gross unit slip or a wrong major would break this).
     comp = lib[name].composition
+    if "O" in comp.index:
+        # oxygen tabulated (Wasson & Kallemeyn 1988 values via a typed copy; Lodders &
+        # Fegley 1998 copy for CM, CV, CO): the element total itself closes to 100 wt%
+        # within the scatter of mixing two compilations (+-6%).
+        total = comp.sum()
+        assert 0.90 < total < 1.04, total
+        return
     o = 0.0
     for ox in ["SiO2", "MgO", "Al2O3", "CaO", "Na2O", "K2O", "TiO2", "Cr2O3", "MnO"]:
         f = periodictable.formula(ox)

@@ -70,6 +70,21 @@ def test_elements_every_group_holds(lib):
 
 def test_no_group_row_is_left_unsourced(lib):
     allowed = {"loddersfegley1998", "lf1998_unattributed_copy", "wassonkallemeyn1988",
-               "derived_ci_scaled"}
+               "derived_ci_scaled", "typedcopy_trinh_wk", "typedcopy_trinh_md2021"}
     for g in GROUPS:
         assert set(lib[g].sources) <= allowed, g
+
+
+#: Oxygen, wt%. H, L, LL, EH, EL: Wasson & Kallemeyn (1988) Table 1 as given in a typed copy
+#: (source key typedcopy_trinh_wk; the same numbers from memory of the paper). CK, CR: the
+#: Melwani Daswani et al. (2021) compilation in the same copy (typedcopy_trinh_md2021).
+#: CM, CV, CO: the unattributed copy of Lodders & Fegley (1998).
+OXYGEN_WT_PCT = {"H": 35.7, "L": 37.7, "LL": 40.0, "EH": 28.0, "EL": 31.0, "CK": 39.8,
+                 "CR": 39.3, "CM": 43.2, "CV": 37.0, "CO": 37.0}
+
+
+@pytest.mark.parametrize("group", GROUPS)
+def test_oxygen_of_every_group(lib, group):
+    assert lib[group].composition["O"] == pytest.approx(OXYGEN_WT_PCT[group] / 100, rel=1e-9)
+    # oxygen-poor reduced enstatite chondrites < ordinary < carbonaceous CM (common practice)
+    assert lib["EH"].composition["O"] < lib["H"].composition["O"] < lib["CM"].composition["O"]
