@@ -1,13 +1,16 @@
-"""Convex inversion: profile the nonlinear parameters, solve the mixing weights exactly.
+"""Convex inversion: the exact optimum of the whole problem, with its certificate.
 
 For fixed volatility parameters, core-to-mantle mass ratio k and linearisation point, the
 final silicate's ratios to R are linear in the weights u = (building blocks, late
 component) on the simplex, so the weighted least-squares problem with the isotope
 windows, the late-accretion bound and the core-iron budget is a quadratic program
-(:mod:`inversion.qp`). The log-space misfit is handled by Gauss-Newton: each pass
-linearises log10 around the current model, solves the QP exactly, then recomputes k by
-the forward model's fixed point. The volatility parameters are profiled on a grid, then
-on zoomed grids around the best point (variable projection).
+(:mod:`inversion.qp`). That sub-problem, profiled over a grid of the volatility
+parameters, gives the starting points; each start is then polished on the whole
+problem, all parameters together, by :func:`inversion.solver.polish` (which accounts for
+how the weights move k, and refines the volatility parameters continuously). Every
+answer carries an optimality record: the starts, how many reached the best value, and
+the first-order (KKT) residual at the answer. Screening starts every mixture from the
+optima of its subsets as well, so a mixture never fits worse than one it contains.
 """
 
 from __future__ import annotations
@@ -25,13 +28,23 @@ from .case import Case
 from .model import Problem, compile_problem, forward, lam_from_v, relative_log_retained
 from .planet import assemble, planet_table
 from .qp import MAX_ENUMERATED_VARIABLES, solve_batch, solve_cvxpy
+from .solver import (JointSettings, curvature, first_order_residual, kink_boxes, polish,
+                     row_problem)
 from .volatility import get_form
 
 __all__ = ["FitResult", "fit", "fit_problem", "screen", "Ranking", "FitSettings",
-           "SCREEN_SETTINGS", "STATUS_OPTIMAL", "STATUS_INFEASIBLE"]
+           "SCREEN_SETTINGS", "STATUS_OPTIMAL", "STATUS_UNVERIFIED", "STATUS_INFEASIBLE",
+           "STATUSES"]
 
+#: Statuses of a fit: ``optimal`` (at least two distinct starts reached the best chi2
+#: within the agreement tolerance and the first-order residual is below its tolerance),
+#: ``optimal_unverified`` (the best value found, but the starts disagree or the
+#: first-order residual is large), ``infeasible`` (no parameter set meets the
+#: constraints; ``reasons`` names them).
 STATUS_OPTIMAL = "optimal"
+STATUS_UNVERIFIED = "optimal_unverified"
 STATUS_INFEASIBLE = "infeasible"
+STATUSES = (STATUS_OPTIMAL, STATUS_UNVERIFIED, STATUS_INFEASIBLE)
 _LN10 = math.log(10.0)
 
 
@@ -39,15 +52,35 @@ _LN10 = math.log(10.0)
 class FitSettings:
     """Settings of the convex inversion (recorded in every result)."""
 
-    passes: int = 5
-    zoom_levels: int = 6
-    zoom_points: int = 5
-    solver: str = "active-set enumeration (exact); cvxpy/CLARABEL above 7 variables"
+    passes: int = 3
+    starts: int = 4
+    agreement: float = 1e-5
+    kkt_tolerance: float = 1e-4
+    cmf_range: tuple[float, float] | None = None
+    intervals: bool = True
+    joint: JointSettings = field(default_factory=JointSettings)
+    solver: str = ("profile: k-frozen Gauss-Newton with the exact simplex QP (active-set "
+                   "enumeration; cvxpy/CLARABEL above 7 variables) on the volatility grid; "
+                   "polish: Levenberg-Marquardt on all parameters (finite-difference "
+                   "Jacobian through the core fixed point, exact QP steps)")
+
+    @property
+    def record(self) -> dict[str, Any]:
+        """JSON-ready view (``fit.json`` provenance)."""
+        return {"method": self.solver, "profile_passes": self.passes,
+                "polished_starts": self.starts, "agreement_relative": self.agreement,
+                "kkt_tolerance_chi2": self.kkt_tolerance,
+                "cmf_range": list(self.cmf_range) if self.cmf_range else None,
+                "joint": {"max_iterations": self.joint.max_iterations,
+                          "tolerance": self.joint.tolerance,
+                          "constraint_tolerance": self.joint.constraint_tolerance,
+                          "fd_step_weights": self.joint.fd_step_weights,
+                          "fd_step_volatility_of_span": self.joint.fd_step_volatility}}
 
 
-#: Coarser profile used when screening many hypotheses (the best ones are then re-fitted
-#: with the default settings by ``planetmix fit``).
-SCREEN_SETTINGS = FitSettings(passes=3, zoom_levels=2)
+#: Screening uses the same solver as ``planetmix fit`` (the ranking must not depend on
+#: coarser settings); only the curvature intervals are left out.
+SCREEN_SETTINGS = FitSettings(intervals=False)
 
 
 @dataclass(frozen=True)
@@ -76,6 +109,14 @@ class FitResult:
     reasons: tuple[str, ...] = ()
     isotopes: dict[str, float] = field(default_factory=dict)
     settings: FitSettings = field(default_factory=FitSettings)
+    optimality: dict[str, Any] = field(default_factory=dict)
+    intervals: dict[str, Any] = field(default_factory=dict)
+    u: tuple[float, ...] = ()
+
+    @property
+    def feasible(self) -> bool:
+        """Whether the fit found parameters that meet every constraint."""
+        return self.status != STATUS_INFEASIBLE
 
     @property
     def aic(self) -> float:
@@ -96,6 +137,11 @@ class FitResult:
                                "core_mass_fraction": self.core_mass_fraction}
         row.update({f"w_{k}": v for k, v in self.weights.items()})
         row.update({f"{self.volatility_form}_{k}": v for k, v in self.volatility.items()})
+        o = self.optimality
+        row.update({"optimality_starts": o.get("starts"),
+                    "optimality_agreeing": o.get("agreeing"),
+                    "optimality_kkt_residual": o.get("kkt_residual"),
+                    "optimality_worst_start_chi2": o.get("worst_start_chi2")})
         return pd.DataFrame([row])
 
 
@@ -220,83 +266,165 @@ def _grid(form: str) -> np.ndarray:
     return np.array(list(itertools.product(*f.grid)), dtype=float)
 
 
-def _zoom(form: str, centre: np.ndarray, step: np.ndarray, n: int) -> np.ndarray:
-    """A fixed-size grid of n**p points around ``centre`` (clipped to the bounds)."""
-    f = get_form(form)
-    axes = []
-    for c, s, lo, hi in zip(centre, step, f.lower, f.upper, strict=True):
-        axes.append(np.clip(np.linspace(c - s, c + s, n), lo, hi))
-    return np.array(list(itertools.product(*axes)))
-
-
-def _grid_steps(form: str) -> np.ndarray:
-    f = get_form(form)
-    return np.array([np.max(np.diff(g)) if len(g) > 1 else 1.0 for g in f.grid])
-
-
 #: Rows (hypotheses x profile points) solved together in one batch.
 _BATCH_ROWS = 3000
 
 
-def _profile_many(p: Problem, subsets: list[tuple[str, ...]], settings: FitSettings
+def _profile_grid(p: Problem, subsets: list[tuple[str, ...]], settings: FitSettings
                   ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Profile the volatility parameters of many equal-size hypotheses at once.
+    """The k-frozen profile of many equal-size hypotheses on the volatility grid.
 
-    Returns, per hypothesis, all profile points (H, P, p), their chi2 (H, P) and
-    weights (H, P, m).
+    Returns the grid (G, p), chi2 (H, G) and weights (H, G, m) of every hypothesis.
     """
-    form = p.volatility_form
+    grid = _grid(p.volatility_form)
+    G = grid.shape[0]
     H = len(subsets)
+    per = max(1, _BATCH_ROWS // G)
+    chis, us = [], []
+    for s in range(0, H, per):
+        sub = subsets[s:s + per]
+        ps = p.stacked(sub, G)
+        r = _profile_points(ps, np.tile(grid, (len(sub), 1)), settings.passes)
+        chis.append(r["chi2"].reshape(len(sub), G))
+        us.append(r["u"].reshape(len(sub), G, -1))
+    return grid, np.concatenate(chis), np.concatenate(us)
 
-    def run(points: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        # points: (H, G, p) -> chi2 (H, G), u (H, G, m)
-        G = points.shape[1]
-        per = max(1, _BATCH_ROWS // G)
-        chis, us = [], []
-        for s in range(0, H, per):
-            sub = subsets[s:s + per]
-            ps = p.stacked(sub, G)
-            r = _profile_points(ps, points[s:s + per].reshape(-1, points.shape[2]),
-                                settings.passes)
-            chis.append(r["chi2"].reshape(len(sub), G))
-            us.append(r["u"].reshape(len(sub), G, -1))
-        return np.concatenate(chis), np.concatenate(us)
 
-    grid = _grid(form)
-    pts = np.broadcast_to(grid, (H,) + grid.shape).copy()
-    chi, us = run(pts)
-    all_pts, all_chi, all_u = [pts], [chi], [us]
-    step = _grid_steps(form)
-    for _level in range(settings.zoom_levels):
-        P = np.concatenate(all_pts, axis=1)
-        C = np.concatenate(all_chi, axis=1)
-        if not np.isfinite(C).any():
+def _distinct_starts(grid: np.ndarray, chi: np.ndarray, n: int, form: str) -> list[int]:
+    """Indices of the ``n`` best grid points that lie apart from each other (normalised
+    distance > 0.1 of the parameter box), best first."""
+    f = get_form(form)
+    span = np.array(f.upper) - np.array(f.lower)
+    order = [j for j in np.argsort(chi) if np.isfinite(chi[j])]
+    out: list[int] = []
+    for j in order:
+        if all(np.linalg.norm((grid[j] - grid[i]) / span) > 0.1 for i in out):
+            out.append(int(j))
+        if len(out) == n:
             break
-        j = np.argmin(np.where(np.isfinite(C), C, np.inf), axis=1)
-        centres = P[np.arange(H), j]
-        step = step / 2.0
-        z = np.stack([_zoom(form, c, step, settings.zoom_points) for c in centres])
-        chi, us = run(z)
-        all_pts.append(z)
-        all_chi.append(chi)
-        all_u.append(us)
-    return (np.concatenate(all_pts, axis=1), np.concatenate(all_chi, axis=1),
-            np.concatenate(all_u, axis=1))
+    return out
 
 
-def _result(p: Problem, pts: np.ndarray, chi: np.ndarray, us: np.ndarray,
-            settings: FitSettings) -> FitResult:
-    """Build the FitResult of one hypothesis from its profile."""
+@dataclass(frozen=True)
+class _Start:
+    """A starting point of the joint polish and where it came from."""
+
+    u: np.ndarray
+    theta: np.ndarray
+    origin: str
+
+
+def _solve_group(p: Problem, subsets: list[tuple[str, ...]], settings: FitSettings,
+                 extra: list[list[_Start]] | None = None) -> list[dict[str, Any]]:
+    """Solve equal-size hypotheses: profile starts plus ``extra`` starts, polished jointly.
+
+    Returns one record per hypothesis: the best (u, theta, chi2), the optimality record
+    and the feasibility of the profile.
+    """
+    grid, chi, us = _profile_grid(p, subsets, settings)
+    starts: list[list[_Start]] = []
+    for h in range(len(subsets)):
+        mine = [_Start(us[h, j], grid[j], f"profile grid point {grid[j].round(6).tolist()}")
+                for j in _distinct_starts(grid, chi[h], settings.starts, p.volatility_form)]
+        if extra is not None:
+            mine += extra[h]
+        starts.append(mine)
+    rows = np.array([h for h, st in enumerate(starts) for _ in st], dtype=int)
+    if rows.size == 0:
+        return [{"feasible": False} for _ in subsets]
+    ps = row_problem(p.stacked(subsets, 1), rows)
+    U0 = np.array([s.u for st in starts for s in st])
+    T0 = np.array([s.theta for st in starts for s in st])
+    pol = polish(ps, U0, T0, settings=settings.joint, cmf_range=settings.cmf_range)
+    form = get_form(p.volatility_form)
+    B = rows.size
+    box_lo = np.broadcast_to(np.array(form.lower, float), (B, len(form.params))).copy()
+    box_hi = np.broadcast_to(np.array(form.upper, float), (B, len(form.params))).copy()
+    if "T0" in form.params:
+        # second stage: the misfit is only piecewise smooth in the kink of the volatility
+        # form; polish every answer again on the smooth pieces around it, so that a
+        # corner optimum is reached exactly (as a bound of a smooth piece)
+        src, lo2, hi2 = [], [], []
+        for i in range(B):
+            if not np.isfinite(pol["chi2"][i]):
+                continue
+            for lo, hi in kink_boxes(ps, pol["TH"][i]):
+                src.append(i)
+                lo2.append(lo)
+                hi2.append(hi)
+        if src:
+            src_a = np.array(src)
+            lo2a, hi2a = np.array(lo2), np.array(hi2)
+            pol2 = polish(row_problem(ps, src_a), pol["U"][src_a],
+                          np.clip(pol["TH"][src_a], lo2a, hi2a), settings=settings.joint,
+                          cmf_range=settings.cmf_range, bounds=(lo2a, hi2a))
+            for q, i in enumerate(src_a):
+                if pol2["chi2"][q] <= pol["chi2"][i]:
+                    pol["chi2"][i] = pol2["chi2"][q]
+                    pol["U"][i] = pol2["U"][q]
+                    pol["TH"][i] = pol2["TH"][q]
+                    box_lo[i], box_hi[i] = lo2a[q], hi2a[q]
+                pol["iterations"][i] += pol2["iterations"][q]
+    out: list[dict[str, Any]] = []
+    best_rows = []
+    for h in range(len(subsets)):
+        sel = np.flatnonzero(rows == h)
+        if sel.size == 0 or not np.isfinite(pol["chi2"][sel]).any():
+            out.append({"feasible": False})
+            best_rows.append(-1)
+            continue
+        c = pol["chi2"][sel]
+        j = sel[int(np.argmin(c))]
+        best = float(pol["chi2"][j])
+        # distinct starts only (an extra start may repeat a grid start)
+        uniq: dict[tuple, int] = {}
+        for i in sel:
+            key = (tuple(np.round(U0[i], 12)), tuple(np.round(T0[i], 12)))
+            uniq.setdefault(key, i)
+        distinct = list(uniq.values())
+        tol = settings.agreement * max(abs(best), 1.0)
+        agree = [i for i in distinct if np.isfinite(pol["chi2"][i])
+                 and pol["chi2"][i] - best <= tol]
+        finite = [pol["chi2"][i] for i in distinct if np.isfinite(pol["chi2"][i])]
+        out.append({
+            "feasible": True, "u": pol["U"][j].copy(), "theta": pol["TH"][j].copy(),
+            "chi2": best, "box": (box_lo[j], box_hi[j]),
+            "optimality": {
+                "starts": len(distinct), "agreeing": len(agree),
+                "agreement_tolerance_relative": settings.agreement,
+                "worst_start_chi2": float(max(finite)) if finite else None,
+                "best_start": starts[h][int(np.argmin(c))].origin,
+                "start_chi2": [float(pol["start_chi2"][i]) for i in distinct],
+                "final_chi2": [float(pol["chi2"][i]) for i in distinct],
+                "iterations": int(pol["iterations"][j])}})
+        best_rows.append(j)
+    # first-order residual at every answer, in one batch, on the smooth piece it lies in
+    done = [h for h, j in enumerate(best_rows) if j >= 0]
+    if done:
+        idx = np.array([best_rows[h] for h in done])
+        kkt = first_order_residual(row_problem(ps, idx), pol["U"][idx], pol["TH"][idx],
+                                   settings=settings.joint, cmf_range=settings.cmf_range,
+                                   bounds=(box_lo[idx], box_hi[idx]))
+        for h, val in zip(done, kkt, strict=True):
+            rec = out[h]["optimality"]
+            rec["kkt_residual"] = float(val)
+            rec["kkt_tolerance"] = settings.kkt_tolerance
+            ok = rec["agreeing"] >= 2 and np.isfinite(val) and val <= settings.kkt_tolerance
+            rec["status"] = STATUS_OPTIMAL if ok else STATUS_UNVERIFIED
+    return out
+
+
+def _result(p: Problem, rec: dict[str, Any], settings: FitSettings) -> FitResult:
+    """Build the FitResult of one hypothesis from its solved record."""
     form = p.volatility_form
     K = p.Q.shape[0]
     has_late = p.late_name is not None
     n_params = (K - 1) + len(get_form(form).params) + (1 if has_late else 0)
     names = list(p.components)
-    if not np.isfinite(chi).any():
-        return _infeasible(p, pts[0], n_params, settings)
-    j = int(np.argmin(chi))
-    u = us[j]
-    vol = pts[j]
+    if not rec.get("feasible"):
+        return _infeasible(p, n_params, settings)
+    u = rec["u"]
+    vol = rec["theta"]
     w = u[:K] / u[:K].sum()
     v = float(u[K]) if has_late else 0.0
     fwd0 = forward(p, w[None], vol[None], 0.0)
@@ -304,44 +432,135 @@ def _result(p: Problem, pts: np.ndarray, chi: np.ndarray, us: np.ndarray,
     fwd = forward(p, w[None], vol[None], lam)
     resid = _residual_table(p, fwd)
     iso_pred = _isotope_prediction(p, w, v)
+    intervals = _intervals(p, u, vol, settings, rec.get("box")) if settings.intervals else {}
     return FitResult(
-        status=STATUS_OPTIMAL, components=tuple(names),
+        status=rec["optimality"]["status"], components=tuple(names),
         weights=dict(zip(names, map(float, w), strict=True)),
         mass_fractions=dict(zip(names, map(float, fwd["x"][0]), strict=True)),
         volatility_form=form,
         volatility=dict(zip(get_form(form).params, map(float, vol), strict=True)),
         late_weight=v, late_accretion_fraction=lam,
         core_mass_fraction=float(fwd["cmf"][0]), k=float(fwd["k"][0]),
-        chi2=float(chi[j]), n_elements=p.n_fit, n_params=n_params, residuals=resid,
+        chi2=float(rec["chi2"]), n_elements=p.n_fit, n_params=n_params, residuals=resid,
         predicted=pd.Series(fwd["log10N"][0], index=list(p.elements), name="log10N"),
-        isotopes=iso_pred, settings=settings,
+        isotopes=iso_pred, settings=settings, optimality=rec["optimality"],
+        intervals=intervals, u=tuple(map(float, u)),
     )
 
 
-def fit_problem(p: Problem, settings: FitSettings | None = None) -> FitResult:
+def _derived(p: Problem, U: np.ndarray, TH: np.ndarray) -> dict[str, np.ndarray]:
+    """Reported quantities as functions of (u, theta), batched (for the delta method)."""
+    K = p.Q.shape[-2]
+    has_late = p.late_name is not None
+    sK = U[:, :K].sum(axis=1, keepdims=True)
+    w = U[:, :K] / sK
+    fwd = forward(p, w, TH, 0.0)
+    out: dict[str, np.ndarray] = {}
+    for k, c in enumerate(p.components):
+        out[f"weight:{c}"] = w[:, k]
+        out[f"mass_fraction:{c}"] = fwd["x"][:, k]
+    for j, n in enumerate(get_form(p.volatility_form).params):
+        out[f"volatility:{n}"] = TH[:, j]
+    if has_late:
+        out["late_accretion_fraction"] = lam_from_v(p, U[:, K], fwd["M_s"])
+    out["core_mass_fraction"] = fwd["cmf"]
+    return out
+
+
+def _intervals(p: Problem, u: np.ndarray, th: np.ndarray, settings: FitSettings,
+               box: tuple[np.ndarray, np.ndarray] | None = None) -> dict[str, Any]:
+    """Laplace intervals of the reported quantities at the optimum (delta method)."""
+    cov, _J, N, active = curvature(p, u, th, settings=settings.joint,
+                                   cmf_range=settings.cmf_range, bounds=box)
+    z = np.concatenate([u, th])
+    n = z.size
+    f = get_form(p.volatility_form)
+    span = np.concatenate([np.ones(u.size), np.array(f.upper) - np.array(f.lower)])
+    h = 1e-6 * span
+    Zp = np.repeat(z[None], 2 * n, axis=0)
+    Zp[np.arange(n), np.arange(n)] += h
+    Zp[n + np.arange(n), np.arange(n)] -= h
+    m = u.size
+    d_plus = _derived(p, Zp[:n, :m], Zp[:n, m:])
+    d_minus = _derived(p, Zp[n:, :m], Zp[n:, m:])
+    d0 = _derived(p, u[None], th[None])
+    bounded = {"weight", "mass_fraction", "late_accretion_fraction", "core_mass_fraction"}
+    out: dict[str, Any] = {}
+    for key, val in d0.items():
+        g = (d_plus[key] - d_minus[key]) / (2 * h)
+        var = float(g @ cov @ g)
+        sd = math.sqrt(max(var, 0.0))
+        v = float(val[0])
+        lo, hi = v - 1.959964 * sd, v + 1.959964 * sd
+        if key.split(":")[0] in bounded:
+            lo, hi = max(lo, 0.0), min(hi, 1.0)
+        out[key] = {"value": v, "sd": sd, "p2.5": lo, "p97.5": hi}
+    return {"method": "Laplace approximation: Gauss-Newton curvature of chi2 on the free "
+                      "directions of the active constraints, delta method for derived "
+                      "quantities; 95% = value +- 1.96 sd, clipped to the physical range; "
+                      "not rescaled by chi2 per degree of freedom; a quantity fixed by an "
+                      "active constraint has zero width",
+            "free_directions": int(N.shape[1]), "active_constraints": active,
+            "quantities": out}
+
+
+def fit_problem(p: Problem, settings: FitSettings | None = None, *,
+                starts: list[FitResult] | None = None) -> FitResult:
     """Fit one hypothesis (the problem's building blocks plus its late component).
+
+    Starts: the best distinct points of the volatility profile, the optimum of each
+    single building block (so a mixture never fits worse than any of its blocks alone),
+    and ``starts`` (earlier fits of the same problem or of its sub-mixtures).
 
     Parameters
     ----------
     p : Problem
         A compiled problem (see :func:`inversion.model.compile_problem`).
     settings : FitSettings, optional
+    starts : list of FitResult, optional
+        Further starting points (their weights are mapped by block name; blocks they
+        lack start at zero).
 
     Returns
     -------
     FitResult
     """
     settings = settings or FitSettings()
-    pts, chi, us = _profile_many(p, [p.components], settings)
-    return _result(p, pts[0], chi[0], us[0], settings)
+    names = list(p.components)
+    extra: list[_Start] = []
+    if len(names) > 1:
+        singles = _solve_group(p, [(c,) for c in names], replace(settings, starts=2))
+        for c, rec in zip(names, singles, strict=True):
+            if rec.get("feasible"):
+                extra.append(_Start(_pad(p, (c,), rec["u"]), rec["theta"],
+                                    f"optimum of {c} alone"))
+    for r in starts or []:
+        if r.feasible and r.u:
+            extra.append(_Start(_pad(p, r.components, np.array(r.u)),
+                                np.array(list(r.volatility.values())),
+                                f"earlier fit of {'+'.join(r.components)}"))
+    rec = _solve_group(p, [tuple(names)], settings, [extra])[0]
+    return _result(p, rec, settings)
 
 
-def _fit_group(args: tuple[Problem, list[tuple[str, ...]], FitSettings]) -> list[FitResult]:
+def _pad(p: Problem, sub: tuple[str, ...], u_sub: np.ndarray) -> np.ndarray:
+    """Weights of a sub-mixture as a starting point of ``p`` (absent blocks at zero)."""
+    K = len(p.components)
+    has_late = p.late_name is not None
+    u = np.zeros(K + has_late)
+    for j, c in enumerate(sub):
+        u[p.components.index(c)] = u_sub[j]
+    if has_late:
+        u[K] = u_sub[len(sub)]
+    return u
+
+
+def _fit_group(args: tuple[Problem, list[tuple[str, ...]], FitSettings,
+                           list[list[_Start]]]) -> list[FitResult]:
     """Fit equal-size hypotheses together (one worker's share of a screen)."""
-    p, subsets, settings = args
-    pts, chi, us = _profile_many(p, subsets, settings)
-    return [_result(p.subset(s), pts[i], chi[i], us[i], settings)
-            for i, s in enumerate(subsets)]
+    p, subsets, settings, extra = args
+    recs = _solve_group(p, subsets, settings, extra)
+    return [_result(p.subset(s), rec, settings) for s, rec in zip(subsets, recs, strict=True)]
 
 
 def _isotope_prediction(p: Problem, w: np.ndarray, v: float) -> dict[str, float]:
@@ -373,7 +592,9 @@ def _residual_table(p: Problem, fwd: dict[str, np.ndarray], row: int = 0) -> pd.
     return df
 
 
-def _infeasible(p: Problem, vol: np.ndarray, n_params: int, settings: FitSettings) -> FitResult:
+def _infeasible(p: Problem, n_params: int, settings: FitSettings) -> FitResult:
+    grid = _grid(p.volatility_form)
+    vol = grid[len(grid) // 2]
     reasons = []
     for iso in p.isotopes:
         lo, hi = iso["range"]
@@ -410,12 +631,14 @@ def _infeasible(p: Problem, vol: np.ndarray, n_params: int, settings: FitSetting
 
 
 def fit(case: Case, settings: FitSettings | None = None) -> FitResult:
-    """Fit a case with all its candidates together.
+    """Fit a case with all its candidates together (the case's ``[fit] cmf_range`` is
+    imposed unless ``settings`` say otherwise).
 
     Examples
     --------
     See ``case_studies/`` and the README for complete runs.
     """
+    settings = settings or FitSettings(cmf_range=case.cmf_range)
     return fit_problem(compile_problem(case), settings)
 
 
@@ -436,43 +659,57 @@ def screen(case: Case, *, settings: FitSettings | None = None, workers: int = 1,
     """Fit every subset of the candidates up to ``case.max_mixture_size`` and rank them.
 
     Every hypothesis uses the same elements (those all candidates hold), so chi2, AIC
-    and BIC compare across hypotheses. Hypotheses of equal size are profiled together,
-    stacked on the batch axis of the exact QP solver.
+    and BIC compare across hypotheses. Hypotheses are solved by size, smallest first;
+    each starts from its own profile and from the optima of all its subsets one block
+    smaller (each a feasible point of it), so chi2 of a mixture is never above that of
+    a mixture it contains. Hypotheses of equal size are solved together, stacked on the
+    batch axis.
 
     Parameters
     ----------
     case : Case
     settings : FitSettings, optional
-        Defaults to :data:`SCREEN_SETTINGS`.
+        Defaults to :data:`SCREEN_SETTINGS` (the fit's solver, without intervals).
     workers : int
         Processes to use (1 = in this process).
     progress : bool
         Show a progress bar on standard error.
     """
-    settings = settings or SCREEN_SETTINGS
+    settings = settings or replace(SCREEN_SETTINGS, cmf_range=case.cmf_range)
     p = compile_problem(case)
     names = list(p.components)
-    jobs = []
-    chunk = 12  # hypotheses per job: large enough to batch, small enough to spread
-    for r in range(1, case.max_mixture_size + 1):
-        subs = list(itertools.combinations(names, r))
-        for s in range(0, len(subs), chunk):
-            jobs.append((p, subs[s:s + chunk], settings))
     from tqdm.auto import tqdm
 
-    total = sum(len(j[1]) for j in jobs)
+    total = sum(math.comb(len(names), r) for r in range(1, case.max_mixture_size + 1))
     bar = tqdm(total=total, desc="hypotheses", disable=not progress, unit="fit")
     fits: list[FitResult] = []
-    if workers > 1:
-        with ProcessPoolExecutor(max_workers=workers) as ex:
-            for res in ex.map(_fit_group, jobs):
+    solved: dict[tuple[str, ...], FitResult] = {}
+    chunk = 24  # hypotheses per job: large enough to batch, small enough to spread
+    ex = ProcessPoolExecutor(max_workers=workers) if workers > 1 else None
+    try:
+        for r in range(1, case.max_mixture_size + 1):
+            subs = list(itertools.combinations(names, r))
+            extra = []
+            for s in subs:
+                mine = []
+                for sub in itertools.combinations(s, r - 1):
+                    f = solved.get(sub)
+                    if f is not None and f.feasible:
+                        mine.append(_Start(_pad(p.subset(s), sub, np.array(f.u)),
+                                           np.array(list(f.volatility.values())),
+                                           f"optimum of {'+'.join(sub)}"))
+                extra.append(mine)
+            jobs = [(p, subs[i:i + chunk], settings, extra[i:i + chunk])
+                    for i in range(0, len(subs), chunk)]
+            results = ex.map(_fit_group, jobs) if ex is not None else map(_fit_group, jobs)
+            for res in results:
+                for f in res:
+                    solved[f.components] = f
                 fits.extend(res)
                 bar.update(len(res))
-    else:
-        for job in jobs:
-            res = _fit_group(job)
-            fits.extend(res)
-            bar.update(len(res))
+    finally:
+        if ex is not None:
+            ex.shutdown()
     bar.close()
     table = pd.concat([f.to_dataframe() for f in fits], ignore_index=True)
     table["n_components"] = [len(f.components) for f in fits]

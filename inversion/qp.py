@@ -24,7 +24,8 @@ import numpy as np
 
 from .exceptions import SolverError
 
-__all__ = ["solve_batch", "solve_cvxpy", "QPSolution", "MAX_ENUMERATED_VARIABLES"]
+__all__ = ["solve_batch", "solve_quadratic_batch", "solve_cvxpy", "QPSolution",
+           "MAX_ENUMERATED_VARIABLES"]
 
 #: Above this many variables, :func:`solve_batch` is not used (enumeration grows as 2^m).
 MAX_ENUMERATED_VARIABLES = 7
@@ -34,12 +35,15 @@ _FEAS_TOL = 1e-9
 class QPSolution:
     """Solutions of a batch: ``u`` (B, m), ``objective`` (B,), ``feasible`` (B,) bool."""
 
-    __slots__ = ("u", "objective", "feasible")
+    __slots__ = ("u", "objective", "feasible", "active")
 
-    def __init__(self, u: np.ndarray, objective: np.ndarray, feasible: np.ndarray) -> None:
+    def __init__(self, u: np.ndarray, objective: np.ndarray, feasible: np.ndarray,
+                 active: np.ndarray | None = None) -> None:
         self.u = u
         self.objective = objective
         self.feasible = feasible
+        #: (B, m + g) bool: the active inequalities (``u >= 0`` rows first) at the answer
+        self.active = active
 
 
 @lru_cache(maxsize=64)
@@ -79,9 +83,104 @@ def solve_batch(A: np.ndarray, b: np.ndarray, G: np.ndarray | None = None,
     """
     A = np.asarray(A, dtype=float)
     b = np.asarray(b, dtype=float)
-    B, n, m = A.shape
-    if m > MAX_ENUMERATED_VARIABLES:
-        raise SolverError(f"{m} variables is too many for enumeration; use solve_cvxpy")
+    H = np.einsum("bni,bnj->bij", A, A)
+    c = np.einsum("bni,bn->bi", A, b)
+    const = np.einsum("bn,bn->b", b, b)
+    m = A.shape[2]
+    g = 0 if G is None else np.shape(G)[1]
+    # active-set iterations from the bare simplex, enumeration where they do not verify
+    return solve_quadratic_batch(H, c, const, G, h,
+                                 guess=np.zeros((A.shape[0], m + g), dtype=bool))
+
+
+def _kkt_fixed(H: np.ndarray, c: np.ndarray, Gall: np.ndarray, hall: np.ndarray,
+               act: np.ndarray, hscale: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Solve the equality-constrained problem on the active sets ``act`` (B, g) of every
+    row at once; inactive rows get a zero multiplier. Returns u (B, m), multipliers
+    (B, g)."""
+    B, m, _ = H.shape
+    g = Gall.shape[1]
+    k = m + 1 + g
+    K = np.zeros((B, k, k))
+    rhs = np.zeros((B, k))
+    K[:, :m, :m] = H
+    K[:, m, :m] = 1.0
+    K[:, :m, m] = 1.0
+    rows = Gall * act[:, :, None]
+    K[:, m + 1:, :m] = rows
+    K[:, :m, m + 1:] = np.swapaxes(rows, 1, 2)
+    diag = np.arange(m + 1, k)
+    K[:, diag, diag] = np.where(act, -1e-13 / hscale[:, None], 1.0)
+    K[:, m, m] = -1e-13 / hscale
+    rhs[:, :m] = c
+    rhs[:, m] = 1.0
+    rhs[:, m + 1:] = np.where(act, hall, 0.0)
+    try:
+        sol = np.linalg.solve(K, rhs[..., None])[..., 0]
+    except np.linalg.LinAlgError:
+        sol = np.einsum("bij,bj->bi", np.linalg.pinv(K), rhs)
+    return sol[:, :m], sol[:, m + 1:]
+
+
+def _active_set_iterations(H, c, Gall, hall, act, hscale, max_iter: int = 40):
+    """Primal-dual active-set iterations from ``act``: add the most violated inequality,
+    drop the most negative multiplier, until the KKT conditions hold (exact optimum of
+    the convex problem) or ``max_iter`` is reached. Returns u, active sets and the mask
+    of rows whose KKT conditions were verified."""
+    B = H.shape[0]
+    act = act.copy()
+    done = np.zeros(B, dtype=bool)
+    u = np.full((B, H.shape[1]), np.nan)
+    for _ in range(max_iter):
+        todo = np.flatnonzero(~done)
+        if todo.size == 0:
+            break
+        uu, mu = _kkt_fixed(H[todo], c[todo], Gall[todo], hall[todo], act[todo],
+                            hscale[todo])
+        slack = np.einsum("bgm,bm->bg", Gall[todo], uu) - hall[todo]
+        viol = np.where(act[todo], -np.inf, slack)
+        worst = np.argmax(viol, axis=1)
+        vmax = viol[np.arange(todo.size), worst]
+        mneg = np.where(act[todo], mu, np.inf)
+        least = np.argmin(mneg, axis=1)
+        mmin = mneg[np.arange(todo.size), least]
+        primal_ok = ~(vmax > _FEAS_TOL * (1.0 + np.abs(hall[todo]).max(axis=1)))
+        dual_ok = ~(mmin < -1e-10 * (1.0 + np.abs(mu).max(axis=1)))
+        fin = np.all(np.isfinite(uu), axis=1)
+        ok = primal_ok & dual_ok & fin & (np.abs(uu.sum(axis=1) - 1.0) < 1e-7)
+        u[todo[ok]] = uu[ok]
+        done[todo[ok]] = True
+        add = ~primal_ok & fin
+        drop = primal_ok & ~dual_ok & fin
+        act[todo[add], worst[add]] = True
+        act[todo[drop], least[drop]] = False
+        stuck = ~fin
+        done[todo[stuck]] = False
+        if stuck.all():
+            break
+    return u, act, done
+
+
+def solve_quadratic_batch(H: np.ndarray, c: np.ndarray, const: np.ndarray,
+                          G: np.ndarray | None = None, h: np.ndarray | None = None, *,
+                          guess: np.ndarray | None = None) -> QPSolution:
+    """Exact minimisation of ``u' H u - 2 c' u + const`` on the simplex with ``G u <= h``.
+
+    The same active-set enumeration as :func:`solve_batch`, for a quadratic form given
+    directly (``H`` symmetric positive semi-definite, shape (B, m, m); ``c`` (B, m);
+    ``const`` (B,)). The joint solver of :mod:`inversion.solver` uses it for its
+    linearised steps, whose quadratic form is not built from a plain design matrix.
+
+    ``guess`` (B, m + g) bool, an active set per row (for instance the one of the
+    previous step), starts primal-dual active-set iterations; a row whose KKT
+    conditions (primal and dual feasibility) are verified has its exact optimum (the
+    problem is convex). Rows that are not verified, and every row without a guess, are
+    solved by enumeration (up to :data:`MAX_ENUMERATED_VARIABLES` variables).
+    """
+    H = np.asarray(H, dtype=float)
+    c = np.asarray(c, dtype=float)
+    const = np.asarray(const, dtype=float)
+    B, m, _ = H.shape
     if G is None:
         G = np.zeros((B, 0, m))
         h = np.zeros((B, 0))
@@ -93,12 +192,26 @@ def solve_batch(A: np.ndarray, b: np.ndarray, G: np.ndarray | None = None,
     Gall = Gall / norm[:, :, None]
     hall = hall / norm
     n_ineq = Gall.shape[1]
-    H = np.einsum("bni,bnj->bij", A, A)
-    c = np.einsum("bni,bn->bi", A, b)
     hscale = np.trace(H, axis1=1, axis2=2) / m + 1e-300
     ridge = 1e-12 * hscale
     H = H + ridge[:, None, None] * np.eye(m)
-    const = np.einsum("bn,bn->b", b, b)
+    H_plain = H - ridge[:, None, None] * np.eye(m)
+    active = np.zeros((B, n_ineq), dtype=bool)
+    verified_u = np.full((B, m), np.nan)
+    verified = np.zeros(B, dtype=bool)
+    if guess is not None:
+        verified_u, active, verified = _active_set_iterations(
+            H, c, Gall, hall, np.asarray(guess, bool), hscale)
+        if verified.all() or m > MAX_ENUMERATED_VARIABLES:
+            return _finish(verified_u, verified, H_plain, c, const, active)
+        rest = np.flatnonzero(~verified)
+        sub = solve_quadratic_batch(H_plain[rest], c[rest], const[rest], G[rest], h[rest])
+        verified_u[rest] = sub.u
+        active[rest] = sub.active
+        verified[rest] = sub.feasible
+        return _finish(verified_u, verified, H_plain, c, const, active)
+    if m > MAX_ENUMERATED_VARIABLES:
+        raise SolverError(f"{m} variables is too many for enumeration; use solve_cvxpy")
 
     best_obj = np.full(B, np.inf)
     best_u = np.full((B, m), np.nan)
@@ -130,9 +243,14 @@ def solve_batch(A: np.ndarray, b: np.ndarray, G: np.ndarray | None = None,
         try:
             sol = np.linalg.solve(K, rhs[..., None])[..., 0]
         except np.linalg.LinAlgError:
-            # exactly dependent rows (e.g. an all-zero constraint): solve in the
-            # least-squares sense; contradictory sets then fail the checks below
-            sol = np.einsum("bsij,bsj->bsi", np.linalg.pinv(K), rhs)
+            # exactly dependent rows (e.g. an all-zero constraint, or active rows that
+            # repeat the simplex sum): those systems are solved in the least-squares
+            # sense (contradictory sets then fail the checks below), the rest directly
+            sing = ~(np.abs(np.linalg.det(K)) > 0)
+            sol = np.empty_like(rhs)
+            if (~sing).any():
+                sol[~sing] = np.linalg.solve(K[~sing], rhs[~sing][..., None])[..., 0]
+            sol[sing] = np.einsum("xij,xj->xi", np.linalg.pinv(K[sing]), rhs[sing])
         u = sol[:, :, :m]
         eq_ok = np.abs(u.sum(axis=2) - 1.0) < 1e-7
         if size:
@@ -150,11 +268,19 @@ def solve_batch(A: np.ndarray, b: np.ndarray, G: np.ndarray | None = None,
         best_obj = np.where(better, cand, best_obj)
         best_u[better] = u[np.arange(B), j][better]
     feasible = np.isfinite(best_obj)
-    best_u = np.where(feasible[:, None], np.clip(best_u, 0.0, None), np.nan)
-    best_u = best_u / np.where(feasible, best_u.sum(axis=1), 1.0)[:, None]
-    resid = np.einsum("bnm,bm->bn", A, np.nan_to_num(best_u)) - b
-    obj = np.where(feasible, np.einsum("bn,bn->b", resid, resid), np.inf)
-    return QPSolution(best_u, obj, feasible)
+    slack = np.einsum("bgm,bm->bg", Gall, np.nan_to_num(best_u)) - hall
+    active = feasible[:, None] & (np.abs(slack) < 1e-7)
+    return _finish(best_u, feasible, H_plain, c, const, active)
+
+
+def _finish(u: np.ndarray, feasible: np.ndarray, H: np.ndarray, c: np.ndarray,
+            const: np.ndarray, active: np.ndarray) -> QPSolution:
+    u = np.where(feasible[:, None], np.clip(u, 0.0, None), np.nan)
+    u = u / np.where(feasible, u.sum(axis=1), 1.0)[:, None]
+    uu = np.nan_to_num(u)
+    obj = np.einsum("bi,bij,bj->b", uu, H, uu) - 2 * np.einsum("bi,bi->b", uu, c) + const
+    obj = np.where(feasible, obj, np.inf)
+    return QPSolution(u, obj, feasible, active)
 
 
 class _CvxpyProblem:

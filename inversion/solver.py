@@ -1,0 +1,505 @@
+"""The joint solver of the convex inversion: every parameter at once, with its certificate.
+
+The profile of :mod:`inversion.fit` holds the core-to-mantle mass ratio ``k`` and the
+volatility parameters fixed while the exact QP chooses the weights; that finds good
+starting points but not the optimum of the whole problem, because the weights move ``k``
+(through the iron and siderophile budget) and the volatility parameters are only seen on
+a grid. This module polishes a batch of starting points on the whole problem:
+
+    minimise  chi2(u, theta) = sum_i ((log10 N_i(u, theta) - y_i) / sigma_i)**2
+    over      u = (building-block weights, late weight) on the simplex,
+              theta (volatility parameters) in their box,
+    subject to the isotope windows (linear in u), the iron budget (core iron >= 0), the
+              late-accretion bound and the optional core-mass-fraction range
+              (nonlinear, through the core fixed point).
+
+Notes
+-----
+Each iteration is a Levenberg-Marquardt step of the residuals linearised in all
+parameters, with the Jacobian taken by finite differences of the forward model (so the
+dependence of ``k`` on the weights and on theta is included). The volatility step is
+eliminated in closed form, which leaves a quadratic form in ``u`` alone:
+with ``J_t`` the residual Jacobian of the free volatility parameters and
+``P = I - J_t (J_t' J_t + lambda S_t)^-1 J_t'``, the step minimises
+``(r0 + J_u du)' P (r0 + J_u du) + lambda s_u |du|^2`` on the simplex with the
+linearised constraints, exactly, by the active-set enumeration of
+:func:`inversion.qp.solve_quadratic_batch`; the volatility step follows as an affine
+function of ``du``. Volatility parameters that would leave their box are held at the
+bound and the step is solved again. A step is taken only if it lowers chi2 and keeps
+every constraint; otherwise the damping ``lambda`` grows. chi2 therefore never
+increases from a start, which is what guarantees that a mixture started from the
+optimum of one of its subsets never fits worse than that subset.
+
+The certificate of each answer (:func:`first_order_residual`) is the chi2 decrease that
+one more undamped linearised step predicts: zero at a point that satisfies the
+first-order (KKT) conditions of the linearised problem.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from .model import Problem, forward
+from .qp import solve_quadratic_batch
+from .volatility import get_form
+
+__all__ = ["JointSettings", "evaluate", "polish", "first_order_residual", "curvature",
+           "row_problem", "kink_boxes"]
+
+_LN10 = float(np.log(10.0))
+
+
+@dataclass(frozen=True)
+class JointSettings:
+    """Settings of the joint polish (recorded in every result).
+
+    ``max_iterations`` Levenberg-Marquardt iterations per start; a start stops when an
+    accepted step lowers chi2 by less than ``tolerance`` (relative) or the damping
+    exceeds ``max_damping``. ``constraint_tolerance`` is the slack allowed on the
+    nonlinear constraints (relative to their scale).
+    """
+
+    max_iterations: int = 80
+    tolerance: float = 1e-11
+    max_damping: float = 1e8
+    constraint_tolerance: float = 1e-9
+    fd_step_weights: float = 1e-7
+    fd_step_volatility: float = 1e-6
+
+
+def row_problem(p: Problem, rows: np.ndarray) -> Problem:
+    """``p`` with its per-row arrays (stacked hypotheses) taken at ``rows``.
+
+    A problem with a single hypothesis (``Q`` of shape (K, n)) is returned as it is: its
+    arrays broadcast over any batch.
+    """
+    from dataclasses import replace
+
+    if p.Q.ndim == 2:
+        return p
+    iso = tuple({**d, "eps": d["eps"][rows], "q_carrier": d["q_carrier"][rows]}
+                for d in p.isotopes)
+    extra = {}
+    q_sig = getattr(p, "Q_sigma_dex", None)
+    if q_sig is not None and np.ndim(q_sig) == 3:
+        extra["Q_sigma_dex"] = q_sig[rows]
+    return replace(p, Q=p.Q[rows], c_comp_R=p.c_comp_R[rows], isotopes=iso, **extra)
+
+
+def _v_max(p: Problem, M_s: np.ndarray) -> np.ndarray:
+    lam_max = p.late_max_fraction
+    c_R = 1.0 / M_s
+    return lam_max * p.c_late_R / ((1.0 - lam_max) * c_R + lam_max * p.c_late_R)
+
+
+def _model_sigma(p: Problem, U: np.ndarray, ratio: np.ndarray, fi: np.ndarray
+                 ) -> np.ndarray | None:
+    """Model variance [dex^2] of the fitted elements from uncertain end-members, or None.
+
+    With each block's ratio uncertain by ``Q_sigma_dex`` (log10, independent), the
+    mixture's ratio ``sum_k u_k Q_ki`` has variance ``sum_k (u_k Q_ki ln10 s_ki)^2``; in
+    dex that is divided by ``(ln10 * ratio_i)^2`` (effective variance, first order).
+    """
+    q_sig = getattr(p, "Q_sigma_dex", None)
+    if q_sig is None:
+        return None
+    K = p.Q.shape[-2]
+    Q = p.Q if p.Q.ndim == 3 else p.Q[None]
+    S = np.asarray(q_sig) if np.ndim(q_sig) == 3 else np.asarray(q_sig)[None]
+    # building blocks enter the final silicate through the volatility and core factors,
+    # which scale each block's term alike; their relative sizes are those of u_k Q_ki
+    terms = U[:, :K, None] * Q[..., fi] * S[..., fi]  # (B, K, nf) in ratio x dex
+    mix = np.einsum("bk,bkn->bn", U[:, :K], Q[..., fi])
+    with np.errstate(divide="ignore", invalid="ignore"):
+        rel = np.sqrt((terms ** 2).sum(axis=1)) / mix
+    del ratio
+    return np.nan_to_num(rel) ** 2
+
+
+def evaluate(p: Problem, U: np.ndarray, TH: np.ndarray, *,
+             cmf_range: tuple[float, float] | None = None) -> dict[str, np.ndarray]:
+    """Residuals, chi2 and nonlinear constraint values for a batch of parameter sets.
+
+    Parameters
+    ----------
+    p : Problem
+        Single hypothesis, or stacked with one row per batch member.
+    U : ndarray, shape (B, m)
+        Weights of the building blocks and (last, when there is one) of the late
+        component; rows on the simplex.
+    TH : ndarray, shape (B, p)
+        Volatility parameters.
+    cmf_range : (low, high), optional
+        Core-mass-fraction range imposed as a constraint.
+
+    Returns
+    -------
+    dict
+        ``r`` (B, n_fit) weighted residuals, ``chi2`` (B,), ``cons`` (B, c) constraint
+        values that must be >= 0 (iron budget, late bound, CMF range; each scaled to be
+        of order one), ``cmf``, ``M_s``, ``k`` (B,).
+    """
+    K = p.Q.shape[-2]
+    has_late = p.late_name is not None
+    fi = p.fit_index
+    sK = U[:, :K].sum(axis=1)
+    safe = np.where(sK > 0, sK, 1.0)
+    w = U[:, :K] / safe[:, None]
+    fwd = forward(p, w, TH, 0.0)
+    ratio = sK[:, None] * fwd["mantle"][:, fi]
+    if has_late:
+        ratio = ratio + U[:, K:K + 1] * p.q_late[None, fi]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        model = np.log10(ratio / p.q_ci[None, fi])
+    var = np.broadcast_to(p.sigma[None, :] ** 2, model.shape)
+    extra = _model_sigma(p, U, ratio, fi)
+    if extra is not None:
+        var = var + extra
+    r = (model - p.y[None, :]) / np.sqrt(var)
+    chi2 = np.where(np.all(np.isfinite(r), axis=1), (r ** 2).sum(axis=1), np.inf)
+    cons = []
+    if p.mantle_Fe is not None:
+        a_fe = np.maximum(fwd["bulk"][:, p.fe_index], 1e-300)
+        cons.append(fwd["core"][:, p.fe_index] / a_fe)
+    if has_late:
+        cons.append((_v_max(p, fwd["M_s"]) - U[:, K]) / max(p.late_max_fraction, 1e-12))
+    if cmf_range is not None:
+        cons.append(fwd["cmf"] - cmf_range[0])
+        cons.append(cmf_range[1] - fwd["cmf"])
+    C = np.stack(cons, axis=1) if cons else np.zeros((U.shape[0], 0))
+    return {"r": r, "chi2": chi2, "cons": C, "cmf": fwd["cmf"], "M_s": fwd["M_s"],
+            "k": fwd["k"]}
+
+
+def _isotope_rows(p: Problem, B: int) -> tuple[np.ndarray, np.ndarray]:
+    """Isotope windows as rows G u <= 0 (B, 2 g, m)."""
+    K = p.Q.shape[-2]
+    has_late = p.late_name is not None
+    rows = []
+    for iso in p.isotopes:
+        qc = np.broadcast_to(iso["q_carrier"], (B, K))
+        eps = np.broadcast_to(iso["eps"], (B, K))
+        if has_late:
+            qc = np.concatenate([qc, np.full((B, 1), iso["q_late"])], axis=1)
+            eps = np.concatenate([eps, np.full((B, 1), iso["eps_late"])], axis=1)
+        win = p.isotope_window_sigma * iso["sigma"]
+        rows.append(qc * (eps - iso["value"] - win))
+        rows.append(-qc * (eps - iso["value"] + win))
+    m = K + has_late
+    G = np.stack(rows, axis=1) if rows else np.zeros((B, 0, m))
+    return G, np.zeros((B, G.shape[1]))
+
+
+def _jacobian(p: Problem, U: np.ndarray, TH: np.ndarray, base: dict[str, np.ndarray],
+              settings: JointSettings, cmf_range, upper: np.ndarray | None = None
+              ) -> tuple[np.ndarray, np.ndarray]:
+    """Forward-difference Jacobians of residuals and constraints in (u, theta); the
+    volatility steps go backwards where a forward step would pass ``upper``."""
+    B, m = U.shape
+    pp = TH.shape[1]
+    f = get_form(p.volatility_form)
+    span = np.array(f.upper) - np.array(f.lower)
+    steps = np.concatenate([np.full(m, settings.fd_step_weights),
+                            settings.fd_step_volatility * span])
+    Z = np.concatenate([U, TH], axis=1)
+    n = m + pp
+    # step away from the upper bound of the volatility parameters
+    sign = np.ones((B, n))
+    top = np.array(f.upper) if upper is None else upper
+    sign[:, m:] = np.where(TH + steps[m:] > top, -1.0, 1.0)
+    Zp = np.repeat(Z[:, None, :], n, axis=1)
+    idx = np.arange(n)
+    Zp[:, idx, idx] += sign * steps
+    Zp = Zp.reshape(B * n, n)
+    rows = np.repeat(np.arange(B), n)
+    pr = row_problem(p, rows)
+    ev = evaluate(pr, Zp[:, :m], Zp[:, m:], cmf_range=cmf_range)
+    denom = (sign * steps)[:, :, None]
+    Jr = (ev["r"].reshape(B, n, -1) - base["r"][:, None, :]) / denom
+    Jc = (ev["cons"].reshape(B, n, -1) - base["cons"][:, None, :]) / denom
+    return np.swapaxes(Jr, 1, 2), np.swapaxes(Jc, 1, 2)  # (B, nf, n), (B, c, n)
+
+
+def _step(U, TH, r0, Jr, c0, Jc, Giso, lam, free, fix, m, guess=None):
+    """One damped linearised step for every row; returns (U_new, TH_new, predicted)."""
+    Ju = Jr[:, :, :m]
+    Jt = Jr[:, :, m:] * free[:, None, :]
+    pp = Jt.shape[2]
+    r0f = r0 + np.einsum("bnj,bj->bn", Jr[:, :, m:], fix)
+    st = np.einsum("bnj,bnj->bj", Jt, Jt)
+    st = np.where(st > 0, st, 1.0)
+    Mt = (np.einsum("bni,bnj->bij", Jt, Jt) + lam[:, None, None] * st[:, :, None]
+          * np.eye(pp) + (~free)[:, :, None] * np.eye(pp))
+    Minv = np.linalg.inv(Mt)
+    JtJu = np.einsum("bnj,bnk->bjk", Jt, Ju)
+    a0 = -np.einsum("bij,bj->bi", Minv, np.einsum("bnj,bn->bj", Jt, r0f))
+    A1 = -np.einsum("bij,bjk->bik", Minv, JtJu)
+    PJu = Ju + np.einsum("bnj,bjk->bnk", Jt, A1)          # P J_u
+    Pr0 = r0f + np.einsum("bnj,bj->bn", Jt, a0)           # P r0
+    # objective (r0 + Ju du)' P (r0 + Ju du) = du' Ju'P Ju du + 2 du' Ju'P r0 + r0'P r0
+    Hq = np.einsum("bnj,bnk->bjk", Ju, PJu)
+    gq = np.einsum("bnj,bn->bj", Ju, Pr0)
+    su = np.trace(Hq, axis1=1, axis2=2) / m + 1e-300
+    H = Hq + (lam * su)[:, None, None] * np.eye(m)
+    # in u: du = u - u0  ->  u'Hu - 2 u'(H u0 - gq) + const
+    c = np.einsum("bij,bj->bi", H, U) - gq
+    const = np.einsum("bi,bij,bj->b", U, H, U) - 2 * np.einsum("bi,bi->b", U, gq)
+    # nonlinear constraints linearised with the eliminated volatility step:
+    # c0 + Jc_u du + Jc_t (a0 + A1 du + fix) >= 0
+    Jcu = Jc[:, :, :m] + np.einsum("bcj,bjk->bck", Jc[:, :, m:] * free[:, None, :], A1)
+    c_off = c0 + np.einsum("bcj,bj->bc", Jc[:, :, m:], a0 * free + fix)
+    G = np.concatenate([Giso, -Jcu], axis=1)
+    h = np.concatenate([np.zeros(Giso.shape[:2]),
+                        c_off - np.einsum("bck,bk->bc", Jcu, U)], axis=1)
+    if guess is None:
+        guess = np.zeros((U.shape[0], m + G.shape[1]), dtype=bool)
+    sol = solve_quadratic_batch(H, c, const, G, h, guess=guess)
+    du = np.where(sol.feasible[:, None], sol.u - U, 0.0)
+    dt = (a0 + np.einsum("bik,bk->bi", A1, du)) * free + fix
+    quad = (np.einsum("bj,bjk,bk->b", du, Hq, du) + 2 * np.einsum("bj,bj->b", du, gq)
+            + np.einsum("bn,bn->b", r0f, Pr0))
+    return U + du, TH + dt, quad, sol.feasible, sol.active
+
+
+def _linearised_step(p, U, TH, base, Jr, Jc, Giso, lam, bounds, m, guess=None):
+    """A step with the volatility box handled by holding violators at their bound."""
+    lo, hi = bounds
+    B, pp = TH.shape
+    free = np.ones((B, pp), dtype=bool)
+    fix = np.zeros((B, pp))
+    for _ in range(pp + 1):
+        Un, Tn, pred, ok, act = _step(U, TH, base["r"], Jr, base["cons"], Jc, Giso, lam,
+                                      free, fix, m, guess)
+        out = free & ((Tn < lo) | (Tn > hi))
+        if not out.any():
+            break
+        free &= ~out
+        target = np.where(Tn < lo, lo, hi)
+        fix = np.where(out, target - TH, fix)
+    Tn = np.clip(Tn, lo, hi)
+    Un = np.clip(Un, 0.0, None)
+    Un = Un / Un.sum(axis=1, keepdims=True)
+    return Un, Tn, pred, ok, act
+
+
+def _bounds(p: Problem, B: int, bounds: tuple[np.ndarray, np.ndarray] | None
+            ) -> tuple[np.ndarray, np.ndarray]:
+    f = get_form(p.volatility_form)
+    if bounds is None:
+        bounds = (np.array(f.lower, float), np.array(f.upper, float))
+    pp = len(f.params)
+    return (np.broadcast_to(bounds[0], (B, pp)).astype(float),
+            np.broadcast_to(bounds[1], (B, pp)).astype(float))
+
+
+def kink_boxes(p: Problem, th: np.ndarray, reach: int = 1
+               ) -> list[tuple[np.ndarray, np.ndarray]]:
+    """Boxes of the volatility parameters on which the misfit is smooth, around ``th``.
+
+    The kinked forms bend at ``T0``: the misfit has a corner wherever ``T0`` equals the
+    condensation temperature of a fitted element (or of the reference element), and is
+    smooth between two such temperatures. A box per interval around ``th`` (``reach``
+    intervals to each side, and both sides of a corner ``th`` sits on) lets the
+    polish reach a corner optimum exactly, as a bound of a smooth problem, where the
+    first-order conditions are well defined. Forms without a T0 return the form's box.
+    """
+    f = get_form(p.volatility_form)
+    lo, hi = np.array(f.lower, float), np.array(f.upper, float)
+    if "T0" not in f.params:
+        return [(lo, hi)]
+    j = f.params.index("T0")
+    knots = np.unique(np.concatenate([p.tc[p.fit_index], [p.tc[p.ref_index]]]))
+    knots = knots[(knots > lo[j]) & (knots < hi[j])]
+    edges = np.concatenate([[lo[j]], knots, [hi[j]]])
+    t = th[j]
+    near = np.flatnonzero(np.abs(edges - t) <= 1e-6 * (hi[j] - lo[j]))
+    pos = int(np.searchsorted(edges, t, side="right")) - 1
+    centre = {min(max(pos, 0), len(edges) - 2)}
+    for e in near:  # on a corner: the intervals on both sides
+        centre |= {max(e - 1, 0), min(e, len(edges) - 2)}
+    picks = set()
+    for c in centre:
+        picks |= set(range(max(c - reach, 0), min(c + reach, len(edges) - 2) + 1))
+    out = []
+    for i in sorted(picks):
+        a, b = lo.copy(), hi.copy()
+        a[j], b[j] = edges[i], edges[i + 1]
+        out.append((a, b))
+    return out
+
+
+def polish(p: Problem, U0: np.ndarray, TH0: np.ndarray, *,
+           settings: JointSettings | None = None,
+           cmf_range: tuple[float, float] | None = None,
+           bounds: tuple[np.ndarray, np.ndarray] | None = None) -> dict[str, np.ndarray]:
+    """Levenberg-Marquardt on all parameters from a batch of starts.
+
+    Parameters
+    ----------
+    p : Problem
+        Single hypothesis, or stacked with one row per start.
+    U0 : ndarray, shape (B, m)
+        Starting weights (building blocks, then the late component).
+    TH0 : ndarray, shape (B, p)
+        Starting volatility parameters.
+    settings : JointSettings, optional
+    cmf_range : (low, high), optional
+    bounds : (low, high) arrays of shape (B, p), optional
+        Per-start box of the volatility parameters (default: the form's box).
+
+    Returns
+    -------
+    dict
+        ``U``, ``TH`` the answers, ``chi2`` (B,) (inf for a start that violates a
+        constraint), ``iterations`` (B,), ``start_chi2`` (B,).
+    """
+    settings = settings or JointSettings()
+    B, m = np.shape(U0)
+    bounds = _bounds(p, B, bounds)
+    U = np.array(U0, float)
+    TH = np.clip(np.array(TH0, float), *bounds)
+    base = evaluate(row_problem(p, np.arange(B)), U, TH, cmf_range=cmf_range)
+    tol_c = settings.constraint_tolerance
+    feasible = np.all(base["cons"] >= -tol_c, axis=1) & np.isfinite(base["chi2"])
+    start_chi2 = np.where(feasible, base["chi2"], np.inf)
+    chi2 = start_chi2.copy()
+    lam = np.full(B, 1e-3)
+    active = feasible.copy()
+    iters = np.zeros(B, dtype=int)
+    quiet = np.zeros(B, dtype=int)
+    cons = base["cons"].copy()
+    r = base["r"].copy()
+    act_sets = None
+    for _ in range(settings.max_iterations):
+        idx = np.flatnonzero(active)
+        if idx.size == 0:
+            break
+        pr = row_problem(p, idx)
+        bsub = {"r": r[idx], "cons": cons[idx]}
+        bnd = (bounds[0][idx], bounds[1][idx])
+        Jr, Jc = _jacobian(pr, U[idx], TH[idx], bsub, settings, cmf_range, bnd[1])
+        Giso, _ = _isotope_rows(pr, idx.size)
+        g_act = None if act_sets is None else act_sets[idx]
+        Un, Tn, _pred, ok, act = _linearised_step(pr, U[idx], TH[idx], bsub, Jr, Jc, Giso,
+                                                  lam[idx], bnd, m, g_act)
+        if act_sets is None:
+            act_sets = np.zeros((B, act.shape[1]), dtype=bool)
+        act_sets[idx] = act
+        trial = evaluate(pr, Un, Tn, cmf_range=cmf_range)
+        good = (ok & np.isfinite(trial["chi2"]) & (trial["chi2"] <= chi2[idx])
+                & np.all(trial["cons"] >= -tol_c, axis=1))
+        gain = np.where(good, chi2[idx] - trial["chi2"], 0.0)
+        acc = idx[good]
+        U[acc], TH[acc] = Un[good], Tn[good]
+        r[acc], cons[acc] = trial["r"][good], trial["cons"][good]
+        small = good & (gain <= settings.tolerance * (1.0 + chi2[idx]))
+        chi2[acc] = trial["chi2"][good]
+        lam[idx] = np.where(good, np.maximum(lam[idx] / 3.0, 1e-12), lam[idx] * 4.0)
+        iters[idx] += 1
+        quiet[idx] = np.where(small, quiet[idx] + 1, np.where(good, 0, quiet[idx]))
+        done = (quiet[idx] >= 2) | (lam[idx] > settings.max_damping)
+        active[idx[done]] = False
+    return {"U": U, "TH": TH, "chi2": chi2, "iterations": iters, "start_chi2": start_chi2}
+
+
+def first_order_residual(p: Problem, U: np.ndarray, TH: np.ndarray, *,
+                         settings: JointSettings | None = None,
+                         cmf_range: tuple[float, float] | None = None,
+                         bounds: tuple[np.ndarray, np.ndarray] | None = None) -> np.ndarray:
+    """Predicted chi2 decrease of one undamped linearised step from each answer.
+
+    Zero (to rounding) at a point that meets the first-order optimality (KKT)
+    conditions of the linearised problem with its active constraints; the value is in
+    chi2 units, so it compares directly with the chi2 tolerance of the answer.
+    """
+    settings = settings or JointSettings()
+    B, m = U.shape
+    bounds = _bounds(p, B, bounds)
+    pr = row_problem(p, np.arange(B))
+    base = evaluate(pr, U, TH, cmf_range=cmf_range)
+    Jr, Jc = _jacobian(pr, U, TH, base, settings, cmf_range, bounds[1])
+    Giso, _ = _isotope_rows(pr, B)
+    _, _, pred, ok, _ = _linearised_step(pr, U, TH, base, Jr, Jc, Giso, np.full(B, 1e-12),
+                                         bounds, m)
+    return np.where(ok, np.maximum(base["chi2"] - pred, 0.0), np.nan)
+
+
+def curvature(p: Problem, u: np.ndarray, th: np.ndarray, *,
+              settings: JointSettings | None = None,
+              cmf_range: tuple[float, float] | None = None,
+              bounds: tuple[np.ndarray, np.ndarray] | None = None,
+              active_tol: float = 1e-7
+              ) -> tuple[np.ndarray, np.ndarray, np.ndarray, list[str]]:
+    """Gauss-Newton covariance of (u, theta) at one answer, on its active constraints.
+
+    The free directions are those that keep the simplex sum, the weights at zero, the
+    volatility parameters at their bounds and the active isotope and nonlinear
+    constraints fixed; with ``N`` a basis of them and ``J`` the residual Jacobian,
+    ``Cov = N (N' J'J N)^-1 N'`` (Laplace approximation of the likelihood
+    ``exp(-chi2/2)`` at its maximum).
+
+    Returns
+    -------
+    cov : ndarray (m + p, m + p)
+    J : ndarray (n_fit, m + p)
+        Residual Jacobian (for the delta method on derived quantities).
+    N : ndarray
+        The basis of free directions.
+    active : list of str
+        The active constraints (quantities they fix have zero width).
+    """
+    settings = settings or JointSettings()
+    U = u[None].astype(float)
+    TH = th[None].astype(float)
+    pr = row_problem(p, np.arange(1))
+    base = evaluate(pr, U, TH, cmf_range=cmf_range)
+    Jr, Jc = _jacobian(pr, U, TH, base, settings, cmf_range)
+    Giso, _ = _isotope_rows(pr, 1)
+    J = Jr[0]
+    m = U.shape[1]
+    n = J.shape[1]
+    f = get_form(p.volatility_form)
+    lo, hi = np.array(f.lower), np.array(f.upper)
+    if bounds is not None:
+        lo, hi = np.asarray(bounds[0], float), np.asarray(bounds[1], float)
+    eq = [np.concatenate([np.ones(m), np.zeros(n - m)])]
+    names: list[str] = []
+    K = p.Q.shape[-2]
+    labels = list(p.components)[:K] + (["late component"] if m > K else [])
+    for k in range(m):
+        if U[0, k] <= active_tol:
+            e = np.zeros(n)
+            e[k] = 1.0
+            eq.append(e)
+            names.append(f"weight of {labels[k]} at zero")
+    span = hi - lo
+    for j in range(n - m):
+        if th[j] <= lo[j] + 1e-6 * span[j] or th[j] >= hi[j] - 1e-6 * span[j]:
+            e = np.zeros(n)
+            e[m + j] = 1.0
+            eq.append(e)
+            names.append(f"{f.params[j]} at {th[j]:.6g} (a bound or a kink of the form)")
+    for i, g in enumerate(Giso[0]):
+        if abs(g @ U[0]) <= active_tol * (1.0 + np.abs(g).sum()):
+            eq.append(np.concatenate([g, np.zeros(n - m)]))
+            iso = p.isotopes[i // 2]
+            names.append(f"{iso['name']} window ({'upper' if i % 2 == 0 else 'lower'} edge)")
+    cons_names = (["iron budget"] if p.mantle_Fe is not None else []) + (
+        ["late-accretion bound"] if p.late_name is not None else []) + (
+        ["CMF range low", "CMF range high"] if cmf_range is not None else [])
+    for c, jc, nm in zip(base["cons"][0], Jc[0], cons_names, strict=True):
+        if c <= 1e-6:
+            eq.append(jc)
+            names.append(nm)
+    E = np.array(eq)
+    # null space of the active constraints
+    _, s, vt = np.linalg.svd(E)
+    rank = int(np.sum(s > 1e-10 * s.max()))
+    N = vt[rank:].T
+    if N.shape[1] == 0:
+        return np.zeros((n, n)), J, N, names
+    F = N.T @ J.T @ J @ N
+    cov = N @ np.linalg.pinv(F) @ N.T
+    return cov, J, N, names
