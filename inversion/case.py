@@ -38,7 +38,7 @@ _ALLOWED: dict[str, set[str]] = {
     "core": {"mantle_FeO_wt", "dIW", "D"},
     "late_accretion": {"component", "max_fraction"},
     "elements": {"exclude"},
-    "fit": {"isotope_window_sigma", "cmf_range", "refine"},
+    "fit": {"isotope_window_sigma", "cmf_range"},
     "sampler": {"draws", "tune", "chains", "seed", "target_accept", "cores", "init",
                 "smc_draws", "smc_chains", "engine", "jitter", "mass_matrix"},
 }
@@ -85,7 +85,7 @@ class Case:
     priors: dict[str, Any] = field(default_factory=dict)
     sampler: dict[str, Any] = field(default_factory=dict)
     isotope_window_sigma: float = 2.0
-    cmf_range: tuple[float, float] = (0.0, 0.7)
+    cmf_range: tuple[float, float] | None = None
 
     @property
     def candidate_names(self) -> list[str]:
@@ -306,8 +306,13 @@ def load_case(path: str | Path) -> Case:
     fit = raw.get("fit", {})
     window = _num(fit.get("isotope_window_sigma", 2.0), file=file,
                   field="fit.isotope_window_sigma", positive=True)
-    cmf_range = fit.get("cmf_range", [0.0, 0.7])
-    if (not isinstance(cmf_range, list) or len(cmf_range) != 2
+    # [fit] cmf_range is a constraint of the convex fit and the screen (the core mass
+    # fraction of every answer lies in it); absent = no constraint beyond physics
+    cmf_range = fit.get("cmf_range")
+    if cmf_range is not None and (
+            not isinstance(cmf_range, list) or len(cmf_range) != 2
+            or not all(isinstance(v, int | float) and not isinstance(v, bool)
+                       for v in cmf_range)
             or not 0 <= cmf_range[0] < cmf_range[1] < 1):
         raise InputError("give [low, high] with 0 <= low < high < 1", file=file,
                          field="fit.cmf_range", value=cmf_range)
@@ -320,5 +325,6 @@ def load_case(path: str | Path) -> Case:
         condensation_table=ctab, core=core, late_component=late, late_max_fraction=la_max,
         isotopes=iso, exclude=tuple(excl), priors=dict(raw.get("priors") or {}),
         sampler=dict(raw.get("sampler") or {}), isotope_window_sigma=window,
-        cmf_range=(float(cmf_range[0]), float(cmf_range[1])),
+        cmf_range=(None if cmf_range is None
+                   else (float(cmf_range[0]), float(cmf_range[1]))),
     )

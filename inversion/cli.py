@@ -107,7 +107,7 @@ def _write_fit(out: Path, case, p, result, findings: dict) -> None:
     from .fit import planet_of
     from .output import atomic_folder, case_provenance, write_json
 
-    planet = planet_of(p, result) if result.status == "optimal" else None
+    planet = planet_of(p, result) if result.feasible else None
     data = {
         "title": case.title,
         "status": result.status,
@@ -120,6 +120,8 @@ def _write_fit(out: Path, case, p, result, findings: dict) -> None:
         "late_accretion_component": p.late_name,
         "late_accretion_fraction": result.late_accretion_fraction,
         "core_mass_fraction": result.core_mass_fraction,
+        "optimality": result.optimality,
+        "intervals": result.intervals,
         "chi2": result.chi2,
         "aic": result.aic,
         "bic": result.bic,
@@ -133,9 +135,7 @@ def _write_fit(out: Path, case, p, result, findings: dict) -> None:
         "findings": findings,
         "notes": list(p.notes),
         "provenance": case_provenance(case, p, extra={
-            "solver": {"method": result.settings.solver,
-                       "gauss_newton_passes": result.settings.passes,
-                       "zoom_levels": result.settings.zoom_levels}}),
+            "solver": result.settings.record}),
     }
     with atomic_folder(out) as tmp:
         write_json(tmp / "fit.json", data)
@@ -156,19 +156,24 @@ def _fit(parser: argparse.ArgumentParser):
     def run(args: argparse.Namespace) -> int:
         from .case import load_case
         from .findings import findings, summary_lines
-        from .fit import fit_problem
+        from .fit import FitSettings, fit_problem
         from .model import compile_problem
 
         case = load_case(args.case)
         p = compile_problem(case)
-        result = fit_problem(p)
+        result = fit_problem(p, FitSettings(cmf_range=case.cmf_range))
         f = findings(p, result, planet_mass_kg=case.target.planet_mass_kg)
         _write_fit(Path(args.out), case, p, result, f)
         print(f"{case.title}: {'+'.join(result.components)} -> {result.status}")
-        if result.status != "optimal":
+        if not result.feasible:
             for r in result.reasons:
                 print(f"  infeasible: {r}")
             return EXIT_INFEASIBLE
+        o = result.optimality
+        print(f"  optimality: {o['agreeing']} of {o['starts']} starts reach chi2 "
+              f"{result.chi2:.4f} (within {o['agreement_tolerance_relative']:g} relative); "
+              f"first-order residual {o['kkt_residual']:.1e} (tolerance "
+              f"{o['kkt_tolerance']:g})")
         print("  weights (" + p.reference + " basis): " + ", ".join(
             f"{k} {v:.3f}" for k, v in result.weights.items()))
         print("  mass fractions: " + ", ".join(f"{k} {v:.3f}"
@@ -177,6 +182,13 @@ def _fit(parser: argparse.ArgumentParser):
             f"{k} = {v:.4g}" for k, v in result.volatility.items()))
         print(f"  core mass fraction {result.core_mass_fraction:.3f}; chi2 {result.chi2:.1f} "
               f"on {result.n_elements} elements; AIC {result.aic:.1f}; BIC {result.bic:.1f}")
+        q = result.intervals.get("quantities", {})
+        if q:
+            show = [k for k in q if k.startswith(("weight:", "volatility:"))] + [
+                k for k in ("late_accretion_fraction", "core_mass_fraction") if k in q]
+            print("  95% intervals (Laplace, curvature at the optimum): " + "; ".join(
+                f"{k.split(':')[-1]} [{q[k]['p2.5']:.4g}, {q[k]['p97.5']:.4g}]"
+                for k in show))
         for line in summary_lines(f):
             print("  " + line)
         print(f"  written to {args.out}/fit.json, residuals.csv, planet.csv, and the hand-off "
@@ -221,7 +233,7 @@ def _rank(parser: argparse.ArgumentParser):
         with np.printoptions(precision=3):
             print(show.to_string(index=False, float_format=lambda v: f"{v:.4g}"))
         print(f"{len(table)} hypotheses; written to {args.out}/ranking.csv")
-        if table.iloc[0]["status"] != "optimal":
+        if table.iloc[0]["status"] == "infeasible":
             print("the best hypothesis is infeasible: " + str(table.iloc[0]["reasons"]))
             return EXIT_INFEASIBLE
         return EXIT_OK
