@@ -28,8 +28,7 @@ from .case import Case
 from .model import Problem, compile_problem, forward, lam_from_v, relative_log_retained
 from .planet import assemble, planet_table
 from .qp import MAX_ENUMERATED_VARIABLES, solve_batch, solve_cvxpy
-from .solver import (JointSettings, curvature, first_order_residual, kink_boxes, polish,
-                     row_problem)
+from .solver import JointSettings, curvature, first_order_residual, kink_boxes, polish, row_problem
 from .volatility import get_form
 
 __all__ = ["FitResult", "fit", "fit_problem", "screen", "Ranking", "FitSettings",
