@@ -16,8 +16,11 @@ Likelihood of the fitted elements (observed ``y_i``, 1-sigma ``sigma_i`` dex)::
     y_i ~ StudentT(nu = 4, mu_i(theta), sqrt(sigma_i**2 + tau**2))
 
 with ``tau`` a model-scatter term (HalfNormal(0.05) dex). Each isotope anomaly of the
-case adds ``eps_obs ~ Normal(eps_planet(w, v), sigma_obs)`` with ``eps_planet`` the
-carrier-weighted mass balance of the building blocks and the late component.
+case adds ``eps_obs ~ Normal(eps_planet(w, v), sigma_eff(w, v))`` with ``eps_planet`` the
+carrier-weighted mass balance of the building blocks and the late component, and
+``sigma_eff**2 = sigma_obs**2 + sum_k phi_k**2 (s_k**2 + r_k**2 (eps_k - eps_planet)**2)``
+(``phi_k`` the share of the carrier from column k, ``s_k`` the end-member's 1-sigma,
+``r_k`` the relative 1-sigma of its carrier ratio; :func:`inversion.isotopes.effective_sigma`).
 
 References
 ----------
@@ -650,11 +653,25 @@ def build_model(p: Problem, priors: dict[str, dict[str, Any]] | None = None, *,
                 num = (1 - v) * pt.sum(w * iso["q_carrier"] * iso["eps"]) + v * iso[
                     "q_late"] * iso["eps_late"]
                 den = (1 - v) * pt.sum(w * iso["q_carrier"]) + v * iso["q_late"]
-                preds.append(num / den)
+                mix = num / den
+                preds.append(mix)
                 vals.append(iso["value"])
-                sigs.append(iso["sigma"])
+                # end-member uncertainties (inversion.isotopes.effective_sigma):
+                # sigma_obs^2 + sum_k phi_k^2 (s_k^2 + r_k^2 (eps_k - eps_mix)^2)
+                n_blk = np.size(iso["eps"])
+                s_k = np.asarray(iso.get("eps_sigma", np.zeros(n_blk)), float)
+                r_k = np.asarray(iso.get("q_carrier_rel_sigma", np.zeros(n_blk)), float)
+                phi = (1 - v) * w * iso["q_carrier"] / den
+                phi_late = v * iso["q_late"] / den
+                var = iso["sigma"] ** 2 + pt.sum(phi ** 2 * (s_k ** 2 + r_k ** 2 * (
+                    iso["eps"] - mix) ** 2)) + phi_late ** 2 * (
+                    iso.get("eps_sigma_late", 0.0) ** 2
+                    + iso.get("q_carrier_rel_sigma_late", 0.0) ** 2
+                    * (iso["eps_late"] - mix) ** 2)
+                sigs.append(pt.sqrt(var))
             eps = pm.Deterministic("eps_pred", pt.stack(preds), dims="isotopes")
-            pm.Normal("eps_obs", mu=eps, sigma=np.array(sigs), observed=np.array(vals),
+            eps_sd = pm.Deterministic("eps_sigma", pt.stack(sigs), dims="isotopes")
+            pm.Normal("eps_obs", mu=eps, sigma=eps_sd, observed=np.array(vals),
                       dims="isotopes")
     return model
 
@@ -1046,7 +1063,8 @@ def add_log_likelihood(p: Problem, idata: Any) -> None:
               "elements": post["elements"].values}
     if p.isotopes:
         vals = np.array([d["value"] for d in p.isotopes])
-        sig = np.array([d["sigma"] for d in p.isotopes])
+        sig = (post["eps_sigma"].values if "eps_sigma" in post
+               else np.array([d["sigma"] for d in p.isotopes]))
         data["eps_obs"] = (("chain", "draw", "isotopes"),
                            stats.norm.logpdf(vals, loc=post["eps_pred"].values, scale=sig))
         coords["isotopes"] = post["isotopes"].values

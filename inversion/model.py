@@ -78,6 +78,11 @@ class Problem:
     atomic_weight : (n,) g/mol.
     cations : (n,) cations per oxide formula unit.
     fit_index : indices of elements used in the fit; y, sigma on those.
+    isotopes : one dict per isotope system: ``name``, ``carrier``, observed ``value`` and
+        ``sigma``; per block (K,) ``eps``, ``eps_sigma`` (1-sigma of the end-member),
+        ``q_carrier`` (carrier mass ratio to R), ``q_carrier_rel_sigma`` (its relative
+        1-sigma); the late component's ``eps_late``, ``eps_sigma_late``, ``q_late``,
+        ``q_carrier_rel_sigma_late``; ``range`` = span of the blocks' own ``eps``.
     """
 
     elements: tuple[str, ...]
@@ -133,8 +138,7 @@ class Problem:
         times (one row per hypothesis and profile point): Q becomes (B, K, n)."""
         idx = np.array([[self.components.index(n) for n in s] for s in subsets])
         rows = np.repeat(idx, repeat, axis=0)
-        iso = tuple({**d, "eps": d["eps"][rows], "q_carrier": d["q_carrier"][rows]}
-                    for d in self.isotopes)
+        iso = slice_isotopes(self.isotopes, rows)
         return replace(self, components=tuple(f"block{i}" for i in range(idx.shape[1])),
                         Q=self.Q[rows], imputed=self.imputed[idx[0]],
                         c_comp_R=self.c_comp_R[rows], isotopes=iso)
@@ -142,10 +146,41 @@ class Problem:
     def subset(self, names: list[str] | tuple[str, ...]) -> Problem:
         """The same problem with only the named building blocks."""
         idx = [self.components.index(n) for n in names]
-        iso = tuple({**d, "eps": d["eps"][idx], "q_carrier": d["q_carrier"][idx]}
-                    for d in self.isotopes)
+        iso = slice_isotopes(self.isotopes, np.asarray(idx, dtype=int))
         return replace(self, components=tuple(names), Q=self.Q[idx], imputed=self.imputed[idx],
                         c_comp_R=self.c_comp_R[idx], isotopes=iso)
+
+
+#: Per-building-block arrays of an isotope system (sliced with the blocks).
+ISOTOPE_BLOCK_KEYS = ("eps", "q_carrier", "eps_sigma", "q_carrier_rel_sigma")
+
+
+def isotope_range(eps: np.ndarray) -> tuple[Any, Any]:
+    """Span of the blocks' own anomalies: ``(min, max)`` over the last axis.
+
+    Floats for one hypothesis (``eps`` of shape (K,)), arrays of shape (B,) for stacked
+    hypotheses. The late component is not included: its weight is capped, so the interval
+    it can reach is computed with that cap (:func:`inversion.isotopes.reachable_intervals`).
+    """
+    eps = np.asarray(eps, float)
+    if eps.ndim == 1:
+        return float(eps.min()), float(eps.max())
+    return eps.min(axis=-1), eps.max(axis=-1)
+
+
+def slice_isotopes(isotopes: tuple[dict[str, Any], ...], idx: np.ndarray
+                   ) -> tuple[dict[str, Any], ...]:
+    """The isotope systems restricted to building blocks ``idx`` (1-D: a subset; 2-D:
+    stacked hypotheses), with each system's ``range`` recomputed from those blocks."""
+    out = []
+    for d in isotopes:
+        e = {**d}
+        for key in ISOTOPE_BLOCK_KEYS:
+            if key in d:
+                e[key] = np.asarray(d[key])[idx]
+        e["range"] = isotope_range(e["eps"])
+        out.append(e)
+    return tuple(out)
 
 
 def _impute(comp: pd.Series, ci: pd.Series, els: list[str], classes: pd.Series) -> tuple[
@@ -263,14 +298,15 @@ def compile_problem(case: Case, *, minimum_sigma_dex: float = 0.02) -> Problem:
     iso_table = components.isotopes()
     for qname, (val, sig) in case.isotopes.items():
         carrier = ISOTOPE_CARRIERS[qname]
-        eps, qc = [], []
+        eps, qc, eps_sig, qc_rel = [], [], [], []
         for c in list(case.candidates) + ([case.late_component] if case.late_component
                                           else []):
             rows = iso_table[(iso_table["body"] == c.name) & (iso_table["quantity"] == qname)]
             if qname in c.isotopes:
-                eps_value = c.isotopes[qname][0]
+                eps_value, eps_unc = c.isotopes[qname]
             elif not rows.empty:
                 eps_value = float(rows["value"].iloc[0])
+                eps_unc = float(rows["uncertainty"].iloc[0])
             else:
                 raise InputError(f"no {qname} value for building block {c.name} in the "
                                  f"library; remove the constraint or the candidate, or give "
@@ -281,12 +317,22 @@ def compile_problem(case: Case, *, minimum_sigma_dex: float = 0.02) -> Problem:
                                  f"{qname}", file=case.path, field=f"isotopes.{qname}")
             eps.append(eps_value)
             qc.append(float(c.composition[carrier] / c.composition[ref]))
+            # end-member 1-sigma (0 where none is given, e.g. the Earth, the zero of the
+            # scale) and the relative 1-sigma of the carrier ratio c_carrier / c_R
+            eps_sig.append(eps_unc if np.isfinite(eps_unc) else 0.0)
+            rel = [float(c.uncertainty.get(e, np.nan) / c.composition[e])
+                   for e in {carrier, ref}]
+            qc_rel.append(float(np.hypot.reduce([r for r in rel if np.isfinite(r)] or [0.0])))
         K = len(case.candidates)
         iso.append({"name": qname, "carrier": carrier, "value": val, "sigma": sig,
                     "eps": np.array(eps[:K]), "q_carrier": np.array(qc[:K]),
+                    "eps_sigma": np.array(eps_sig[:K]),
+                    "q_carrier_rel_sigma": np.array(qc_rel[:K]),
                     "eps_late": eps[K] if len(eps) > K else 0.0,
                     "q_late": qc[K] if len(qc) > K else 0.0,
-                    "range": (float(min(eps)), float(max(eps)))})
+                    "eps_sigma_late": eps_sig[K] if len(eps) > K else 0.0,
+                    "q_carrier_rel_sigma_late": qc_rel[K] if len(qc) > K else 0.0,
+                    "range": isotope_range(np.array(eps[:K]))})
     return Problem(
         elements=tuple(els), components=tuple(names), Q=Q, imputed=imputed, q_late=q_late,
         late_name=late_name, c_late_R=c_late_R, c_comp_R=c_R, q_ci=q_ci,

@@ -16,7 +16,9 @@ ORDINARY = ["H", "L", "LL"]
 ENSTATITE = ["EH", "EL"]
 CHONDRITES = CARBONACEOUS + ORDINARY + ENSTATITE
 BODIES = set(CHONDRITES) | {"Earth", "Mars", "Vesta", "Moon"}
-UNITS = {"D17O": "permil", "e50Ti": "epsilon", "e54Cr": "epsilon", "e48Ca": "epsilon"}
+UNITS = {"D17O": "permil", "e50Ti": "epsilon", "e54Cr": "epsilon", "e48Ca": "epsilon",
+         "e64Ni": "epsilon", "e92Mo": "epsilon", "e100Ru": "epsilon"}
+PROVENANCE = {"definition", "publication", "typed_copy", "recalled"}
 
 
 @pytest.fixture(scope="module")
@@ -184,3 +186,94 @@ def test_recalled_flag_present(iso):
     flags = {str(x).strip().lower() for x in iso["recalled"]}
     assert flags <= {"yes", "no", "true", "false"}
     assert np.all(iso["value"].notna())
+
+
+def test_provenance_levels_and_recalled_flag_agree(iso):
+    # File header: recalled = yes exactly when provenance = recalled.
+    assert set(iso["provenance"]) <= PROVENANCE
+    flag = iso["recalled"].str.strip().str.lower() == "yes"
+    assert (flag == (iso["provenance"] == "recalled")).all()
+
+
+def test_every_value_not_recalled_is_checked_here(iso):
+    # Each row that is not marked recalled is checked against its source in this file:
+    # the zeros of the scales (test_earth_is_the_zero_of_every_scale) and the Moon's e48Ca
+    # of Schiller et al. (2018) (test_moon_is_indistinguishable_from_earth).
+    checked = {("Earth", q) for q in UNITS} | {("Moon", "e48Ca")}
+    rows = iso[iso["provenance"] != "recalled"]
+    assert {(b, q) for b, q in zip(rows["body"], rows["quantity"], strict=True)} == checked
+    earth = rows[rows["body"] == "Earth"]
+    assert (earth["provenance"] == "definition").all()
+    assert (earth["source"] == "common_practice").all()
+
+
+def test_clan_means_are_labelled(iso):
+    # Where H, L, LL (or EH, EL) share a value, the note says it is a clan mean: no
+    # group-resolved value was read (file header).
+    for clan in (ORDINARY, ENSTATITE):
+        for q in UNITS:
+            sel = iso[iso["body"].isin(clan) & (iso["quantity"] == q)]
+            if len(sel) > 1 and sel["value"].nunique() == 1:
+                assert sel["note"].fillna("").str.contains("clan mean").all(), (clan, q)
+
+
+def test_e50ti_for_every_carbonaceous_group(iso):
+    # Trinquier et al. (2009, Science 324, 374); Zhang et al. (2012): every carbonaceous
+    # group carries a 50Ti excess, CV and CO the largest (about +3.5), CI the smallest
+    # (about +1.9). From memory; tolerance 0.5 epsilon on the extremes.
+    v = values(iso, CARBONACEOUS, "e50Ti")
+    assert set(v) == set(CARBONACEOUS)
+    assert min(v, key=v.get) == "CI"
+    assert v["CV"] == pytest.approx(3.5, abs=0.5)
+
+
+def test_siderophile_systems_point_to_enstatite_chondrites(iso):
+    # Dauphas (2017, Nature 541, 521), abstract (read): the mantle signatures of O, Ca, Ti,
+    # Cr, Ni, Mo and Ru all point to material isotopically most similar to enstatite
+    # meteorites. Among the chondrite groups, the one closest to the Earth (0) in every
+    # system held is an enstatite group.
+    for q in UNITS:
+        v = values(iso, CHONDRITES, q)
+        closest = min(v, key=lambda b: abs(v[b]))
+        assert closest in ENSTATITE, (q, closest)
+
+
+def test_nickel_64_anomalies(iso):
+    # Steele et al. (2012, ApJ 758, 59), abstract (read): carbonaceous chondrites show the
+    # largest positive e64Ni anomalies, enstatite chondrites about terrestrial values with
+    # only EH matching the Earth within uncertainty, ordinary chondrites negative anomalies;
+    # the chondrites span 0.84 epsilon in e64Ni (group means can only span less).
+    v = values(iso, CHONDRITES, "e64Ni")
+    assert all(v[g] > 0 for g in CARBONACEOUS if g in v)
+    assert all(v[g] < 0 for g in ORDINARY)
+    assert min(v[g] for g in CARBONACEOUS if g in v) > max(v[g] for g in ENSTATITE)
+    assert abs(v["EH"]) < abs(v["EL"])
+    sel = iso[(iso["body"] == "EH") & (iso["quantity"] == "e64Ni")]
+    assert abs(v["EH"]) <= 2 * float(sel["uncertainty"].iloc[0])
+    assert max(v.values()) - min(v.values()) <= 0.84
+
+
+def test_calcium_48_excess_of_carbonaceous_chondrites(iso):
+    # Huang & Jacobsen (2017, GCA 201, 364), abstract (read): carbonaceous chondrites show
+    # several epsilon units of 48Ca excess, and the 48Ca anomaly correlates positively with
+    # the 50Ti anomaly.
+    ca = values(iso, CHONDRITES, "e48Ca")
+    ti = values(iso, CHONDRITES, "e50Ti")
+    assert all(ca[g] >= 1.5 for g in CARBONACEOUS if g in ca)
+    both = sorted(set(ca) & set(ti))
+    assert len(both) >= 5
+    r = np.corrcoef([ca[g] for g in both], [ti[g] for g in both])[0, 1]
+    assert r > 0.8
+
+
+def test_molybdenum_and_ruthenium_dichotomy(iso):
+    # Burkhardt et al. (2011, EPSL 312, 390) and Fischer-Goedde et al. (2015, GCA 168,
+    # 151), from memory: carbonaceous chondrites have the largest s-process deficits,
+    # i.e. the highest e92Mo and the lowest e100Ru except CI, whose e100Ru is close to the
+    # ordinary chondrites'; ordinary chondrites lie between enstatite chondrites and them.
+    mo = values(iso, CHONDRITES, "e92Mo")
+    ru = values(iso, CHONDRITES, "e100Ru")
+    assert min(mo[g] for g in CARBONACEOUS if g in mo) > max(mo[g] for g in ORDINARY)
+    assert min(mo[g] for g in ORDINARY) > max(mo[g] for g in ENSTATITE) > 0
+    assert max(ru[g] for g in ORDINARY) < min(ru[g] for g in ENSTATITE) < 0
+    assert all(ru[g] < ru["CI"] for g in ("CM", "CO", "CV"))
