@@ -2,15 +2,18 @@
 
 Public API
 ----------
-available, load, read_component, elements, solar, solar_tables, isotopes, sources,
+available, load, read_component, default_relative_uncertainty, PROVENANCE_LEVELS,
+elements, solar, solar_tables, isotopes, sources,
 Component, atomic_weight, InputError.
 """
 
 from ._library import (
     DATA_DIR,
+    PROVENANCE_LEVELS,
     Component,
     atomic_weight_series,
     available,
+    default_relative_uncertainty,
     elements,
     isotopes,
     load,
@@ -24,12 +27,14 @@ from .units import atomic_weight, oxide_to_element_factor, parse_species
 
 __all__ = [
     "DATA_DIR",
+    "PROVENANCE_LEVELS",
     "Component",
     "InputError",
     "PlanetmixError",
     "atomic_weight",
     "atomic_weight_series",
     "available",
+    "default_relative_uncertainty",
     "elements",
     "isotopes",
     "load",

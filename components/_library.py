@@ -29,6 +29,8 @@ __all__ = [
     "isotopes",
     "sources",
     "atomic_weight_series",
+    "default_relative_uncertainty",
+    "PROVENANCE_LEVELS",
     "DATA_DIR",
 ]
 
@@ -38,6 +40,47 @@ COMPONENT_KINDS = ("chondrite", "silicate_reference", "user")
 #: Header keys by which a user's component CSV carries its own isotope anomalies
 #: (``# e54Cr: 0.12 0.05`` = value and 1-sigma).
 ISOTOPE_HEADER_KEYS = ("D17O", "e50Ti", "e54Cr", "e48Ca")
+
+#: How a value was obtained (the ``provenance`` column; FORMAT.md). ``user`` marks the
+#: values of a user's own file that gives no provenance.
+PROVENANCE_LEVELS = ("publication", "typed_copy", "unattributed_copy", "recalled", "derived",
+                     "user")
+
+#: Default relative 1-sigma of a building-block value by cosmochemical class: the typical
+#: member-to-member scatter of bulk analyses within a chondrite group (our choice, common
+#: practice), in line with the spread between independent compilations this library's
+#: tests measure (CI of Lodders 2003 vs Palme, Lodders & Jones 2014: refractory and major
+#: elements within 10%, volatile elements within 25%).
+DEFAULT_REL_SIGMA_CLASS = {"main_component": 0.05, "refractory": 0.08,
+                           "moderately_volatile": 0.15, "highly_volatile": 0.25}
+#: Added in quadrature, by provenance level: transcription risk (typed and unattributed
+#: copies), memory (recalled) and the model error of a derived value (derived: the groups'
+#: measured REE over their CI-scaled estimates scatter by about 20%, 0.81 in EL to 1.17 in
+#: CK, measured in tests/components/test_group_tables.py).
+DEFAULT_REL_SIGMA_PROVENANCE = {"publication": 0.0, "typed_copy": 0.02,
+                                "unattributed_copy": 0.05, "recalled": 0.10,
+                                "derived": 0.20, "user": 0.05}
+
+
+def default_relative_uncertainty(element: str, provenance: str) -> float:
+    """Default relative 1-sigma of a building-block value without a stated uncertainty.
+
+    ``hypot(class term, provenance term)`` with the terms of
+    :data:`DEFAULT_REL_SIGMA_CLASS` and :data:`DEFAULT_REL_SIGMA_PROVENANCE`.
+
+    Examples
+    --------
+    >>> round(default_relative_uncertainty("Al", "derived"), 3)
+    0.215
+    """
+    cls = elements()["cosmochemical_class"].get(element, "highly_volatile")
+    if element == "O":  # condenses at 180 K as ice, but the anion of every rock: a major
+        cls = "main_component"
+    base = DEFAULT_REL_SIGMA_CLASS.get(cls, DEFAULT_REL_SIGMA_CLASS["highly_volatile"])
+    if provenance not in DEFAULT_REL_SIGMA_PROVENANCE:
+        raise InputError(f"unknown provenance level; use one of {list(PROVENANCE_LEVELS)}",
+                         field="provenance", value=provenance)
+    return float(np.hypot(base, DEFAULT_REL_SIGMA_PROVENANCE[provenance]))
 
 
 @dataclass(frozen=True)
@@ -59,9 +102,15 @@ class Component:
     sources : pandas.Series
         Source key per element (see :func:`sources`).
     recalled : pandas.Series
-        True where the value was typed from memory of the publication.
+        True where the value was typed from memory of the publication (provenance
+        ``recalled``).
     path : str
         File the component was read from.
+    provenance : pandas.Series
+        How each value was obtained, one of :data:`PROVENANCE_LEVELS`.
+    uncertainty_basis : pandas.Series
+        ``source`` (the uncertainty is the source's), ``default`` (the documented default
+        by element class and provenance level) or empty (none given).
     """
 
     name: str
@@ -74,6 +123,22 @@ class Component:
     path: str = ""
     source_keys: tuple[str, ...] = field(default=())
     isotopes: dict[str, tuple[float, float]] = field(default_factory=dict)
+    provenance: pd.Series = field(default_factory=lambda: pd.Series(dtype=object))
+    uncertainty_basis: pd.Series = field(default_factory=lambda: pd.Series(dtype=object))
+
+    def provenance_counts(self) -> dict[str, int]:
+        """Number of values at each provenance level (levels with none left out)."""
+        counts = self.provenance.value_counts()
+        return {lv: int(counts[lv]) for lv in PROVENANCE_LEVELS if lv in counts.index}
+
+    def relative_uncertainty(self) -> pd.Series:
+        """Relative 1-sigma of every value: the stored one, else the documented default
+        (:func:`default_relative_uncertainty`) for the value's provenance level."""
+        rel = self.uncertainty / self.composition
+        prov = self.provenance.reindex(self.composition.index).fillna("user")
+        for el in rel.index[~np.isfinite(rel.to_numpy(float))]:
+            rel[el] = default_relative_uncertainty(el, str(prov[el]))
+        return rel
 
     def ratio_to(self, reference: str) -> pd.Series:
         """Mass ratios C_i / C_ref of every element.
@@ -90,12 +155,13 @@ class Component:
         return self.composition / self.composition[reference]
 
     def to_dataframe(self) -> pd.DataFrame:
-        """Tidy view: one row per element with value, uncertainty, source, recalled."""
+        """Tidy view: one row per element with value, uncertainty, basis, source, provenance."""
         return pd.DataFrame({
             "mass_fraction": self.composition,
             "uncertainty": self.uncertainty,
+            "uncertainty_basis": self.uncertainty_basis.reindex(self.composition.index),
             "source": self.sources,
-            "recalled": self.recalled,
+            "provenance": self.provenance.reindex(self.composition.index),
         })
 
 
@@ -146,6 +212,7 @@ def _component_from_file(path: Path, *, require_sources: bool, name: str | None 
     if kind not in COMPONENT_KINDS:
         raise InputError(f"unknown component kind; use one of {list(COMPONENT_KINDS)}",
                          file=file, field="kind", value=kind)
+    prov, basis = _provenance_columns(df, parsed, file=file, require=require_sources)
     keys = tuple(sorted({k.strip() for s in parsed.sources for k in str(s).split(";")
                          if k.strip()}))
     iso: dict[str, tuple[float, float]] = {}
@@ -165,11 +232,48 @@ def _component_from_file(path: Path, *, require_sources: bool, name: str | None 
         composition=parsed.composition,
         uncertainty=parsed.uncertainty,
         sources=parsed.sources,
-        recalled=parsed.recalled,
+        recalled=prov == "recalled",
         path=file,
         source_keys=keys,
         isotopes=iso,
+        provenance=prov,
+        uncertainty_basis=basis,
     )
+
+
+def _provenance_columns(df: pd.DataFrame, parsed, *, file: str, require: bool
+                        ) -> tuple[pd.Series, pd.Series]:
+    """Provenance level and uncertainty basis per element, checked.
+
+    Library files must give ``provenance`` on every row (a ``derived`` row names its rule
+    as a source key starting with ``derived``); a user's file may omit the column: its
+    values are then ``recalled`` where flagged so, else ``user``.
+    """
+    idx = parsed.composition.index
+    if "provenance" in df.columns:
+        prov = [str(v).strip() for v in df["provenance"]]
+    elif require:
+        raise InputError("library tables need a 'provenance' column (FORMAT.md)", file=file,
+                         field="provenance")
+    else:
+        prov = ["recalled" if r else "user" for r in parsed.recalled]
+    for i, (lv, src) in enumerate(zip(prov, parsed.sources, strict=True)):
+        if lv not in PROVENANCE_LEVELS:
+            raise InputError(f"unknown provenance level; use one of {list(PROVENANCE_LEVELS)}",
+                             file=file, row=i + 2, field="provenance", value=lv)
+        if lv == "derived" and not str(src).strip().startswith("derived"):
+            raise InputError("a derived value names its rule: give a source key starting "
+                             "with 'derived'", file=file, row=i + 2, field="source",
+                             value=src)
+    basis = (["" if not np.isfinite(u) else "source" for u in parsed.uncertainty]
+             if "uncertainty_basis" not in df.columns
+             else [str(v).strip() for v in df["uncertainty_basis"]])
+    for i, b in enumerate(basis):
+        if b not in ("", "source", "default"):
+            raise InputError("uncertainty_basis is 'source', 'default' or empty", file=file,
+                             row=i + 2, field="uncertainty_basis", value=b)
+    return (pd.Series(prov, index=idx, name="provenance", dtype=object),
+            pd.Series(basis, index=idx, name="uncertainty_basis", dtype=object))
 
 
 @lru_cache(maxsize=1)

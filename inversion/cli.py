@@ -57,7 +57,9 @@ def _library(parser: argparse.ArgumentParser):
             for name in components.available():
                 c = components.load(name)
                 cites = ", ".join(c.source_keys)
-                print(f"  {name:<10} {c.kind:<19} {len(c.composition):>3} elements  [{cites}]")
+                levels = " ".join(f"{k}={v}" for k, v in c.provenance_counts().items())
+                print(f"  {name:<10} {c.kind:<19} {len(c.composition):>3} elements  "
+                      f"({levels})  [{cites}]")
             print(f"\nElement properties: {len(components.elements())} elements "
                   "(Tc50 Lodders 2003 / Wood et al. 2019, classes, oxides)")
             print(f"Solar abundance tables: {', '.join(components.solar_tables())}")
@@ -90,6 +92,11 @@ def _library(parser: argparse.ArgumentParser):
                 df["mass_fraction"] = df["mass_fraction"].map(lambda v: f"{v:.4g}")
                 df["uncertainty"] = df["uncertainty"].map(lambda v: f"{v:.2g}")
                 print(df.to_string())
+                print("\nProvenance: " + ", ".join(
+                    f"{v} {k}" for k, v in c.provenance_counts().items())
+                    + f" (of {len(c.composition)}); uncertainties: "
+                    + ", ".join(f"{v} {k or 'none'}" for k, v in
+                                c.uncertainty_basis.value_counts().items()))
                 keys = set(c.source_keys)
         print("\nSources:")
         for k in sorted(keys):

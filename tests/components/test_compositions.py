@@ -94,24 +94,53 @@ def test_element_counts(lib):
         assert majors <= set(lib[g].composition.index), g
 
 
-def test_recalled_flags_are_booleans_and_groups_are_marked_recalled(lib):
+def test_provenance_levels_say_how_each_value_was_obtained(lib):
     for name, comp in lib.items():
         assert comp.recalled.dtype == bool, name
-        assert set(comp.recalled.index) == set(comp.composition.index)
-    # The chondrite-group means were typed from memory of the publications or read from an
-    # unattributed copy of Lodders & Fegley (1998) (see file headers): all recalled, except
-    # the majors of CM, CV and H, which were checked against an attributed (normalised) copy.
+        assert set(comp.provenance.index) == set(comp.composition.index), name
+        assert set(comp.provenance) <= set(components.PROVENANCE_LEVELS), name
+        # recalled is the provenance level, not a separate flag
+        assert (comp.recalled == (comp.provenance == "recalled")).all(), name
+    # The group means come from an unattributed typed copy (see file headers), except the
+    # majors of CM, CV and H checked against an attributed (normalised) copy of Lodders &
+    # Fegley (1998), oxygen from a named typed copy, the Wasson & Kallemeyn (1988) rows
+    # typed from memory and the CI-scaled rows.
     checked = {"Mg", "Al", "Si", "S", "Ca", "Fe"}
+    expected_source = {"unattributed_copy": {"unattributed_copy_hezel2000"},
+                       "typed_copy": {"loddersfegley1998", "typedcopy_trinh_wk",
+                                      "typedcopy_trinh_md2021"},
+                       "recalled": {"wassonkallemeyn1988"},
+                       "derived": {"derived_ci_scaled"}}
     for g in GROUPS:
-        read = set(lib[g].recalled.index[~lib[g].recalled]) - {"O"}
-        assert read == (checked if g in ("CM", "CV", "H") else set()), g
-        assert (lib[g].sources[sorted(read)] == "loddersfegley1998").all(), g
-    # derived (CI-scaled) rows are never flagged as read
-    for g in GROUPS:
-        derived = lib[g].sources == "derived_ci_scaled"
-        assert lib[g].recalled[derived].all(), g
+        comp = lib[g]
+        for level, keys in expected_source.items():
+            assert set(comp.sources[comp.provenance == level]) <= keys, (g, level)
+        typed = set(comp.provenance.index[comp.provenance == "typed_copy"]) - {"O"}
+        assert typed == (checked if g in ("CM", "CV", "H") else set()), g
+        assert (comp.provenance == "unattributed_copy").sum() >= 27, g
     # Most of the CI table was checked against a typed copy of Lodders (2003) Table 3.
-    assert (~lib[CI].recalled).sum() >= 55
+    assert (lib[CI].provenance == "typed_copy").sum() >= 55
+    # file names say what the values are
+    for g in GROUPS:
+        assert lib[g].path.endswith(f"{g.lower()}_unattributed_copy.csv"), lib[g].path
+
+
+def test_every_building_block_value_has_an_uncertainty(lib):
+    for name in [CI, *GROUPS]:
+        comp = lib[name]
+        assert comp.uncertainty.notna().all(), name
+        basis = comp.uncertainty_basis
+        assert set(basis) <= {"source", "default"}, name
+        rel = comp.uncertainty / comp.composition
+        for el in basis.index[basis == "default"]:
+            want = components.default_relative_uncertainty(el, comp.provenance[el])
+            # stored with two significant digits
+            assert rel[el] == pytest.approx(want, rel=0.05), (name, el)
+    # derived and recalled values carry larger defaults than copied ones (FORMAT.md)
+    d = components.default_relative_uncertainty
+    assert d("Zr", "derived") > d("Zr", "recalled") > d("Zr", "unattributed_copy") > d(
+        "Zr", "typed_copy") > d("Zr", "publication")
+    assert d("Zr", "derived") == pytest.approx(np.hypot(0.08, 0.20))
 
 
 # ---------------------------------------------------------------------- physical sanity

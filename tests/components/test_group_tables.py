@@ -39,7 +39,7 @@ def test_majors_match_the_attributed_lf1998_copy(lib, group):
         theirs = v / ref["Si"]
         assert ours == pytest.approx(theirs, rel=0.01), el
         assert lib[group].sources[el] == "loddersfegley1998"
-        assert not lib[group].recalled[el]
+        assert lib[group].provenance[el] == "typed_copy"
 
 
 @pytest.mark.parametrize("group", GROUPS)
@@ -51,7 +51,7 @@ def test_derived_rows_follow_their_recipe(lib, group):
     derived = src.index[src == "derived_ci_scaled"]
     for el in derived:
         assert comp[el] == pytest.approx(ci[el] * factor, rel=0.006), el
-        assert lib[group].recalled[el], el
+        assert lib[group].provenance[el] == "derived", el
     # only refractory lithophiles are derived
     cls = components.elements().loc[list(derived)]
     assert (cls["cosmochemical_class"] == "refractory").all()
@@ -69,7 +69,7 @@ def test_elements_every_group_holds(lib):
 
 
 def test_no_group_row_is_left_unsourced(lib):
-    allowed = {"loddersfegley1998", "lf1998_unattributed_copy", "wassonkallemeyn1988",
+    allowed = {"loddersfegley1998", "unattributed_copy_hezel2000", "wassonkallemeyn1988",
                "derived_ci_scaled", "typedcopy_trinh_wk", "typedcopy_trinh_md2021"}
     for g in GROUPS:
         assert set(lib[g].sources) <= allowed, g
