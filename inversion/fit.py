@@ -261,7 +261,16 @@ def _profile_points(p: Problem, vol: np.ndarray, passes: int) -> dict[str, np.nd
 
 
 def _grid(form: str) -> np.ndarray:
+    """Profile grid of the volatility parameters. The power form's grid is laid in its
+    exponent and pivot (Tc at which depletion starts, 900-1700 K) rather than in (a, b),
+    whose rectangular grid puts most points where the pivot lies outside every element's
+    condensation temperature (no depletion, a flat misfit)."""
     f = get_form(form)
+    if form == "power":
+        a = np.array([1.0, 2.0, 3.0, 4.0, 5.0, 6.5, 8.0])
+        pivot = np.linspace(900.0, 1700.0, 9)
+        pts = np.array([(x, -x * np.log10(t)) for x in a for t in pivot])
+        return np.clip(pts, f.lower, f.upper)
     return np.array(list(itertools.product(*f.grid)), dtype=float)
 
 
@@ -289,12 +298,15 @@ def _profile_grid(p: Problem, subsets: list[tuple[str, ...]], settings: FitSetti
     return grid, np.concatenate(chis), np.concatenate(us)
 
 
-def _distinct_starts(grid: np.ndarray, chi: np.ndarray, n: int, form: str) -> list[int]:
+def _distinct_starts(grid: np.ndarray, chi: np.ndarray, n: int, form: str,
+                     informative: np.ndarray) -> list[int]:
     """Indices of the ``n`` best grid points that lie apart from each other (normalised
-    distance > 0.1 of the parameter box), best first."""
+    distance > 0.1 of the parameter box), best first; only ``informative`` points (where
+    the volatility form depletes some fitted elements more than others: elsewhere the
+    misfit is flat in the volatility parameters and a start cannot move)."""
     f = get_form(form)
     span = np.array(f.upper) - np.array(f.lower)
-    order = [j for j in np.argsort(chi) if np.isfinite(chi[j])]
+    order = [j for j in np.argsort(chi) if np.isfinite(chi[j]) and informative[j]]
     out: list[int] = []
     for j in order:
         if all(np.linalg.norm((grid[j] - grid[i]) / span) > 0.1 for i in out):
@@ -321,10 +333,13 @@ def _solve_group(p: Problem, subsets: list[tuple[str, ...]], settings: FitSettin
     and the feasibility of the profile.
     """
     grid, chi, us = _profile_grid(p, subsets, settings)
+    logr = relative_log_retained(p, grid)[:, p.fit_index]
+    informative = (logr.max(axis=1) - logr.min(axis=1)) > 1e-3
     starts: list[list[_Start]] = []
     for h in range(len(subsets)):
         mine = [_Start(us[h, j], grid[j], f"profile grid point {grid[j].round(6).tolist()}")
-                for j in _distinct_starts(grid, chi[h], settings.starts, p.volatility_form)]
+                for j in _distinct_starts(grid, chi[h], settings.starts, p.volatility_form,
+                                          informative)]
         if extra is not None:
             mine += extra[h]
         starts.append(mine)
