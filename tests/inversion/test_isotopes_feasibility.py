@@ -211,3 +211,24 @@ def test_earth_single_groups_fail_for_each_system_alone(earth):
         assert rep.joint == ()
     assert feasibility_report(earth.subset(("EH",))).feasible
     assert feasibility_report(earth.subset(("CI", "H"))).feasible
+
+
+def test_earth_readme_delta17o_of_the_mixtures():
+    # case_studies/earth/README.md: O-weighted Delta17O of CI 0.305 + H 0.695 and of
+    # CM 0.065 + EH 0.935 (mass fractions), from the library's Delta17O (CI 0.39, H 0.73,
+    # CM -2.9, EH 0.00 permil; recalled) and O contents (CI 45.82, H 35.7, CM 43.2,
+    # EH 28.0 wt%). By hand: (0.305*45.82*0.39 + 0.695*35.7*0.73) / (0.305*45.82 +
+    # 0.695*35.7) = 0.607; (0.065*43.2*-2.9) / (0.065*43.2 + 0.935*28.0) = -0.281.
+    import components
+
+    iso = components.isotopes()
+    d17 = {r.body: r.value for r in iso[iso["quantity"] == "D17O"].itertuples()}
+
+    def mix(fr):
+        o = {g: float(components.load(g).composition["O"]) for g in fr}
+        return (sum(x * o[g] * d17[g] for g, x in fr.items())
+                / sum(x * o[g] for g, x in fr.items()))
+
+    assert mix({"CI": 0.305, "H": 0.695}) == pytest.approx(0.607, abs=0.005)
+    assert mix({"CM": 0.065, "EH": 0.935}) == pytest.approx(-0.281, abs=0.005)
+    assert abs(mix({"CI": 0.047, "EH": 0.953})) < 0.05
