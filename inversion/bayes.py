@@ -767,7 +767,7 @@ def start_points(p: Problem, priors: dict[str, dict[str, Any]], fit: Any, chains
     """
     form = get_form(p.volatility_form)
     K = len(p.components)
-    ok = fit is not None and fit.status == "optimal"
+    ok = fit is not None and fit.feasible
     part = _partitioned(p)
     tau0 = 0.03
     if ok:

@@ -88,14 +88,14 @@ def findings(p: Problem, result: FitResult, *, planet_mass_kg: float | None = No
         slopes["difference"] = {"value": d, "uncertainty": se,
                                 "significance_sigma": abs(d) / se if se > 0 else float("inf")}
     out["volatility_slopes"] = slopes
-    if result.status == "optimal" and p.late_name is not None:
+    if result.feasible and p.late_name is not None:
         lam = result.late_accretion_fraction
         la = {"fraction_of_mantle": lam, "component": p.late_name,
               "fraction_of_planet": lam * (1 - result.core_mass_fraction)}
         if planet_mass_kg:
             la["mass_kg"] = la["fraction_of_planet"] * planet_mass_kg
         out["late_accretion"] = la
-    if result.status == "optimal":
+    if result.feasible:
         r = result.residuals
         off = r[np.isfinite(r["z"]) & (r["z"].abs() > OUTLIER_Z)]
         out["off_trend"] = [

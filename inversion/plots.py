@@ -473,7 +473,7 @@ def ranking_plot(table: pd.DataFrame, *, criterion: str | None = None, top: int 
     status = t["status"].astype(str) if "status" in t.columns else pd.Series(
         ["optimal"] * len(t), index=t.index)
     vals = pd.to_numeric(t[criterion], errors="coerce")
-    ok = (status == "optimal") & np.isfinite(vals)
+    ok = (status != "infeasible") & np.isfinite(vals)
     best = vals[ok].max() if higher_better else vals[ok].min()
     delta = (best - vals) if higher_better else (vals - best)
     t = t.assign(_delta=delta, _ok=ok)

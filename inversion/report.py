@@ -205,11 +205,11 @@ def _fit_report(folder: Path) -> Report:
                  provenance=prov)
     status = d.get("status", "?")
     rep.key_numbers.append(("status", status, ""))
-    if status != "optimal":
+    if status == "infeasible":
         for r in d.get("reasons", []):
             rep.diagnostics.append(("infeasible", r, "the hypothesis cannot meet its "
                                     "constraints; this is an answer, not a poor fit"))
-    feasible = status == "optimal"
+    feasible = status not in ("infeasible", "?")
     for k, v in ((d.get("weights") or {}) if feasible else {}).items():
         mf = (d.get("mass_fractions") or {}).get(k)
         rep.key_numbers.append((f"weight of {k} ({ref} basis)", _fmt(v),
@@ -265,7 +265,7 @@ def _fit_report(folder: Path) -> Report:
         rep.figures.append(("Residuals by element", "z = (observed - model)/sigma, elements "
                             "ordered by condensation temperature.",
                             lambda: plots.residuals_plot(resid, title=title)))
-    if status == "optimal" and d.get("weights"):
+    if feasible and d.get("weights"):
         rep.figures.append(("Building-block weights", "Point estimates of the convex fit.",
                             lambda: plots.weights_plot(d["weights"],
                                                        mass_fractions=d.get("mass_fractions"),
@@ -359,7 +359,7 @@ def _rank_report(folder: Path) -> Report:
     meta = _read_json(folder / "ranking.json") if (folder / "ranking.json").exists() else {}
     rep = Report(title=meta.get("title", folder.name), kind="rank", folder=str(folder),
                  provenance=meta.get("provenance") or {})
-    ok = table[table["status"] == "optimal"] if "status" in table.columns else table
+    ok = table[table["status"] != "infeasible"] if "status" in table.columns else table
     rep.key_numbers.append(("hypotheses screened", str(len(table)),
                             f"{len(ok)} feasible, {len(table) - len(ok)} infeasible"))
     if len(ok):
@@ -377,7 +377,7 @@ def _rank_report(folder: Path) -> Report:
         near = ok[(ok["bic"] - float(best["bic"])) <= 2.0]
         rep.diagnostics.append(("hypotheses within ΔBIC ≤ 2 of the best", str(len(near)),
                                 ", ".join(near["components"].astype(str).head(10))))
-    bad = table[table["status"] != "optimal"] if "status" in table.columns else table.iloc[:0]
+    bad = table[table["status"] == "infeasible"] if "status" in table.columns else table.iloc[:0]
     for _, r in bad.head(10).iterrows():
         rep.diagnostics.append((f"infeasible: {r['components']}", str(r.get("reasons", "")),
                                 ""))

@@ -163,7 +163,7 @@ def earth_calibrated_pattern(form: str = "kinked",
         condensation_table=condensation_table, core=CoreSettings(feo, None, {}),
         late_component=ci, late_max_fraction=0.05, isotopes={}, exclude=EARTH_EXCLUDE)
     res = fit_problem(compile_problem(case))
-    if res.status != "optimal":  # pragma: no cover - the library's BSE always fits
+    if not res.feasible:  # pragma: no cover - the library's BSE always fits
         raise components.PlanetmixError("the Earth calibration failed: " + "; ".join(
             res.reasons))
     params = tuple(float(res.volatility[k]) for k in get_form(form).params)
