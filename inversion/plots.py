@@ -705,3 +705,71 @@ def svg_text(fig: Figure) -> str:
     buf = io.StringIO()
     fig.savefig(buf, format="svg", metadata=_metadata("svg"))
     return buf.getvalue()
+
+
+def isotope_plot(observed: Mapping[str, tuple[float, float]],
+                 ranges: Mapping[str, Mapping[str, tuple[float, float]]], *,
+                 predicted: Mapping[str, Mapping[str, float]] | None = None,
+                 units: Mapping[str, str] | None = None,
+                 title: str | None = None) -> Figure:
+    """Isotope constraints: observed windows and the intervals the hypotheses reach.
+
+    One panel per isotope system; in each, the observed value with its window (shaded)
+    and, one row per hypothesis, the interval its building blocks can reach
+    (:func:`inversion.isotopes.reachable_intervals`), with the fitted value as a dot.
+    Rows can be any labelled mixtures (e.g. the early and late mixtures of a staged fit).
+
+    Parameters
+    ----------
+    observed : mapping
+        System -> (observed value, window half-width) [permil or epsilon].
+    ranges : mapping
+        Hypothesis label -> {system -> (lo, hi)}; a system missing for a row is skipped.
+    predicted : mapping, optional
+        Hypothesis label -> {system -> fitted value}.
+    units : mapping, optional
+        System -> unit label (default: permil for D17O, epsilon otherwise).
+    title : str, optional
+    """
+    systems = list(observed)
+    labels = list(ranges)
+    units = dict(units or {})
+    with plot_style():
+        fig, axes = plt.subplots(1, max(1, len(systems)), sharey=True, squeeze=False,
+                                 figsize=(2.6 * max(1, len(systems)) + 1.6,
+                                          0.42 * max(1, len(labels)) + 1.5),
+                                 layout="constrained")
+        y = np.arange(len(labels))[::-1]
+        for ax, name in zip(axes[0], systems, strict=False):
+            value, half = observed[name]
+            ax.axvspan(value - half, value + half, color=OKABE_ITO["sky"], alpha=0.3,
+                       lw=0, label="observed window")
+            ax.axvline(value, color=OKABE_ITO["blue"], lw=1.0)
+            for yi, lab in zip(y, labels, strict=True):
+                if name not in ranges[lab]:
+                    continue
+                lo, hi = ranges[lab][name]
+                meets = hi >= value - half and lo <= value + half
+                colour = OKABE_ITO["green"] if meets else OKABE_ITO["vermillion"]
+                ax.plot([lo, hi], [yi, yi], color=colour, lw=3.5, solid_capstyle="butt")
+                if lo == hi:
+                    ax.plot([lo], [yi], "|", color=colour, ms=10, mew=2)
+                if predicted and name in predicted.get(lab, {}):
+                    ax.plot([predicted[lab][name]], [yi], "o", color="black", ms=4)
+            unit = units.get(name, "permil" if name == "D17O" else "epsilon")
+            ax.set_xlabel(f"{name} [{unit}]")
+            ax.set_title(name, loc="left")
+        axes[0][0].set_yticks(y, labels)
+        for ax in axes[0][len(systems):]:
+            ax.set_visible(False)
+        handles = [plt.Line2D([], [], color=OKABE_ITO["green"], lw=3.5,
+                              label="reachable, meets the window"),
+                   plt.Line2D([], [], color=OKABE_ITO["vermillion"], lw=3.5,
+                              label="reachable, misses it")]
+        if predicted:
+            handles.append(plt.Line2D([], [], color="black", marker="o", ls="",
+                                      label="fitted"))
+        fig.legend(handles=handles, loc="outside lower center", ncols=len(handles))
+        if title:
+            fig.suptitle(title, x=0.01, ha="left")
+    return fig

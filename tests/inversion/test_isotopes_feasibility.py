@@ -232,3 +232,20 @@ def test_earth_readme_delta17o_of_the_mixtures():
     assert mix({"CI": 0.305, "H": 0.695}) == pytest.approx(0.607, abs=0.005)
     assert mix({"CM": 0.065, "EH": 0.935}) == pytest.approx(-0.281, abs=0.005)
     assert abs(mix({"CI": 0.047, "EH": 0.953})) < 0.05
+
+
+def test_isotope_figure_marks_the_failing_intervals(earth):
+    from matplotlib.colors import to_hex
+
+    from inversion.plots import OKABE_ITO, isotope_plot
+
+    hyps = [("CI", "H"), ("H",)]
+    ranges = {"+".join(h): reachable_intervals(earth.subset(h)) for h in hyps}
+    obs = {d["name"]: (d["value"], 2 * d["sigma"]) for d in earth.isotopes}
+    fig = isotope_plot(obs, ranges, predicted={"CI+H": {"e54Cr": 0.1}})
+    axes = [a for a in fig.axes if a.get_visible()]
+    assert [a.get_title(loc="left") for a in axes] == ["e54Cr", "e50Ti"]
+    colours = [to_hex(line.get_color()) for line in axes[0].lines
+               if line.get_linewidth() == 3.5]
+    # CI+H reaches the window (green), H alone does not (vermillion)
+    assert colours == [OKABE_ITO["green"].lower(), OKABE_ITO["vermillion"].lower()]
