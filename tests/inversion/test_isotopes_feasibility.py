@@ -249,3 +249,32 @@ def test_isotope_figure_marks_the_failing_intervals(earth):
                if line.get_linewidth() == 3.5]
     # CI+H reaches the window (green), H alone does not (vermillion)
     assert colours == [OKABE_ITO["green"].lower(), OKABE_ITO["vermillion"].lower()]
+
+
+def test_bayesian_isotope_sigma_is_the_window_formula(earth):
+    # The sampler's isotope likelihood scale (deterministic eps_sigma of build_model) is
+    # effective_sigma at the draw's weights: the late weight v is recovered from the
+    # draw's e54Cr prediction (root of the mass balance), then both systems' sigma_eff are
+    # recomputed with the numpy formula.
+    import pymc as pm
+    from scipy.optimize import brentq
+
+    from inversion.bayes import build_model
+
+    p = earth.subset(("CI", "EH"))
+    with build_model(p):
+        prior = pm.sample_prior_predictive(draws=6, var_names=["eps_pred", "eps_sigma", "w"],
+                                           random_seed=1).prior
+    iso = p.isotopes[0]
+    qq = np.append(iso["q_carrier"], iso["q_late"])
+    ee = np.append(iso["eps"], iso["eps_late"])
+    n = 0
+    for e, s, w in zip(prior["eps_pred"].values[0], prior["eps_sigma"].values[0],
+                       prior["w"].values[0], strict=True):
+        def u(v, w=w):
+            return np.append((1 - v) * w, v)
+        v = brentq(lambda v, e=e, u=u: (u(v) * qq) @ ee / (u(v) @ qq) - e[0], 0.0, 0.999)
+        assert s == pytest.approx([effective_sigma(d, u(v)) for d in p.isotopes], rel=1e-6)
+        assert np.all(s > [d["sigma"] for d in p.isotopes])
+        n += 1
+    assert n == 6
