@@ -70,6 +70,10 @@ class Problem:
     components : tuple of str
     Q : (K, n) building-block mass ratios to the reference element.
     imputed : (K, n) bool, True where a block lacked the element and it was imputed.
+    Q_sigma_dex : (K, n) 1-sigma of log10 Q, the end-member uncertainty of each block's
+        ratio to the reference element: log10(1 + hypot(rel_i, rel_R)) from the blocks'
+        relative 1-sigma (stored or documented default; imputed values carry their rule's
+        uncertainty), 0 for the reference element. None for problems built without blocks.
     q_late : (n,) late component ratios (zeros when there is none).
     q_ci : (n,) CI ratios, the normaliser.
     tc : (n,) condensation temperatures [K].
@@ -117,6 +121,7 @@ class Problem:
     isotopes: tuple[dict[str, Any], ...]
     isotope_window_sigma: float
     notes: tuple[str, ...] = field(default=())
+    Q_sigma_dex: np.ndarray | None = None
 
     @property
     def n_fit(self) -> int:
@@ -141,14 +146,18 @@ class Problem:
         iso = slice_isotopes(self.isotopes, rows)
         return replace(self, components=tuple(f"block{i}" for i in range(idx.shape[1])),
                         Q=self.Q[rows], imputed=self.imputed[idx[0]],
-                        c_comp_R=self.c_comp_R[rows], isotopes=iso)
+                        c_comp_R=self.c_comp_R[rows], isotopes=iso,
+                        Q_sigma_dex=None if self.Q_sigma_dex is None
+                        else self.Q_sigma_dex[rows])
 
     def subset(self, names: list[str] | tuple[str, ...]) -> Problem:
         """The same problem with only the named building blocks."""
         idx = [self.components.index(n) for n in names]
         iso = slice_isotopes(self.isotopes, np.asarray(idx, dtype=int))
         return replace(self, components=tuple(names), Q=self.Q[idx], imputed=self.imputed[idx],
-                        c_comp_R=self.c_comp_R[idx], isotopes=iso)
+                        c_comp_R=self.c_comp_R[idx], isotopes=iso,
+                        Q_sigma_dex=None if self.Q_sigma_dex is None
+                        else self.Q_sigma_dex[idx])
 
 
 #: Per-building-block arrays of an isotope system (sliced with the blocks).
@@ -183,38 +192,77 @@ def slice_isotopes(isotopes: tuple[dict[str, Any], ...], idx: np.ndarray
     return tuple(out)
 
 
-def _impute(comp: pd.Series, ci: pd.Series, els: list[str], classes: pd.Series) -> tuple[
-        np.ndarray, np.ndarray]:
-    """Fill missing elements with CI times the component's median CI-normalised level of
-    the same cosmochemical class (recorded as imputed; imputed elements are not fitted)."""
+#: Imputation rule (see :func:`_impute`): neighbours used, the floor on the imputed value's
+#: 1-sigma [dex] and the 1-sigma when no element of the same class is held.
+IMPUTE_NEIGHBOURS = 5
+IMPUTE_MIN_SIGMA_DEX = 0.20
+IMPUTE_FALLBACK_SIGMA_DEX = 0.40
+
+
+def _family(geochemical_class: str) -> str:
+    return "lithophile" if geochemical_class in ("lithophile", "atmophile") else "metal"
+
+
+def _impute(comp: pd.Series, ci: pd.Series, els: list[str], classes: pd.Series,
+            tc: pd.Series | None = None, geo: pd.Series | None = None) -> tuple[
+        np.ndarray, np.ndarray, np.ndarray]:
+    """Fill the elements a component lacks; returns values, imputed flags, sigma [dex].
+
+    Rule: CI times the component's own CI-normalised level (geometric median) over the
+    :data:`IMPUTE_NEIGHBOURS` elements it holds that share the missing element's
+    cosmochemical class and geochemical family (lithophile vs siderophile/chalcophile)
+    and lie nearest to it in 50% condensation temperature (all of the class when the
+    family has none). The 1-sigma is the scatter (standard deviation, dex) of those
+    neighbours' levels, at least :data:`IMPUTE_MIN_SIGMA_DEX`; with no element of the same
+    class held, the median over everything held with :data:`IMPUTE_FALLBACK_SIGMA_DEX`.
+    """
     vals = np.empty(len(els))
     imp = np.zeros(len(els), dtype=bool)
+    sig = np.zeros(len(els))
     present = [e for e in els if e in comp.index and comp[e] > 0]
-    norm = pd.Series({e: comp[e] / ci[e] for e in present})
+    lognorm = pd.Series({e: np.log10(comp[e] / ci[e]) for e in present}, dtype=float)
     for j, e in enumerate(els):
         if e in comp.index and comp[e] > 0:
             vals[j] = comp[e]
             continue
         same = [x for x in present if classes[x] == classes[e]]
-        level = float(np.median(norm[same])) if same else float(np.median(norm))
-        vals[j] = ci[e] * level
+        if geo is not None:
+            fam = [x for x in same if _family(geo[x]) == _family(geo[e])]
+            same = fam or same
+        if same and tc is not None and np.isfinite(tc.get(e, np.nan)):
+            same = sorted(same, key=lambda x: abs(float(tc[x]) - float(tc[e])))
+            same = same[:IMPUTE_NEIGHBOURS]
+        if same:
+            levels = lognorm[same]
+            level = float(np.median(levels))
+            sig[j] = max(float(levels.std(ddof=1)) if len(same) > 1 else 0.0,
+                         IMPUTE_MIN_SIGMA_DEX)
+        else:
+            level = float(np.median(lognorm))
+            sig[j] = IMPUTE_FALLBACK_SIGMA_DEX
+        vals[j] = ci[e] * 10.0 ** level
         imp[j] = True
-    return vals, imp
+    return vals, imp, sig
 
 
-def compile_problem(case: Case, *, minimum_sigma_dex: float = 0.02) -> Problem:
+def compile_problem(case: Case, *, minimum_sigma_dex: float = 0.02,
+                    fit_imputed: bool = True) -> Problem:
     """Compile a case into a :class:`Problem`.
 
     Elements in the mass balance: those with a CI value and a condensation temperature,
     held by at least one candidate, except :data:`MODEL_EXCLUDED`. Fitted: those among
-    them in the target, not excluded, held by every candidate (not imputed), other than
-    the reference element.
+    them in the target, not excluded, other than the reference element. An element some
+    candidate lacks is imputed for that candidate (:func:`_impute`), flagged in
+    ``imputed``, and fitted with its large uncertainty in ``Q_sigma_dex``.
 
     Parameters
     ----------
     case : Case
     minimum_sigma_dex : float
         Floor on each element's uncertainty [dex] (model imperfection; recorded).
+    fit_imputed : bool
+        Fit elements imputed for some candidate (default); False keeps them out of the
+        fit, as before the end-member uncertainties existed.
     """
     ci = components.load("CI").composition
     props = components.elements()
@@ -245,15 +293,24 @@ def compile_problem(case: Case, *, minimum_sigma_dex: float = 0.02) -> Problem:
     Q = np.empty((len(names), len(els)))
     imputed = np.zeros_like(Q, dtype=bool)
     c_R = np.empty(len(names))
+    Q_sig = np.zeros_like(Q)
+    tc_series, geo = props[tc_col], props["geochemical_class"]
     for k, c in enumerate(case.candidates):
-        vals, imp = _impute(c.composition, ci, els, classes)
+        vals, imp, imp_sig = _impute(c.composition, ci, els, classes, tc_series, geo)
         Q[k] = vals / c.composition[ref]
         imputed[k] = imp
         c_R[k] = c.composition[ref]
+        rel = c.relative_uncertainty() if hasattr(c, "relative_uncertainty") else None
+        rel_el = np.array([10.0 ** imp_sig[j] - 1.0 if imp[j] else
+                           float(rel[e]) if rel is not None else 0.0
+                           for j, e in enumerate(els)])
+        rel_ref = float(rel[ref]) if rel is not None else 0.0
+        Q_sig[k] = np.log10(1.0 + np.hypot(rel_el, rel_ref))
+        Q_sig[k, els.index(ref)] = 0.0
     q_ci = np.array([ci[e] for e in els]) / ci[ref]
     if case.late_component is not None:
         lv = case.late_component
-        vals, _ = _impute(lv.composition, ci, els, classes)
+        vals, _, _ = _impute(lv.composition, ci, els, classes, tc_series, geo)
         q_late = vals / lv.composition[ref]
         c_late_R = float(lv.composition[ref])
         late_name = lv.name
@@ -281,7 +338,8 @@ def compile_problem(case: Case, *, minimum_sigma_dex: float = 0.02) -> Problem:
             rel = float(np.hypot(unc[e] / tgt[e], unc[ref] / tgt[ref])) if e != ref else 0.0
             s_all[j] = max(np.log10(1.0 + rel), minimum_sigma_dex)
     fit = np.array([j for j, e in enumerate(els) if np.isfinite(y_all[j]) and e != ref
-                    and e not in case.exclude and not imputed[:, j].any()], dtype=int)
+                    and e not in case.exclude
+                    and (fit_imputed or not imputed[:, j].any())], dtype=int)
     notes = []
     zero_in_target = [e for e in tgt.index if tgt[e] <= 0]
     if zero_in_target:
@@ -289,8 +347,10 @@ def compile_problem(case: Case, *, minimum_sigma_dex: float = 0.02) -> Problem:
     held_out = [e for j, e in enumerate(els) if np.isfinite(y_all[j]) and imputed[:, j].any()
                 and e not in case.exclude]
     if held_out:
-        notes.append("target elements missing from some building block (imputed, not "
-                     f"fitted): {held_out}")
+        notes.append("target elements missing from some building block (imputed by the "
+                     "group's own CI-normalised level at similar Tc, "
+                     + ("fitted with the imputation's 1-sigma" if fit_imputed else
+                        "not fitted") + f"): {held_out}")
     if fit.size < 3:
         raise InputError(f"only {fit.size} elements can be fitted; the target and the "
                          "building blocks share too few elements", file=case.target.path)
@@ -345,7 +405,7 @@ def compile_problem(case: Case, *, minimum_sigma_dex: float = 0.02) -> Problem:
         condensation_table=case.condensation_table,
         late_max_fraction=case.late_max_fraction if late_name else 0.0,
         isotopes=tuple(iso), isotope_window_sigma=case.isotope_window_sigma,
-        notes=tuple(notes),
+        notes=tuple(notes), Q_sigma_dex=Q_sig,
     )
 
 
