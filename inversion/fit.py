@@ -28,7 +28,15 @@ from .case import Case
 from .model import Problem, compile_problem, forward, lam_from_v, relative_log_retained
 from .planet import assemble, planet_table
 from .qp import MAX_ENUMERATED_VARIABLES, solve_batch, solve_cvxpy
-from .solver import JointSettings, curvature, first_order_residual, kink_boxes, polish, row_problem
+from .solver import (
+    JointSettings,
+    curvature,
+    first_order_residual,
+    isotope_sigma,
+    kink_boxes,
+    polish,
+    row_problem,
+)
 from .volatility import get_form
 
 __all__ = ["FitResult", "fit", "fit_problem", "screen", "Ranking", "FitSettings",
@@ -145,7 +153,8 @@ class FitResult:
 
 
 def _design(p: Problem, vol: np.ndarray, k: np.ndarray, D_Fe: np.ndarray,
-            M_s_prev: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, list[str]]:
+            M_s_prev: np.ndarray, u_prev: np.ndarray | None = None
+            ) -> tuple[np.ndarray, np.ndarray, np.ndarray, list[str]]:
     """Mantle-ratio design (B, n, m) and inequality rows (B, g, m) <= h for fixed k."""
     B = vol.shape[0]
     logr = relative_log_retained(p, vol)
@@ -194,15 +203,17 @@ def _design(p: Problem, vol: np.ndarray, k: np.ndarray, D_Fe: np.ndarray,
                             + (late_cols[0] if has_late else []), axis=1)
         eps = np.concatenate([np.broadcast_to(iso["eps"], (B, K))]
                              + (late_cols[1] if has_late else []), axis=1)
-        win = p.isotope_window_sigma * iso["sigma"]
+        sig = (np.full(B, float(iso["sigma"])) if u_prev is None
+               else isotope_sigma(p, iso, u_prev))
+        win = (p.isotope_window_sigma * sig)[:, None]
         up = qc * (eps - iso["value"] - win)
         lo = qc * (eps - iso["value"] + win)
         rows.append(up)
         hs.append(np.zeros(B))
-        names.append(f"{iso['name']} <= {iso['value'] + win:g}")
+        names.append(f"{iso['name']} upper window")
         rows.append(-lo)
         hs.append(np.zeros(B))
-        names.append(f"{iso['name']} >= {iso['value'] - win:g}")
+        names.append(f"{iso['name']} lower window")
     G = np.stack(rows, axis=1) if rows else np.zeros((B, 0, A.shape[2]))
     h = np.stack(hs, axis=1) if hs else np.zeros((B, 0))
     return A, G, h, names
@@ -227,8 +238,9 @@ def _profile_points(p: Problem, vol: np.ndarray, passes: int) -> dict[str, np.nd
     best = {"chi2": np.full(B, np.inf), "u": np.full((B, K + (p.late_name is not None)),
                                                      np.nan)}
     feasible_any = np.zeros(B, dtype=bool)
+    u_prev = np.full((B, K + (p.late_name is not None)), 1.0 / (K + 1))
     for _ in range(passes):
-        A, G, h, _names = _design(p, vol, k, D_Fe, M_s)
+        A, G, h, _names = _design(p, vol, k, D_Fe, M_s, u_prev)
         Af = A[:, fi, :]
         scale = 1.0 / (m0 * _LN10 * p.sigma[None, :])
         Aw = Af * scale[:, :, None]
@@ -237,6 +249,7 @@ def _profile_points(p: Problem, vol: np.ndarray, passes: int) -> dict[str, np.nd
         ok = sol.feasible
         feasible_any |= ok
         u = np.where(ok[:, None], sol.u, 1.0 / sol.u.shape[1])
+        u_prev = u
         w = u[:, :K]
         sw = w.sum(axis=1, keepdims=True)
         w = np.where(sw > 0, w / np.where(sw > 0, sw, 1.0), 1.0 / K)
@@ -274,6 +287,8 @@ def _grid(form: str) -> np.ndarray:
     return np.array(list(itertools.product(*f.grid)), dtype=float)
 
 
+#: Up to this many building blocks, a fit starts from the optima of all its sub-mixtures.
+NESTED_MAX = 6
 #: Rows (hypotheses x profile points) solved together in one batch.
 _BATCH_ROWS = 3000
 
@@ -522,9 +537,11 @@ def fit_problem(p: Problem, settings: FitSettings | None = None, *,
                 starts: list[FitResult] | None = None) -> FitResult:
     """Fit one hypothesis (the problem's building blocks plus its late component).
 
-    Starts: the best distinct points of the volatility profile, the optimum of each
-    single building block (so a mixture never fits worse than any of its blocks alone),
-    and ``starts`` (earlier fits of the same problem or of its sub-mixtures).
+    Starts: the best distinct points of the volatility profile; with up to
+    :data:`NESTED_MAX` blocks the optima of every sub-mixture one block smaller (solved
+    in turn from theirs, so the fit is never worse than any mixture it contains), with
+    more blocks the optimum of each block alone; and ``starts`` (earlier fits of the same
+    problem or of its sub-mixtures).
 
     Parameters
     ----------
@@ -542,7 +559,11 @@ def fit_problem(p: Problem, settings: FitSettings | None = None, *,
     settings = settings or FitSettings()
     names = list(p.components)
     extra: list[_Start] = []
-    if len(names) > 1:
+    if 1 < len(names) <= NESTED_MAX:
+        sub_settings = replace(settings, intervals=False)
+        solved = {f.components: f for f in _solve_nested(p, len(names) - 1, sub_settings)}
+        extra = _subset_starts(p, tuple(names), solved)
+    elif len(names) > NESTED_MAX:
         singles = _solve_group(p, [(c,) for c in names], replace(settings, starts=2))
         for c, rec in zip(names, singles, strict=True):
             if rec.get("feasible"):
@@ -607,29 +628,35 @@ def _residual_table(p: Problem, fwd: dict[str, np.ndarray], row: int = 0) -> pd.
 
 
 def _infeasible(p: Problem, n_params: int, settings: FitSettings) -> FitResult:
+    """The infeasible answer with its reasons: each isotope system that no mixture of the
+    hypothesis reaches on its own, the combinations that fail only together
+    (:func:`inversion.isotopes.feasibility_report`, with the late component at its real
+    cap), and the iron budget where it is what fails."""
+    from .isotopes import feasibility_report
+
     grid = _grid(p.volatility_form)
-    vol = grid[len(grid) // 2]
-    reasons = []
-    for iso in p.isotopes:
-        lo, hi = iso["range"]
-        win = p.isotope_window_sigma * iso["sigma"]
-        if iso["value"] + win < lo or iso["value"] - win > hi:
-            reasons.append(f"{iso['name']} = {iso['value']:g} +- {win:g} lies outside the range"
-                           f" the building blocks span [{lo:g}, {hi:g}]")
-    if not reasons and len(p.isotopes) > 1:
-        # jointly unreachable: say which pairs fail
-        for a, b in itertools.combinations(range(len(p.isotopes)), 2):
-            sub = replace(p, isotopes=(p.isotopes[a], p.isotopes[b]))
-            if not _profile_points(sub, vol[None], 1)["feasible"][0]:
-                reasons.append(f"no mixture meets {p.isotopes[a]['name']} and "
-                               f"{p.isotopes[b]['name']} together")
+    rep = feasibility_report(p) if p.isotopes else None
+    reasons = list(rep.messages) if rep is not None else []
     if not reasons:
         base = replace(p, isotopes=())
-        if not _profile_points(base, vol[None], 1)["feasible"][0]:
+        feas = _profile_points(base, grid, 1)["feasible"]
+        if not feas.any():
             reasons.append("iron budget: the mantle FeO needs more iron than the building "
-                           "blocks hold")
-        else:
-            reasons.append("the isotope windows cannot be met together with the iron budget")
+                           "blocks hold, at every volatility grid point")
+        elif p.isotopes:
+            vol = grid[int(np.flatnonzero(feas)[0])][None]
+            fwd = forward(p, np.full((1, len(p.components)), 1.0 / len(p.components)), vol)
+            _A, G, h, names = _design(base, vol, fwd["k"], fwd["D_Fe"], fwd["M_s"])
+            iron = [i for i, n in enumerate(names) if n.startswith("iron budget")]
+            if iron:
+                rep2 = feasibility_report(p, extra=(G[0, iron], h[0, iron]))
+                reasons.extend(rep2.messages)
+        if settings.cmf_range is not None and not reasons:
+            reasons.append(f"core mass fraction range {list(settings.cmf_range)}: no start "
+                           "of the solver met it together with the other constraints")
+        if not reasons:
+            reasons.append("the isotope windows (widened by the end-members' uncertainties "
+                           "at the weights) cannot be met together with the iron budget")
     nan = float("nan")
     names = list(p.components)
     return FitResult(
@@ -668,6 +695,51 @@ class Ranking:
         return self.table.copy()
 
 
+def _solve_nested(p: Problem, max_size: int, settings: FitSettings, *, workers: int = 1,
+                  progress: bool = False) -> list[FitResult]:
+    """Every mixture of up to ``max_size`` of the problem's blocks, smallest first, each
+    started from its own profile and from the optima of its subsets one block smaller."""
+    from tqdm.auto import tqdm
+
+    names = list(p.components)
+    total = sum(math.comb(len(names), r) for r in range(1, max_size + 1))
+    bar = tqdm(total=total, desc="hypotheses", disable=not progress, unit="fit")
+    fits: list[FitResult] = []
+    solved: dict[tuple[str, ...], FitResult] = {}
+    chunk = 24  # hypotheses per job: large enough to batch, small enough to spread
+    ex = ProcessPoolExecutor(max_workers=workers) if workers > 1 else None
+    try:
+        for r in range(1, max_size + 1):
+            subs = list(itertools.combinations(names, r))
+            extra = [_subset_starts(p, s, solved) for s in subs]
+            jobs = [(p, subs[i:i + chunk], settings, extra[i:i + chunk])
+                    for i in range(0, len(subs), chunk)]
+            results = ex.map(_fit_group, jobs) if ex is not None else map(_fit_group, jobs)
+            for res in results:
+                for f in res:
+                    solved[f.components] = f
+                fits.extend(res)
+                bar.update(len(res))
+    finally:
+        if ex is not None:
+            ex.shutdown()
+        bar.close()
+    return fits
+
+
+def _subset_starts(p: Problem, s: tuple[str, ...], solved: dict[tuple[str, ...], FitResult]
+                   ) -> list[_Start]:
+    """Starts of mixture ``s`` from the solved optima of its subsets one block smaller."""
+    out = []
+    for sub in itertools.combinations(s, len(s) - 1):
+        f = solved.get(sub)
+        if f is not None and f.feasible and f.u:
+            out.append(_Start(_pad(p.subset(s), sub, np.array(f.u)),
+                              np.array(list(f.volatility.values())),
+                              f"optimum of {'+'.join(sub)}"))
+    return out
+
+
 def screen(case: Case, *, settings: FitSettings | None = None, workers: int = 1,
            progress: bool = False) -> Ranking:
     """Fit every subset of the candidates up to ``case.max_mixture_size`` and rank them.
@@ -691,40 +763,8 @@ def screen(case: Case, *, settings: FitSettings | None = None, workers: int = 1,
     """
     settings = settings or replace(SCREEN_SETTINGS, cmf_range=case.cmf_range)
     p = compile_problem(case)
-    names = list(p.components)
-    from tqdm.auto import tqdm
-
-    total = sum(math.comb(len(names), r) for r in range(1, case.max_mixture_size + 1))
-    bar = tqdm(total=total, desc="hypotheses", disable=not progress, unit="fit")
-    fits: list[FitResult] = []
-    solved: dict[tuple[str, ...], FitResult] = {}
-    chunk = 24  # hypotheses per job: large enough to batch, small enough to spread
-    ex = ProcessPoolExecutor(max_workers=workers) if workers > 1 else None
-    try:
-        for r in range(1, case.max_mixture_size + 1):
-            subs = list(itertools.combinations(names, r))
-            extra = []
-            for s in subs:
-                mine = []
-                for sub in itertools.combinations(s, r - 1):
-                    f = solved.get(sub)
-                    if f is not None and f.feasible:
-                        mine.append(_Start(_pad(p.subset(s), sub, np.array(f.u)),
-                                           np.array(list(f.volatility.values())),
-                                           f"optimum of {'+'.join(sub)}"))
-                extra.append(mine)
-            jobs = [(p, subs[i:i + chunk], settings, extra[i:i + chunk])
-                    for i in range(0, len(subs), chunk)]
-            results = ex.map(_fit_group, jobs) if ex is not None else map(_fit_group, jobs)
-            for res in results:
-                for f in res:
-                    solved[f.components] = f
-                fits.extend(res)
-                bar.update(len(res))
-    finally:
-        if ex is not None:
-            ex.shutdown()
-    bar.close()
+    fits = _solve_nested(p, case.max_mixture_size, settings, workers=workers,
+                         progress=progress)
     table = pd.concat([f.to_dataframe() for f in fits], ignore_index=True)
     table["n_components"] = [len(f.components) for f in fits]
     table["reasons"] = ["; ".join(f.reasons) for f in fits]

@@ -46,7 +46,7 @@ from .qp import solve_quadratic_batch
 from .volatility import get_form
 
 __all__ = ["JointSettings", "evaluate", "polish", "first_order_residual", "curvature",
-           "row_problem", "kink_boxes"]
+           "row_problem", "kink_boxes", "isotope_sigma"]
 
 _LN10 = float(np.log(10.0))
 
@@ -79,7 +79,9 @@ def row_problem(p: Problem, rows: np.ndarray) -> Problem:
 
     if p.Q.ndim == 2:
         return p
-    iso = tuple({**d, "eps": d["eps"][rows], "q_carrier": d["q_carrier"][rows]}
+    from .model import ISOTOPE_BLOCK_KEYS
+
+    iso = tuple({**d, **{k: np.asarray(d[k])[rows] for k in ISOTOPE_BLOCK_KEYS if k in d}}
                 for d in p.isotopes)
     extra = {}
     q_sig = getattr(p, "Q_sigma_dex", None)
@@ -168,13 +170,66 @@ def evaluate(p: Problem, U: np.ndarray, TH: np.ndarray, *,
     if cmf_range is not None:
         cons.append(fwd["cmf"] - cmf_range[0])
         cons.append(cmf_range[1] - fwd["cmf"])
+    for iso in p.isotopes:
+        # |eps_planet(u) - eps_obs| <= n sigma_eff(u): nonlinear through the widening of
+        # the window by the end-members' uncertainties, so linearised with the rest
+        eps_pl = isotope_prediction(p, iso, U)
+        win = p.isotope_window_sigma * isotope_sigma(p, iso, U)
+        cons.append((win - (eps_pl - iso["value"])) / iso["sigma"])
+        cons.append((eps_pl - iso["value"] + win) / iso["sigma"])
     C = np.stack(cons, axis=1) if cons else np.zeros((U.shape[0], 0))
     return {"r": r, "chi2": chi2, "cons": C, "cmf": fwd["cmf"], "M_s": fwd["M_s"],
             "k": fwd["k"]}
 
 
-def _isotope_rows(p: Problem, B: int) -> tuple[np.ndarray, np.ndarray]:
-    """Isotope windows as rows G u <= 0 (B, 2 g, m)."""
+def isotope_sigma(p: Problem, iso: dict, U: np.ndarray) -> np.ndarray:
+    """Isotope 1-sigma widened by the end-members' uncertainties at weights ``U`` (B, m).
+
+    ``sigma_eff**2 = sigma_obs**2 + sum_k phi_k**2 (s_k**2 + r_k**2 (eps_k - eps_mix)**2)``
+    with ``phi_k = u_k q_k / sum_j u_j q_j`` (the formula and a worked example are in
+    :func:`inversion.isotopes.effective_sigma`; this is the same, batched).
+    """
+    K = p.Q.shape[-2]
+    B = U.shape[0]
+    if "eps_sigma" not in iso:
+        return np.full(B, float(iso["sigma"]))
+    eps, q, s = (np.broadcast_to(np.asarray(iso[k], float), (B, K))
+                 for k in ("eps", "q_carrier", "eps_sigma"))
+    r = np.broadcast_to(np.asarray(iso.get("q_carrier_rel_sigma", np.zeros(K)), float),
+                        (B, K))
+    if p.late_name is not None:
+        eps = np.concatenate([eps, np.full((B, 1), iso["eps_late"])], axis=1)
+        q = np.concatenate([q, np.full((B, 1), iso["q_late"])], axis=1)
+        s = np.concatenate([s, np.full((B, 1), iso.get("eps_sigma_late", 0.0))], axis=1)
+        r = np.concatenate([r, np.full((B, 1), iso.get("q_carrier_rel_sigma_late", 0.0))],
+                           axis=1)
+    uq = np.clip(U[:, :eps.shape[1]], 0.0, None) * q
+    phi = uq / np.maximum(uq.sum(axis=1, keepdims=True), 1e-300)
+    mix = (phi * eps).sum(axis=1, keepdims=True)
+    var = iso["sigma"] ** 2 + (phi ** 2 * (s ** 2 + r ** 2 * (eps - mix) ** 2)).sum(axis=1)
+    return np.sqrt(var)
+
+
+def isotope_prediction(p: Problem, iso: dict, U: np.ndarray) -> np.ndarray:
+    """Carrier-weighted isotope anomaly of the mixtures ``U`` (B, m):
+    ``sum_k u_k q_k eps_k / sum_k u_k q_k`` over the blocks and the late component."""
+    K = p.Q.shape[-2]
+    B = U.shape[0]
+    q = np.broadcast_to(np.asarray(iso["q_carrier"], float), (B, K))
+    eps = np.broadcast_to(np.asarray(iso["eps"], float), (B, K))
+    num = (U[:, :K] * q * eps).sum(axis=1)
+    den = (U[:, :K] * q).sum(axis=1)
+    if p.late_name is not None:
+        num = num + U[:, K] * iso["q_late"] * iso["eps_late"]
+        den = den + U[:, K] * iso["q_late"]
+    return num / np.where(den > 0, den, 1e-300)
+
+
+def _isotope_rows(p: Problem, B: int, U: np.ndarray | None = None
+                  ) -> tuple[np.ndarray, np.ndarray]:
+    """Isotope windows as rows G u <= 0 (B, 2 g, m), the windows widened by the
+    end-members' uncertainties at the weights ``U`` (the current point of the polish;
+    at the answer each window is the one of its own weights)."""
     K = p.Q.shape[-2]
     has_late = p.late_name is not None
     rows = []
@@ -184,7 +239,8 @@ def _isotope_rows(p: Problem, B: int) -> tuple[np.ndarray, np.ndarray]:
         if has_late:
             qc = np.concatenate([qc, np.full((B, 1), iso["q_late"])], axis=1)
             eps = np.concatenate([eps, np.full((B, 1), iso["eps_late"])], axis=1)
-        win = p.isotope_window_sigma * iso["sigma"]
+        sig = np.full(B, float(iso["sigma"])) if U is None else isotope_sigma(p, iso, U)
+        win = (p.isotope_window_sigma * sig)[:, None]
         rows.append(qc * (eps - iso["value"] - win))
         rows.append(-qc * (eps - iso["value"] + win))
     m = K + has_late
@@ -380,7 +436,7 @@ def polish(p: Problem, U0: np.ndarray, TH0: np.ndarray, *,
         bsub = {"r": r[idx], "cons": cons[idx]}
         bnd = (bounds[0][idx], bounds[1][idx])
         Jr, Jc = _jacobian(pr, U[idx], TH[idx], bsub, settings, cmf_range, bnd[1])
-        Giso, _ = _isotope_rows(pr, idx.size)
+        Giso = np.zeros((idx.size, 0, m))
         g_act = None if act_sets is None else act_sets[idx]
         Un, Tn, _pred, ok, act = _linearised_step(pr, U[idx], TH[idx], bsub, Jr, Jc, Giso,
                                                   lam[idx], bnd, m, g_act)
@@ -420,7 +476,7 @@ def first_order_residual(p: Problem, U: np.ndarray, TH: np.ndarray, *,
     pr = row_problem(p, np.arange(B))
     base = evaluate(pr, U, TH, cmf_range=cmf_range)
     Jr, Jc = _jacobian(pr, U, TH, base, settings, cmf_range, bounds[1])
-    Giso, _ = _isotope_rows(pr, B)
+    Giso = np.zeros((B, 0, m))
     _, _, pred, ok, _ = _linearised_step(pr, U, TH, base, Jr, Jc, Giso, np.full(B, 1e-12),
                                          bounds, m)
     return np.where(ok, np.maximum(base["chi2"] - pred, 0.0), np.nan)
@@ -456,7 +512,6 @@ def curvature(p: Problem, u: np.ndarray, th: np.ndarray, *,
     pr = row_problem(p, np.arange(1))
     base = evaluate(pr, U, TH, cmf_range=cmf_range)
     Jr, Jc = _jacobian(pr, U, TH, base, settings, cmf_range)
-    Giso, _ = _isotope_rows(pr, 1)
     J = Jr[0]
     m = U.shape[1]
     n = J.shape[1]
@@ -481,14 +536,11 @@ def curvature(p: Problem, u: np.ndarray, th: np.ndarray, *,
             e[m + j] = 1.0
             eq.append(e)
             names.append(f"{f.params[j]} at {th[j]:.6g} (a bound or a kink of the form)")
-    for i, g in enumerate(Giso[0]):
-        if abs(g @ U[0]) <= active_tol * (1.0 + np.abs(g).sum()):
-            eq.append(np.concatenate([g, np.zeros(n - m)]))
-            iso = p.isotopes[i // 2]
-            names.append(f"{iso['name']} window ({'upper' if i % 2 == 0 else 'lower'} edge)")
     cons_names = (["iron budget"] if p.mantle_Fe is not None else []) + (
         ["late-accretion bound"] if p.late_name is not None else []) + (
-        ["CMF range low", "CMF range high"] if cmf_range is not None else [])
+        ["CMF range low", "CMF range high"] if cmf_range is not None else []) + [
+        f"{iso['name']} window ({edge} edge)" for iso in p.isotopes
+        for edge in ("upper", "lower")]
     for c, jc, nm in zip(base["cons"][0], Jc[0], cons_names, strict=True):
         if c <= 1e-6:
             eq.append(jc)
