@@ -15,7 +15,9 @@ Likelihood of the fitted elements (observed ``y_i``, 1-sigma ``sigma_i`` dex)::
 
     y_i ~ StudentT(nu = 4, mu_i(theta), sqrt(sigma_i**2 + tau**2))
 
-with ``tau`` a model-scatter term (HalfNormal(0.05) dex). Each isotope anomaly of the
+with ``tau`` a model-scatter term (HalfNormal(0.05) dex); where the problem carries the
+blocks' uncertainties (``Problem.Q_sigma_dex``) the scale also holds the end-member term
+``sigma_model_i`` of :func:`end_member_sigma_dex` (added in quadrature). Each isotope anomaly of the
 case adds ``eps_obs ~ Normal(eps_planet(w, v), sigma_eff(w, v))`` with ``eps_planet`` the
 carrier-weighted mass balance of the building blocks and the late component, and
 ``sigma_eff**2 = sigma_obs**2 + sum_k phi_k**2 (s_k**2 + r_k**2 (eps_k - eps_planet)**2)``
@@ -52,7 +54,8 @@ from .volatility import get_form
 __all__ = ["SamplerSettings", "Diagnostics", "SampleResult", "PRIOR_DISTRIBUTIONS",
            "GATE_RHAT_MAX", "GATE_ESS_BULK_MIN", "GATE_DIVERGENCES_MAX", "CORE_UNROLL",
            "STUDENT_NU", "default_priors", "check_priors", "check_sampler_settings",
-           "build_model", "pt_log10_retained", "model_log10N", "sample", "diagnose",
+           "build_model", "end_member_sigma_dex", "pt_log10_retained", "model_log10N",
+           "sample", "diagnose",
            "summary_table", "planet_draws", "posterior_planet", "outliers", "posterior_arrays",
            "main_parameters", "compare_runs"]
 
@@ -573,6 +576,32 @@ def _prior_rv(name: str, spec: dict[str, Any], **kw: Any):
     return getattr(pm, spec["dist"])(name, **pars, **kw)
 
 
+def end_member_sigma_dex(p: Problem, w: Any, *, xp: Any = np) -> Any:
+    """Model 1-sigma [dex] of the fitted elements from the blocks' own uncertainties.
+
+    The bulk ratio of element i to the reference is ``B_i = sum_k w_k Q_ki`` (R-basis
+    weights). Each ``Q_ki`` is uncertain by ``s_ki`` dex (``Problem.Q_sigma_dex``), i.e.
+    ``dQ_ki = ln10 Q_ki s_ki`` to first order, independently between blocks. Then
+    ``var(B_i) = sum_k (w_k ln10 Q_ki s_ki)^2`` and, in dex,
+    ``sigma_model_i = sqrt(var B_i) / (ln10 B_i) = sqrt(sum_k (w_k Q_ki s_ki)^2) / B_i``.
+    Volatility and core factors multiply ``B_i`` and leave the relative spread unchanged;
+    the late component's share of the mantle is neglected (conservative for the HSE).
+    (Fully correlated block errors would give ``sum_k w_k Q_ki s_ki / B_i`` instead.)
+
+    Parameters
+    ----------
+    p : Problem
+    w : (K,) weights (numpy array or pytensor tensor)
+    xp : module
+        ``numpy`` or ``pytensor.tensor``.
+    """
+    fit = p.fit_index
+    Q = np.asarray(p.Q, float)[:, fit]
+    S = np.asarray(p.Q_sigma_dex, float)[:, fit]
+    wq = w[:, None] * Q
+    return xp.sqrt(xp.sum((wq * S) ** 2, axis=0)) / xp.sum(wq, axis=0)
+
+
 def build_model(p: Problem, priors: dict[str, dict[str, Any]] | None = None, *,
                 y: np.ndarray | None = None, iterations: int | None = None):
     """The PyMC model of problem ``p``.
@@ -642,6 +671,11 @@ def build_model(p: Problem, priors: dict[str, dict[str, Any]] | None = None, *,
         # the squared uncertainties enter as data, not a constant: pytensor 2.38's
         # constant-inlining rewrite fails (harmlessly, but loudly) on the constant form
         sigma2 = pm.Data("sigma2_data", p.sigma ** 2, dims="elements")
+        if p.Q_sigma_dex is not None and np.any(p.Q_sigma_dex[:, p.fit_index] > 0):
+            # end-member uncertainties (errors in variables, marginalised to first order):
+            # sigma_model_i = sqrt(sum_k (w_k Q_ki s_ki)^2) / sum_k w_k Q_ki  [dex]
+            sigma2 = sigma2 + pm.Deterministic(
+                "sigma_model", end_member_sigma_dex(p, w, xp=pt), dims="elements") ** 2
         scale = pt.sqrt(sigma2 + tau ** 2)
         y_data = pm.Data("y_data", y, dims="elements")
         pm.StudentT(OBS_ELEMENTS, nu=STUDENT_NU, mu=mu, sigma=scale, observed=y_data,
@@ -1252,7 +1286,12 @@ def main_parameters(p: Problem, idata: Any, planet: pd.DataFrame | None = None
 
 def compare_runs(idatas: dict[str, Any], *, evidence: dict[str, float | None] | None = None
                  ) -> pd.DataFrame:
-    """Rank posteriors of the same observations by PSIS-LOO (``arviz.compare``).
+    """Rank posteriors of the same target by PSIS-LOO (``arviz.compare``).
+
+    Runs whose fitted element sets differ are compared on the elements they share: the
+    pointwise log-likelihood of every other element is dropped (a LOO sum over different
+    elements would not compare like with like), and ``table.attrs["left_out"]`` names,
+    per run, the elements left out.
 
     Parameters
     ----------
@@ -1262,32 +1301,88 @@ def compare_runs(idatas: dict[str, Any], *, evidence: dict[str, float | None] | 
         label -> log marginal likelihood (SMC); adds ``log_marginal_likelihood`` and
         ``log10_bayes_factor`` against the best-ranked run where known.
 
+    Returns
+    -------
+    DataFrame
+        ``arviz.compare`` columns (``elpd_loo``, ``se``, ``elpd_diff``, ``dse``, ``p_loo``,
+        ``weight``, ``warning``...) and per run: ``within_uncertainty`` (True when
+        ``|elpd_diff| <= 2 dse``: the difference from the best run is not resolved),
+        ``pareto_k_max``, ``pareto_k_high`` (elements with k > 0.7) and ``reading`` (one
+        sentence). ``attrs``: ``shared_elements``, ``left_out`` and ``pareto_k_advice``.
+
+    Notes
+    -----
+    Pareto k is the shape of the tail fitted to the importance weights of each left-out
+    element. Above 0.7 the importance-sampling estimate of that element's predictive
+    density is unreliable (Vehtari, Gelman & Gabry 2017, Stat. Comput. 27, 1413;
+    Vehtari et al. 2024, JMLR 25, 1): the element dominates its own fit (often an
+    element off the trend). The remedy is to refit without that element and score it
+    exactly, or to exclude it from both runs. A difference of less than about two of its
+    standard errors is within its uncertainty (common practice).
+
     Raises
     ------
     InputError
-        Fewer than two runs, a run without log-likelihood, or runs of different data.
+        Fewer than two runs, a run without log-likelihood, runs sharing fewer than three
+        elements, or different observed values of a shared element.
     """
     import arviz as az
 
     if len(idatas) < 2:
         raise InputError("give at least two result folders to compare", field="DIR")
-    ref_label, ref = next(iter(idatas.items()))
     for label, idata in idatas.items():
         if "log_likelihood" not in idata.groups() or OBS_ELEMENTS not in idata.log_likelihood:
             raise InputError("the posterior has no log-likelihood of the elements",
                              file=label, field="log_likelihood")
-        a = ref.observed_data[OBS_ELEMENTS]
-        b = idata.observed_data[OBS_ELEMENTS]
-        if (list(a["elements"].values) != list(b["elements"].values)
-                or not np.allclose(a.values, b.values)):
-            raise InputError(f"observations differ from those of {ref_label}; PSIS-LOO "
-                             "compares posteriors of the same target and fitted elements",
-                             file=label, field="observed_data")
-
+    sets = {label: [str(e) for e in idata.observed_data[OBS_ELEMENTS]["elements"].values]
+            for label, idata in idatas.items()}
+    shared = [e for e in next(iter(sets.values()))
+              if all(e in s for s in sets.values())]
+    if len(shared) < 3:
+        raise InputError(f"the runs share only {len(shared)} fitted elements ({shared}); "
+                         "PSIS-LOO needs runs of the same target", field="observed_data")
+    left_out = {label: [e for e in s if e not in shared] for label, s in sets.items()}
+    ref_label = next(iter(idatas))
+    ref_obs = idatas[ref_label].observed_data[OBS_ELEMENTS].sel(elements=shared)
+    used = {}
+    for label, idata in idatas.items():
+        obs = idata.observed_data[OBS_ELEMENTS].sel(elements=shared)
+        if not np.allclose(obs.values, ref_obs.values):
+            bad = [e for e, a, b in zip(shared, obs.values, ref_obs.values, strict=True)
+                   if not np.isclose(a, b)]
+            raise InputError(f"observed values of {bad} differ from those of {ref_label}; "
+                             "PSIS-LOO compares posteriors of the same target", file=label,
+                             field="observed_data")
+        used[label] = idata.sel(elements=shared) if left_out[label] else idata
+    pareto: dict[str, tuple[float, list[str]]] = {}
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        table = az.compare(idatas, ic="loo", var_name=OBS_ELEMENTS)
+        table = az.compare(used, ic="loo", var_name=OBS_ELEMENTS)
+        for label, idata in used.items():
+            k = np.asarray(az.loo(idata, pointwise=True, var_name=OBS_ELEMENTS).pareto_k)
+            pareto[label] = (float(np.max(k)), [e for e, kk in zip(shared, k, strict=True)
+                                                if kk > 0.7])
     table = table.reset_index().rename(columns={"index": "run"})
+    diff = table["elpd_diff"].to_numpy(float)
+    dse = table["dse"].to_numpy(float)
+    table["within_uncertainty"] = np.abs(diff) <= 2.0 * dse
+    table["pareto_k_max"] = [pareto[r][0] for r in table["run"]]
+    table["pareto_k_high"] = [" ".join(pareto[r][1]) for r in table["run"]]
+    reading = []
+    for i, r in enumerate(table["run"]):
+        if i == 0:
+            text = "best by PSIS-LOO"
+        elif table["within_uncertainty"].iloc[i]:
+            text = (f"elpd difference {diff[i]:.2f} ± {dse[i]:.2f}: within its uncertainty "
+                    "(< 2 standard errors), not distinguishable from the best")
+        else:
+            text = (f"elpd difference {diff[i]:.2f} ± {dse[i]:.2f}: worse than the best by "
+                    f"{diff[i] / dse[i]:.1f} standard errors" if dse[i] > 0 else
+                    f"elpd difference {diff[i]:.2f}")
+        if pareto[r][1]:
+            text += f"; Pareto k > 0.7 for {', '.join(pareto[r][1])}"
+        reading.append(text)
+    table["reading"] = reading
     if evidence:
         lml = [evidence.get(r) for r in table["run"]]
         table["log_marginal_likelihood"] = lml
@@ -1295,6 +1390,13 @@ def compare_runs(idatas: dict[str, Any], *, evidence: dict[str, float | None] | 
         table["log10_bayes_factor_vs_best"] = [
             (v - best) / math.log(10) if v is not None and best is not None else None
             for v in lml]
+    table.attrs["shared_elements"] = shared
+    table.attrs["left_out"] = {k: v for k, v in left_out.items() if v}
+    table.attrs["pareto_k_advice"] = (
+        "Pareto k > 0.7 marks an element whose left-out predictive density the importance "
+        "sampling cannot estimate reliably: the element dominates its own fit (often one "
+        "off the trend). Refit without it and score it exactly, or exclude it in every "
+        "run, before reading the elpd differences.")
     return table
 
 

@@ -129,3 +129,23 @@ def test_derived_rows_bias_is_not_hidden():
     r = [c.composition[e] / ci[e] / factor for e in REE if c.provenance.get(e) != "derived"
          and e in c.composition.index]
     assert 0.74 < float(np.mean(r)) < 0.88
+
+
+def test_end_member_sigma_matches_monte_carlo(earth11):
+    """Simulate the blocks within their uncertainties (log-normal, independent) and compare
+    the spread of the mixture's log10 bulk ratio with the first-order formula."""
+    from inversion.bayes import end_member_sigma_dex
+
+    p = earth11.subset(["CV", "EH", "H"])
+    w = np.array([0.2, 0.5, 0.3])
+    got = end_member_sigma_dex(p, w)
+    rng = np.random.default_rng(11)
+    fit = p.fit_index
+    Q, S = p.Q[:, fit], p.Q_sigma_dex[:, fit]
+    draws = Q[None] * 10 ** (rng.normal(size=(20000, *Q.shape)) * S[None])
+    mc = np.log10(np.einsum("k,dkn->dn", w, draws)).std(axis=0)
+    small = got < 0.1  # first order holds for small spreads
+    assert small.sum() > 30
+    np.testing.assert_allclose(got[small], mc[small], rtol=0.15)
+    # a block with zero weight contributes nothing
+    assert end_member_sigma_dex(p, np.array([0.0, 1.0, 0.0])) == pytest.approx(S[1])
