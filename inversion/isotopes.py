@@ -41,6 +41,7 @@ __all__ = [
     "window_halfwidth",
     "conservative_sigma",
     "feasibility_report",
+    "WINDOWS",
 ]
 
 
@@ -230,19 +231,22 @@ def conservative_sigma(p: Problem, iso: dict[str, Any], *, M_s: float | None = N
     Notes
     -----
     ``sum_k phi_k**2 s_k**2 <= max_k s_k**2`` (``phi`` on the simplex) and, since
-    ``|eps_k - eps_mix| <= (1 - phi_k) D`` with ``D`` the width of the reachable
-    interval and ``sum_k phi_k**2 (1 - phi_k)**2 <= 1/4``, the carrier term is at most
-    ``max_k r_k**2 D**2 / 4``::
+    ``|eps_k - eps_mix| <= (1 - phi_k) D`` with ``D = max_k eps_k - min_k eps_k`` over
+    the columns (blocks and late component) and ``sum_k phi_k**2 (1 - phi_k)**2 <= c``
+    (``c = 1/8`` for two columns, where the sum is ``2 phi**2 (1 - phi)**2``; ``c = 1/4``
+    otherwise, from ``phi (1 - phi) <= 1/4`` and ``sum_k phi_k (1 - phi_k) <= 1``)::
 
-        sigma_max**2 = sigma_obs**2 + max_k s_k**2 + max_k r_k**2 D**2 / 4
+        sigma_max**2 = sigma_obs**2 + max_k s_k**2 + c max_k r_k**2 D**2
 
     A window of ``n_sigma * sigma_max`` is never narrower than the one at any weights,
     so a system that misses it is out of reach whatever the mixture.
     """
-    _, _, s, r = _columns(p, iso)
-    lo, hi = reachable_intervals(p, M_s=M_s)[iso["name"]]
-    var = float(iso["sigma"]) ** 2 + float(np.max(s ** 2)) + float(np.max(r ** 2)) * (
-        hi - lo) ** 2 / 4.0
+    eps, _, s, r = _columns(p, iso)
+    if p.late_name is not None and late_weight_bound(p, M_s) <= 0:
+        eps, s, r = eps[:-1], s[:-1], r[:-1]
+    c = 0.125 if eps.size == 2 else 0.25
+    var = float(iso["sigma"]) ** 2 + float(np.max(s ** 2)) + c * float(np.max(r ** 2)) * (
+        float(eps.max() - eps.min())) ** 2
     return float(np.sqrt(var))
 
 
@@ -309,8 +313,14 @@ def _lp_feasible(rows: list[np.ndarray], h: list[float], m: int, late: bool,
     return res.status == 0
 
 
-def feasibility_report(p: Problem, *, u: np.ndarray | None = None,
-                       M_s: float | None = None,
+#: How :func:`feasibility_report` sets each window's half-width.
+WINDOWS = ("conservative", "observed", "at_weights")
+_WINDOW_NOTE = {"conservative": " with end-member errors", "observed": "",
+                "at_weights": " at the current weights"}
+
+
+def feasibility_report(p: Problem, *, window: str = "conservative",
+                       u: np.ndarray | None = None, M_s: float | None = None,
                        extra: tuple[np.ndarray, np.ndarray] | None = None,
                        extra_name: str = "iron budget") -> FeasibilityReport:
     """Name the isotope constraints one hypothesis cannot meet, alone or together.
@@ -319,11 +329,16 @@ def feasibility_report(p: Problem, *, u: np.ndarray | None = None,
     ----------
     p : Problem
         One hypothesis (``p.subset(names)``).
+    window : {"conservative", "observed", "at_weights"}
+        Half-width of each window, in units of ``p.isotope_window_sigma``:
+        ``conservative`` (default) the widest ``sigma_eff`` any mixture can have
+        (:func:`conservative_sigma`), so a failure reported holds whatever the weights
+        and the end-members' errors; ``observed`` the observation's own 1-sigma (the
+        end-members taken as exact); ``at_weights`` ``sigma_eff(u)`` at the weights ``u``
+        (:func:`window_halfwidth`), as the fit uses them.
     u : array_like, optional
-        Current R-basis weights (K, or K + 1 with the late component): the windows are
-        then ``p.isotope_window_sigma * sigma_eff(u)`` (:func:`window_halfwidth`).
-        Without it each window uses :func:`conservative_sigma`, the widest any mixture
-        can have, so a failure reported does not depend on where the weights are.
+        R-basis weights (K, or K + 1 with the late component); required by
+        ``window="at_weights"`` and refused otherwise.
     M_s : float, optional
         Silicate mass per unit R for the late component's cap (:func:`late_weight_bound`).
     extra : (G, h), optional
@@ -350,6 +365,10 @@ def feasibility_report(p: Problem, *, u: np.ndarray | None = None,
     (scipy's HiGHS); only minimal failing combinations are reported.
     """
     _check_single(p)
+    if window not in WINDOWS:
+        raise ValueError(f"window must be one of {list(WINDOWS)}, not {window!r}")
+    if (window == "at_weights") != (u is not None):
+        raise ValueError("give u exactly when window='at_weights'")
     late = p.late_name is not None
     K = len(p.components)
     m = K + late
@@ -363,8 +382,10 @@ def feasibility_report(p: Problem, *, u: np.ndarray | None = None,
     rows: dict[str, tuple[list[np.ndarray], list[float]]] = {}
     for iso in p.isotopes:
         name = iso["name"]
-        if u is not None:
+        if window == "at_weights":
             w = window_halfwidth(iso, np.asarray(u, float), n_sigma=n_sig)
+        elif window == "observed":
+            w = n_sig * float(iso["sigma"])
         else:
             w = n_sig * conservative_sigma(p, iso, M_s=M_s)
         half[name] = w
@@ -380,8 +401,8 @@ def feasibility_report(p: Problem, *, u: np.ndarray | None = None,
         if windows[name][1] < lo or windows[name][0] > hi:
             alone.append(name)
             messages.append(f"{name}: observed {iso['value']:.3g} +- {half[name]:.2g} "
-                            f"({n_sig:g} sigma window); {where} reaches "
-                            f"[{lo:.2f}, {hi:.2f}]")
+                            f"({n_sig:g} sigma window{_WINDOW_NOTE[window]}); {where} "
+                            f"reaches [{lo:.2f}, {hi:.2f}]")
     if extra is not None:
         G, h = (np.atleast_2d(np.asarray(extra[0], float)),
                 np.atleast_1d(np.asarray(extra[1], float)))

@@ -108,8 +108,16 @@ def test_one_system_out_of_reach_is_named_alone(two_blocks):
     assert rep.alone == ("eA",)
     assert rep.joint == ()
     assert rep.intervals["eA"] == pytest.approx((1.0, 2.0))
-    assert rep.lines() == ["eA: observed 0 +- 0.1 (2 sigma window); CI+EH reaches "
-                           "[1.00, 2.00]"]
+    assert rep.lines() == ["eA: observed 0 +- 0.1 (2 sigma window with end-member "
+                           "errors); CI+EH reaches [1.00, 2.00]"]
+    assert feasibility_report(p, window="observed").lines() == [
+        "eA: observed 0 +- 0.1 (2 sigma window); CI+EH reaches [1.00, 2.00]"]
+    with pytest.raises(ValueError, match="one of"):
+        feasibility_report(p, window="wide")
+    with pytest.raises(ValueError, match="exactly when"):
+        feasibility_report(p, window="at_weights")
+    rep = feasibility_report(p, window="at_weights", u=np.array([0.5, 0.5]))
+    assert rep.alone == ("eA",)
 
 
 def test_systems_failing_only_together_are_named_joint(two_blocks):
@@ -278,3 +286,28 @@ def test_bayesian_isotope_sigma_is_the_window_formula(earth):
         assert np.all(s > [d["sigma"] for d in p.isotopes])
         n += 1
     assert n == 6
+
+
+def test_conservative_window_bounds_mixtures_with_the_late_column(earth):
+    # three columns (two blocks and the late CI at most v_max): the bound uses c = 1/4
+    p = earth.subset(("CV", "L"))
+    v_max = late_weight_bound(p)
+    rng = np.random.default_rng(5)
+    for iso in p.isotopes:
+        bound = conservative_sigma(p, iso)
+        for _ in range(300):
+            w = rng.dirichlet([0.5, 0.5])
+            v = rng.uniform(0, v_max)
+            assert effective_sigma(iso, np.append((1 - v) * w, v)) <= bound + 1e-12
+
+
+def test_earth_cv_plus_l_fails_jointly_only_without_end_member_errors(earth):
+    # Library values: CV + L reaches e54Cr 0 and e50Ti 0 each (CV e54Cr 0.86, e50Ti 3.5;
+    # L -0.38, -0.65; Trinquier et al. 2007, 2009, Zhang et al. 2012, from memory), but
+    # not at the same mixture within the observed +-0.1 windows; with the end-members'
+    # own errors (and ~10 % carrier-concentration errors) the windows overlap.
+    p = earth.subset(("CV", "L"))
+    strict = feasibility_report(p, window="observed")
+    assert strict.alone == ()
+    assert strict.joint == (("e54Cr", "e50Ti"),)
+    assert feasibility_report(p).feasible
