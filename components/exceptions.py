@@ -51,7 +51,8 @@ class InputError(PlanetmixError, ValueError):
         self.row = row
         self.field = field
         self.value = value
-        self.reason = message
+        # one line, always: a message from a parser may carry line breaks
+        self.reason = " ".join(str(message).split())
         super().__init__(self._compose())
 
     def _compose(self) -> str:
@@ -63,8 +64,13 @@ class InputError(PlanetmixError, ValueError):
         if self.field is not None:
             where.append(f"field '{self.field}'")
         head = ", ".join(where)
-        shown = "" if self.value is None else f" (got {self.value!r})"
+        shown = "" if self.value is None else f" (got {_short(self.value)})"
         return f"{head}: {self.reason}{shown}" if head else f"{self.reason}{shown}"
+
+
+def _short(value: object, limit: int = 120) -> str:
+    text = repr(value)
+    return text if len(text) <= limit else text[: limit - 3] + "..."
 
 
 class SolverError(PlanetmixError, RuntimeError):
