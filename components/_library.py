@@ -110,7 +110,8 @@ class Component:
         How each value was obtained, one of :data:`PROVENANCE_LEVELS`.
     uncertainty_basis : pandas.Series
         ``source`` (the uncertainty is the source's), ``default`` (the documented default
-        by element class and provenance level) or empty (none given).
+        by element class and provenance level), ``spread`` (the default and the difference
+        between two copies of the value, in quadrature) or empty (none given).
     """
 
     name: str
@@ -269,8 +270,9 @@ def _provenance_columns(df: pd.DataFrame, parsed, *, file: str, require: bool
              if "uncertainty_basis" not in df.columns
              else [str(v).strip() for v in df["uncertainty_basis"]])
     for i, b in enumerate(basis):
-        if b not in ("", "source", "default"):
-            raise InputError("uncertainty_basis is 'source', 'default' or empty", file=file,
+        if b not in ("", "source", "default", "spread"):
+            raise InputError("uncertainty_basis is 'source', 'default', 'spread' or empty",
+                             file=file,
                              row=i + 2, field="uncertainty_basis", value=b)
     return (pd.Series(prov, index=idx, name="provenance", dtype=object),
             pd.Series(basis, index=idx, name="uncertainty_basis", dtype=object))
