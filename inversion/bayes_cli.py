@@ -205,8 +205,18 @@ def _compare(parser: argparse.ArgumentParser):
                 "weight", "warning", "gate"]
         if "log_marginal_likelihood" in table:
             cols += ["log_marginal_likelihood", "log10_bayes_factor_vs_best"]
+        cols += ["within_uncertainty", "pareto_k_max", "pareto_k_high", "reading"]
+        attrs = dict(table.attrs)
         table = table[cols]
-        print(table.to_string(index=False, float_format=lambda v: f"{v:.3f}"))
+        print(table.drop(columns=["run", "reading"]).to_string(
+            index=False, float_format=lambda v: f"{v:.3f}"))
+        for _, r in table.iterrows():
+            print(f"  {r['components']} ({r['run']}): {r['reading']}")
+        for label, els in attrs.get("left_out", {}).items():
+            print(f"  compared on the {len(attrs['shared_elements'])} shared elements; "
+                  f"left out of {label}: {', '.join(els)}")
+        if table["pareto_k_high"].astype(bool).any():
+            print("  " + attrs["pareto_k_advice"])
         if "log10_bayes_factor_vs_best" in table:
             for _, r in table.iloc[1:].iterrows():
                 bf = r["log10_bayes_factor_vs_best"]
@@ -214,8 +224,14 @@ def _compare(parser: argparse.ArgumentParser):
                     print(f"  Bayes factor {table.iloc[0]['run']} : {r['run']} = "
                           f"10^{-bf:.2f}")
         if args.out:
+            from .output import provenance, write_json
+
             with atomic_folder(args.out) as tmp:
                 table.to_csv(tmp / "comparison.csv", index=False)
+                write_json(tmp / "comparison.json", {
+                    "runs": list(table["run"]), **attrs,
+                    "provenance": provenance(tables=[], extra={"compared_folders": list(
+                        table["run"]), "criterion": "PSIS-LOO (elpd), arviz.compare"})})
             print(f"written to {args.out}/comparison.csv")
         return EXIT_OK
 

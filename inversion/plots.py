@@ -18,7 +18,7 @@ Figures
 - :func:`weights_plot`: building-block weights, point estimates or posterior draws.
 - :func:`pair_plot`: pairwise posterior of the main parameters.
 - :func:`ranking_plot`: the hypothesis ranking (delta BIC / AIC / LOO).
-- :func:`planet_plot`: mantle oxides, core, CMF and molar ratios (with intervals).
+- :func:`planet_plot`: mantle major and minor oxides and the core (with intervals).
 - :func:`heat_plot`: radiogenic heat production through time.
 - :func:`distribution_plot`: distributions of planet properties across a catalogue.
 """
@@ -70,11 +70,11 @@ _COSMO_LABEL = {"refractory": "refractory", "main_component": "main\ncomponent",
                 "highly_volatile": "highly volatile"}
 
 _RC = {
-    "figure.dpi": 110, "savefig.dpi": 150, "font.size": 9, "axes.titlesize": 10,
+    "figure.dpi": 110, "savefig.dpi": 300, "font.size": 9, "axes.titlesize": 10,
     "axes.labelsize": 9, "axes.spines.top": False, "axes.spines.right": False,
     "axes.grid": True, "grid.color": "#e4e4e4", "grid.linewidth": 0.6,
     "axes.axisbelow": True, "legend.frameon": False, "legend.fontsize": 8,
-    "xtick.labelsize": 8, "ytick.labelsize": 8, "svg.fonttype": "none",
+    "xtick.labelsize": 8, "ytick.labelsize": 8, "svg.fonttype": "none", "pdf.fonttype": 42,
     "axes.prop_cycle": matplotlib.cycler(color=_SERIES),
     "font.family": "DejaVu Sans",
 }
@@ -515,8 +515,9 @@ def ranking_plot(table: pd.DataFrame, *, criterion: str | None = None, top: int 
         ax.set_yticks(y, labels, fontsize=8)
         name = {"bic": "BIC", "aic": "AIC", "chi2": "chi2",
                 "elpd_loo": "elpd (PSIS-LOO)"}.get(criterion, criterion)
+        scale_note = "\naxis linear to 10, logarithmic above" if symlog else ""
         ax.set_xlabel(f"Δ{name} from the best hypothesis (0 = best; green ≤ 2, orange ≤ 10, "
-                      f"red > 10){'; linear to 10, logarithmic above' if symlog else ''}")
+                      f"red > 10){scale_note}")
         ax.grid(axis="y", visible=False)
         if title:
             ax.set_title(title, loc="left")
@@ -533,9 +534,17 @@ def _intervals(df: pd.DataFrame) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     return v, z, z
 
 
+#: Mantle oxides at or above this level [wt%] are drawn as bars; the rest are trace
+#: elements, reported in ppm or ppb (see :func:`inversion.report`).
+MAJOR_OXIDE_MIN_WT = 0.01
+
+
 def planet_plot(planet: pd.DataFrame, *, reference: Mapping[str, tuple[float, str]] | None = None,
                 title: str | None = None) -> Figure:
-    """Whole-planet composition: mantle oxides, core, CMF and molar ratios.
+    """Whole-planet composition: the mantle's major and minor oxides and the core.
+
+    Ratios and the core mass fraction are numbers of different kinds: the reports give
+    them as a table, not on a shared axis.
 
     Parameters
     ----------
@@ -543,69 +552,63 @@ def planet_plot(planet: pd.DataFrame, *, reference: Mapping[str, tuple[float, st
         Tidy table with ``reservoir`` (mantle, core, ratio, planet), ``species``, ``value``,
         ``unit`` and optionally ``lo``/``hi`` (an interval, same unit).
     reference : mapping, optional
-        Species -> (value, label) of known values to mark (e.g. the Earth's CMF).
+        Species -> (value, label) of known values to mark with a star (e.g. the
+        primitive mantle's MgO).
     """
     reference = dict(reference or {})
     mant = planet[(planet["reservoir"] == "mantle") & (planet["unit"] == "wt%")]
+    mant = mant[mant["value"].astype(float) >= MAJOR_OXIDE_MIN_WT]
     mant = mant.sort_values("value", ascending=False)
     core = planet[(planet["reservoir"] == "core")].sort_values("value", ascending=False)
     core = core.head(8)
-    rat = planet[planet["reservoir"] == "ratio"]
-    cmf = planet[planet["species"] == "core_mass_fraction"]
     with plot_style():
-        fig, axs = plt.subplots(2, 2, figsize=(10, 6.4), layout="constrained",
-                                gridspec_kw={"width_ratios": [1.5, 1]})
-        for ax, df, what, colour in ((axs[0, 0], mant, "mantle (silicate) oxides, wt%",
-                                      OKABE_ITO["blue"]),
-                                     (axs[0, 1], core, "core, wt% (leading elements)",
+        fig, axs = plt.subplots(1, 2, figsize=(7.2, 3.2), layout="constrained",
+                                gridspec_kw={"width_ratios": [max(len(mant), 1),
+                                                              max(len(core), 1) + 1]})
+        for ax, df, what, colour in ((axs[0], mant, "mantle: oxides ≥ "
+                                      f"{MAJOR_OXIDE_MIN_WT:g} wt%", OKABE_ITO["blue"]),
+                                     (axs[1], core, "core: leading elements",
                                       OKABE_ITO["orange"])):
             if len(df):
                 v, lo, hi = _intervals(df)
                 x = np.arange(len(df))
-                ax.bar(x, v, color=colour, alpha=0.85)
+                ax.bar(x, v, color=colour, alpha=0.85, width=0.7)
                 if np.any(lo + hi > 0):
                     ax.errorbar(x, v, yerr=[lo, hi], fmt="none", ecolor="black", capsize=2,
                                 lw=0.8)
+                for xi, sp in zip(x, df["species"], strict=True):
+                    if sp in reference:
+                        ax.plot(xi, reference[sp][0], marker="*", ms=8, color="black",
+                                ls="none")
                 ax.set_yscale("log")
-                ax.set_xticks(x, df["species"], rotation=60, fontsize=7.5)
+                ax.set_xticks(x, [_subscript(str(sp)) for sp in df["species"]], fontsize=7.5,
+                              rotation=45 if len(df) > 8 else 0, ha="right" if len(df) > 8
+                              else "center", rotation_mode="anchor")
+                ax.set_ylabel("wt%")
+                ax.set_ylim(float(np.min(v)) / 2.5, float(np.max(v + hi)) * 3.0)
                 for xi, vi, top in zip(x, v, v + hi, strict=True):
-                    ax.text(xi, top * 1.12, f"{vi:.3g}", ha="center", fontsize=6.5,
-                            in_layout=False)
+                    ax.text(xi, top * 1.15, f"{vi:.3g}", ha="center", fontsize=6.0,
+                            rotation=90 if len(df) > 8 else 0, va="bottom")
             else:
                 ax.text(0.5, 0.5, "no values", transform=ax.transAxes, ha="center")
-            ax.set_title(what, loc="left")
-        ax = axs[1, 0]
-        if len(rat):
-            v, lo, hi = _intervals(rat)
-            y = np.arange(len(rat))[::-1]
-            ax.errorbar(v, y, xerr=[lo, hi], fmt="o", color=OKABE_ITO["green"], capsize=3)
-            ax.set_yticks(y, rat["species"])
-            for yi, vi, sp in zip(y, v, rat["species"], strict=True):
-                ax.text(vi, yi + 0.22, f"{vi:.3f}", ha="center", fontsize=7, in_layout=False)
-                if sp in reference:
-                    ax.plot(reference[sp][0], yi, marker="*", ms=10, color="black",
-                            ls="none")
-        ax.set_title("molar ratios (★ reference value where given)", loc="left")
-        ax = axs[1, 1]
-        if len(cmf):
-            v, lo, hi = _intervals(cmf)
-            ax.errorbar([0], v[:1], yerr=[lo[:1], hi[:1]], fmt="o", ms=8,
-                        color=OKABE_ITO["vermillion"], capsize=5, label="this result")
-            ax.text(0.08, v[0], f"{v[0]:.3f}", va="center")
-            if "core_mass_fraction" in reference:
-                rv, rl = reference["core_mass_fraction"]
-                ax.axhline(rv, color="black", ls="--", lw=1, label=rl)
-            ax.set_xlim(-0.5, 1)
-            ax.set_xticks([])
-            ax.set_ylim(0, max(0.5, float(np.nanmax(v + hi)) * 1.2))
-            ax.legend(loc="upper right")
-        ax.set_title("core mass fraction", loc="left")
+            ax.grid(axis="x", visible=False)
+            ax.set_title(what, loc="left", fontsize=9)
         if title:
-            fig.suptitle(title, x=0.01, ha="left")
+            fig.suptitle(title, x=0.01, ha="left", fontsize=9)
     return fig
 
 
-def heat_plot(heat: pd.DataFrame, *, unit: str = "TW", title: str | None = None) -> Figure:
+def _subscript(species: str) -> str:
+    """``Al2O3`` as mathtext with subscripted counts."""
+    import re
+
+    if not re.fullmatch(r"[A-Za-z0-9]+", species) or not any(ch.isdigit() for ch in species):
+        return species
+    return "$\\mathrm{" + re.sub(r"(\d+)", r"_{\1}", species) + "}$"
+
+
+def heat_plot(heat: pd.DataFrame, *, unit: str = "TW", title: str | None = None,
+              interval_label: str = "90% interval") -> Figure:
     """Radiogenic heat production through time.
 
     Parameters
@@ -625,7 +628,7 @@ def heat_plot(heat: pd.DataFrame, *, unit: str = "TW", title: str | None = None)
         if "total" in heat.columns:
             if {"total_lo", "total_hi"} <= set(heat.columns):
                 ax.fill_between(t, heat["total_lo"], heat["total_hi"], color="#bbbbbb",
-                                alpha=0.5, lw=0, label="total, 90% interval")
+                                alpha=0.5, lw=0, label=f"total, {interval_label}")
             ax.plot(t, heat["total"], color="black", lw=2.0, label="total")
             ax.text(t[0], float(heat["total"].iloc[0]), f"today {heat['total'].iloc[0]:.3g} "
                     f"{unit} ", ha="right", va="bottom", fontsize=8)
@@ -679,7 +682,8 @@ def save_figure(fig: Figure, stem: str | Path, formats: Sequence[str] = ("png", 
     paths = []
     for fmt in formats:
         path = Path(f"{stem}.{fmt}")
-        fig.savefig(path, format=fmt, metadata=_metadata(fmt))
+        with plot_style():  # rcParams apply at save time: text stays text in SVG/PDF
+            fig.savefig(path, format=fmt, metadata=_metadata(fmt), dpi=300)
         paths.append(path)
     return paths
 
@@ -693,17 +697,19 @@ def _metadata(fmt: str) -> dict[str, str | None]:
     return {}
 
 
-def png_bytes(fig: Figure, *, dpi: int = 110) -> bytes:
-    """The figure as PNG bytes."""
+def png_bytes(fig: Figure, *, dpi: int = 150) -> bytes:
+    """The figure as PNG bytes (150 dpi for reports; :func:`save_figure` writes 300)."""
     buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=dpi, metadata=_metadata("png"))
+    with plot_style():
+        fig.savefig(buf, format="png", dpi=dpi, metadata=_metadata("png"))
     return buf.getvalue()
 
 
 def svg_text(fig: Figure) -> str:
     """The figure as SVG text (fonts as text, no external references)."""
     buf = io.StringIO()
-    fig.savefig(buf, format="svg", metadata=_metadata("svg"))
+    with plot_style():
+        fig.savefig(buf, format="svg", metadata=_metadata("svg"))
     return buf.getvalue()
 
 

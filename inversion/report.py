@@ -16,6 +16,7 @@ import html
 import json
 import math
 import os
+import re
 import tempfile
 import tomllib
 from collections.abc import Callable
@@ -30,7 +31,7 @@ import pandas as pd
 from .exceptions import InputError
 
 __all__ = ["REPORT_KINDS", "detect_kind", "build_report", "Report", "render_html",
-           "MODEL_LIMITS"]
+           "MODEL_LIMITS", "mantle_trace_table"]
 
 #: Result kinds and the files that identify them (all must be present).
 #: Checked in this order: fit and sample folders may also hold the hand-off pair
@@ -217,7 +218,7 @@ def _fit_report(folder: Path) -> Report:
     vol = dict(d.get("volatility") or {})
     for k, v in vol.items():
         if k != "form" and feasible:
-            rep.key_numbers.append((f"volatility {k} ({vol.get('form')})", _fmt(v), ""))
+            rep.key_numbers.append((_vol_label(k, vol.get("form")), _fmt(v), ""))
     if feasible:
         rep.key_numbers.append(("late accretion, fraction of mantle",
                                 _fmt(d.get("late_accretion_fraction")),
@@ -276,12 +277,17 @@ def _fit_report(folder: Path) -> Report:
                             "and core mass fraction of the best fit.",
                             lambda: plots.planet_plot(planet)))
         rep.tables.append(("Planet (ratios and CMF)", _planet_summary_html(planet)))
+        trace = mantle_trace_table(planet)
+        if len(trace):
+            rep.tables.append(("Mantle trace elements (element mass, ppm = µg/g, "
+                               "ppb = ng/g)", _table_html(trace)))
         ht = _heat_table(_mantle_heat_ppm(planet), _mantle_mass(d, planet))
         if ht is not None:
             table, unit = ht
             rep.figures.append(("Radiogenic heat production", "From the mantle U, Th and K "
                                 "of the fit (Turcotte & Schubert 2014, Table 4.2).",
-                                lambda: plots.heat_plot(table, unit=unit)))
+                                lambda: plots.heat_plot(table, unit=unit,
+                                                        interval_label="interval")))
             rep.key_numbers.append((f"mantle heat production today [{unit}]",
                                     _fmt(table["total"].iloc[0]), "238U+235U+232Th+40K"))
             _add_source(rep, "turcotteschubert2014")
@@ -346,6 +352,55 @@ def _findings_lines(f: dict[str, Any]) -> list[str]:
     return out
 
 
+def mantle_trace_table(planet: pd.DataFrame, *, major_min_wt: float | None = None
+                       ) -> pd.DataFrame:
+    """The mantle's trace elements (oxides below the major/minor threshold) as elements,
+    in ppm (µg/g) from 1 ppm up and in ppb (ng/g) below.
+
+    Parameters
+    ----------
+    planet : DataFrame
+        Tidy planet table (``reservoir``, ``species`` as oxides, ``value`` [wt%], ``unit``;
+        optional ``lo``/``hi``).
+    major_min_wt : float, optional
+        Threshold [wt% oxide] (default :data:`inversion.plots.MAJOR_OXIDE_MIN_WT`).
+
+    Returns
+    -------
+    DataFrame
+        ``element``, ``value``, ``unit`` (ppm or ppb) and ``lo``/``hi`` when given.
+    """
+    import components
+
+    from .plots import MAJOR_OXIDE_MIN_WT
+
+    cut = MAJOR_OXIDE_MIN_WT if major_min_wt is None else major_min_wt
+    props = components.elements()
+    m = planet[planet["reservoir"] == "mantle"]
+    m = m[((m["unit"] == "wt%") & (m["value"].astype(float) < cut))
+          | m["unit"].isin(["ppm", "ppb"])]
+    rows = []
+    for _, r in m.iterrows():
+        if r["unit"] in ("ppm", "ppb"):  # already an element mass fraction
+            el = str(r["species"])
+            to_ppm = 1.0 if r["unit"] == "ppm" else 1e-3
+        else:
+            sp = components.parse_species(str(r["species"]))
+            if sp is None or sp[0] not in props.index:
+                continue
+            el = sp[0]
+            to_ppm = 1e4 / float(props.loc[el, "oxide_factor"])  # wt% oxide -> µg/g
+        v = float(r["value"]) * to_ppm
+        scale, unit = (1.0, "ppm") if v >= 1.0 else (1e3, "ppb")
+        row = {"element": el, "value": float(f"{v * scale:.4g}"), "unit": unit}
+        for c in ("lo", "hi"):
+            if c in m.columns and pd.notna(r[c]):
+                row[c] = float(f"{float(r[c]) * to_ppm * scale:.4g}")
+        rows.append(row)
+    cols = ["element", "value", "unit"] + [c for c in ("lo", "hi") if c in m.columns]
+    return pd.DataFrame(rows, columns=cols)
+
+
 def _planet_summary_html(planet: pd.DataFrame) -> str:
     sub = planet[planet["reservoir"].isin(["ratio", "planet"])]
     return _table_html(sub)
@@ -397,7 +452,11 @@ def _rank_report(folder: Path) -> Report:
                                 lambda: plots.weights_plot(weights)))
     show = [c for c in ("rank", "components", "status", "chi2", "aic", "bic",
                         "late_accretion_fraction", "core_mass_fraction") if c in table.columns]
-    rep.tables.append(("Top 20 hypotheses", _table_html(table[show].head(20))))
+    show += [c for c in wcols if c not in show]
+    top = table[show].head(20).rename(columns={c: f"weight {c[2:]}" for c in wcols})
+    rep.tables.append((f"The {len(top)} best of {len(table)} hypotheses (weights on the "
+                       f"reference-element basis; empty: not in the mixture)",
+                       _table_html(top)))
     rep.limits.append("Every hypothesis is fitted on the same elements, so chi2, AIC and BIC "
                       "compare across hypotheses; they do not say whether any hypothesis is "
                       "adequate in absolute terms (see the reduced chi2 of a fit).")
@@ -445,6 +504,7 @@ def _sample_report(folder: Path) -> Report:
         rep.key_numbers += _posterior_numbers(post, ref)
     summary = _read_csv(folder / "summary.csv") if (folder / "summary.csv").exists() else None
     if summary is not None:
+        summary = _user_parameters(summary)
         if not post:
             rep.key_numbers += _summary_numbers(summary)
         rep.tables.append(("Posterior summary (every parameter)", _table_html(summary)))
@@ -516,6 +576,24 @@ def _sample_report(folder: Path) -> Report:
     return rep
 
 
+#: What users call the volatility parameters.
+_VOL_NAMES = {"T0": "pivot temperature T0", "slope": "volatility slope",
+              "log10_floor": "retention floor log10 r_min", "a": "power-law exponent a",
+              "b": "power-law intercept b", "T50": "50% retention temperature T50",
+              "width": "logistic width"}
+
+
+def _vol_label(name: str, form: Any) -> str:
+    """``volatility slope [dex/K] (kinked)``: the parameter with its unit and form."""
+    from .volatility import FORMS
+
+    unit = ""
+    if form in FORMS and name in FORMS[form].params:
+        u = FORMS[form].units[FORMS[form].params.index(name)]
+        unit = "" if u == "1" else f" [{u}]"
+    return f"{_VOL_NAMES.get(name, name)}{unit} ({form})"
+
+
 def _form_of(names: list[str]) -> str | None:
     """The volatility form whose parameters are ``names`` (None when unclear)."""
     from .volatility import FORMS
@@ -544,7 +622,7 @@ def _posterior_numbers(post: dict[str, Any], ref: str) -> list[tuple[str, str, s
     vol = post.get("volatility") or {}
     for k, d in vol.items():
         if k != "form":
-            out.append((f"volatility {k} ({vol.get('form', '')})", *_interval_text(d)))
+            out.append((_vol_label(k, vol.get("form")), *_interval_text(d)))
     labels = {"late_accretion_fraction": "late accretion, fraction of mantle",
               "late_accretion_planet_fraction": "late accretion, fraction of planet",
               "core_mass_fraction": "core mass fraction",
@@ -564,11 +642,11 @@ def _gate_lines(diag: dict[str, Any]) -> list[tuple[str, str, str]]:
     if "rhat_max" in diag:
         out.append(("largest R-hat", _fmt(diag["rhat_max"]),
                     f"threshold {th.get('rhat_max', 1.01)}; worst: "
-                    f"{diag.get('worst_rhat_parameter', '?')}"))
+                    f"{_user_name(diag.get('worst_rhat_parameter', 'n/a'))}"))
     if "ess_bulk_min" in diag:
         out.append(("smallest bulk ESS", _fmt(diag["ess_bulk_min"]),
                     f"threshold {th.get('ess_bulk_min', 400)}; worst: "
-                    f"{diag.get('worst_ess_parameter', '?')}"))
+                    f"{_user_name(diag.get('worst_ess_parameter', 'n/a'))}"))
     if "divergences" in diag:
         out.append(("divergent transitions", str(diag["divergences"]),
                     f"threshold {th.get('divergences_max', 0)}"))
@@ -580,6 +658,27 @@ def _gate_lines(diag: dict[str, Any]) -> list[tuple[str, str, str]]:
                 _fmt(v) if isinstance(v, float) else str(v))
             out.append((k.replace("_", " "), text[:300], ""))
     return out
+
+
+_TRANSFORMED = re.compile(r"^(.*?)_(interval|log|simplex|logodds|lowerbound|upperbound|"
+                          r"ordered|circular|sumto1)__(.*)$")
+
+
+def _user_name(name: Any) -> str:
+    """A sampler-internal name (``T0_interval__``, ``w_simplex__[0]``) as users know it."""
+    m = _TRANSFORMED.match(str(name))
+    if not m:
+        return str(name)
+    return f"{m.group(1)} (on the sampler's unbounded scale)"
+
+
+def _user_parameters(summary: pd.DataFrame) -> pd.DataFrame:
+    """The summary without the sampler's unbounded-scale copies of the parameters (their
+    convergence is part of the gate; users read the parameters themselves)."""
+    name_col = next((c for c in ("parameter", "name", "variable", "Unnamed: 0")
+                     if c in summary.columns), summary.columns[0])
+    keep = ~summary[name_col].astype(str).str.match(_TRANSFORMED.pattern)
+    return summary[keep].reset_index(drop=True)
 
 
 def _summary_numbers(summary: pd.DataFrame) -> list[tuple[str, str, str]]:
@@ -758,8 +857,16 @@ def _planet_from_draws(rep: Report, draws: pd.DataFrame, meta: dict[str, Any], *
             continue
         rep.key_numbers.append((str(r["species"]), _fmt(r["value"]),
                                 f"{width} interval [{_fmt(r['lo'])}, {_fmt(r['hi'])}]"))
-    rep.tables.append((f"Planet (medians and {width} intervals over the draws)",
-                       _table_html(planet)))
+    from .plots import MAJOR_OXIDE_MIN_WT
+
+    majors = planet[~((planet["reservoir"] == "mantle") & (planet["unit"] == "wt%")
+                      & (planet["value"].astype(float) < MAJOR_OXIDE_MIN_WT))]
+    rep.tables.append((f"Planet (medians and {width} intervals over the draws; mantle "
+                       "majors as oxide wt%)", _table_html(majors)))
+    trace = mantle_trace_table(planet)
+    if len(trace):
+        rep.tables.append((f"Mantle trace elements (medians and {width} intervals; ppm = "
+                           "µg/g, ppb = ng/g)", _table_html(trace)))
     heat_cols = [c for c in draws.columns if str(c).startswith("heat_W_per_kg_")
                  and str(c).endswith("Gyr")]
     if heat_cols:
@@ -772,7 +879,8 @@ def _planet_from_draws(rep: Report, draws: pd.DataFrame, meta: dict[str, Any], *
         rep.figures.append(("Radiogenic heat production", f"Per kg of mantle, median and "
                             f"{width} interval over the draws (Turcotte & Schubert 2014, "
                             "Table 4.2).",
-                            lambda: plots.heat_plot(heat, unit="pW/kg of mantle")))
+                            lambda: plots.heat_plot(heat, unit="pW/kg of mantle",
+                                                    interval_label=f"{width} interval")))
         rep.key_numbers.append(("mantle heat production today [pW/kg]", _fmt(med[0]),
                                 f"{width} interval [{_fmt(lo[0])}, {_fmt(hi[0])}]"))
         _add_source(rep, "turcotteschubert2014")
@@ -892,8 +1000,13 @@ def _compare_report(folder: Path) -> Report:
     from . import plots
 
     table = _read_csv(folder / "comparison.csv")
+    meta = (_read_json(folder / "comparison.json") if (folder / "comparison.json").exists()
+            else {})
     rep = Report(title=f"PSIS-LOO comparison ({folder.name})", kind="compare",
-                 folder=str(folder))
+                 folder=str(folder), provenance=meta.get("provenance") or {})
+    for label, els in (meta.get("left_out") or {}).items():
+        rep.notes.append(f"Compared on the {len(meta.get('shared_elements') or [])} elements "
+                         f"all runs fitted; left out of {label}: {', '.join(els)}.")
     if "elpd_loo" not in table.columns:
         raise InputError("comparison table without an elpd_loo column",
                          file=str(folder / "comparison.csv"), field="elpd_loo")
@@ -906,9 +1019,18 @@ def _compare_report(folder: Path) -> Report:
                 r.get("log10_bayes_factor_vs_best")):
             rep.key_numbers.append((f"log10 Bayes factor vs best: {r.get('components')}",
                                     _fmt(r["log10_bayes_factor_vs_best"]), "SMC evidence"))
+        if pd.notna(r.get("reading")) and r.get("reading"):
+            rep.key_numbers.append((f"{r.get('components')}", _fmt(r.get("elpd_diff")),
+                                    str(r["reading"])))
         if str(r.get("warning", "")).lower() in ("true", "1"):
-            rep.diagnostics.append((f"PSIS warning: {r.get('components')}", "Pareto k > 0.7",
-                                    "LOO estimate unreliable for this run"))
+            high = r.get("pareto_k_high")
+            which = f" for {high}" if isinstance(high, str) and high else ""
+            rep.diagnostics.append((
+                f"PSIS warning: {r.get('components')}", f"Pareto k > 0.7{which}",
+                "the leave-one-out estimate of these elements is unreliable: each dominates "
+                "its own fit (often an element off the trend); refit without it and score "
+                "it exactly, or exclude it in every run, before reading the differences "
+                "(Vehtari, Gelman & Gabry 2017)"))
         if "gate" in table.columns and str(r.get("gate")) != "passed":
             rep.diagnostics.append((f"gate: {r.get('components')}", str(r.get("gate")),
                                     "this run failed its convergence gate"))
@@ -958,8 +1080,8 @@ def _table_html(df: pd.DataFrame) -> str:
 
 
 def _rows(items: list[tuple[str, str, str]], head: tuple[str, str, str]) -> str:
-    body = "".join("<tr>" + "".join(f"<td>{html.escape(str(x))}</td>" for x in it) + "</tr>"
-                   for it in items)
+    body = "".join("<tr>" + "".join(f"<td>{html.escape(_plain(str(x)))}</td>" for x in it)
+                   + "</tr>" for it in items)
     hd = "".join(f"<th>{h}</th>" for h in head)
     return f"<table><thead><tr>{hd}</tr></thead><tbody>{body}</tbody></table>"
 
@@ -983,9 +1105,13 @@ def render_html(rep: Report, *, figure_dir: Path | None = None) -> str:
              "</head><body>"]
     prov = rep.provenance or {}
     created = datetime.now(UTC).isoformat(timespec="seconds")
+    from .output import package_version
+
+    written_by = (f"result written by planetmix {esc(str(prov['planetmix_version']))} · "
+                  if prov.get("planetmix_version") else "")
     parts.append(f"<h1>{esc(rep.title)}</h1><p class='meta'>planetmix {esc(rep.kind)} result "
-                 f"· folder <code>{esc(rep.folder)}</code> · report written {created} · "
-                 f"planetmix {esc(str(prov.get('planetmix_version', '?')))}</p>")
+                 f"· folder <code>{esc(rep.folder)}</code> · {written_by}report written "
+                 f"{created} by planetmix {esc(package_version())}</p>")
     parts.append("<nav><a href='#key-numbers'>Key numbers</a><a href='#figures'>Figures</a>"
                  "<a href='#diagnostics'>Diagnostics</a><a href='#provenance'>Provenance</a>"
                  "<a href='#limits'>Limits of the model</a></nav>")
@@ -1017,7 +1143,7 @@ def render_html(rep: Report, *, figure_dir: Path | None = None) -> str:
     parts.append(_rows(rep.diagnostics, ("check", "value", "meaning"))
                  if rep.diagnostics else "<p>none recorded</p>")
     for n in rep.notes:
-        parts.append(f"<p class='note'>{esc(n)}</p>")
+        parts.append(f"<p class='note'>{esc(_plain(n))}</p>")
     parts.append("<h2 id='provenance'>Provenance</h2>")
     parts.append(_provenance_html(prov))
     parts.append("<h2 id='limits'>Limits of the model</h2><ul>"
@@ -1027,16 +1153,35 @@ def render_html(rep: Report, *, figure_dir: Path | None = None) -> str:
     return "\n".join(parts)
 
 
+_PYLIST = re.compile(r"\[((?:'[^']*'(?:, )?)+)\]")
+
+
+def _plain(text: str) -> str:
+    """Python list reprs in a message (``['Te', 'Se']``) as plain words (``Te, Se``)."""
+    return _PYLIST.sub(lambda m: m.group(1).replace("'", ""), str(text))
+
+
+def _plain_value(v: Any) -> str:
+    """A provenance value as words: ``key value; key value`` for mappings, no JSON."""
+    if isinstance(v, dict):
+        return "; ".join(f"{str(k).replace('_', ' ')} {_plain_value(x)}" for k, x in v.items())
+    if isinstance(v, list | tuple):
+        return ", ".join(_plain_value(x) for x in v)
+    if v is None or isinstance(v, float):
+        return _fmt(v)
+    return _plain(str(v))
+
+
 def _provenance_html(prov: dict[str, Any]) -> str:
     esc = html.escape
     if not prov:
-        return "<p>The result folder records no provenance.</p>"
+        return ("<p>This result folder holds no provenance record (versions, tables, "
+                "settings): it was written by hand or by an older planetmix.</p>")
     rows = []
     for k in ("planetmix_version", "created_utc", "python", "case_file", "target_table",
               "reference_element", "condensation_table", "seed", "sampler"):
         if k in prov:
-            rows.append((k, json.dumps(prov[k]) if isinstance(prov[k], dict) else
-                         str(prov[k]), ""))
+            rows.append((k.replace("_", " "), _plain_value(prov[k]), ""))
     if prov.get("packages"):
         rows.append(("packages", ", ".join(f"{k} {v}" for k, v in prov["packages"].items()),
                      ""))
@@ -1061,7 +1206,7 @@ def _provenance_html(prov: dict[str, Any]) -> str:
         elif isinstance(v, list) and all(isinstance(x, str | int | float) for x in v):
             text = ", ".join(map(str, v))
         else:
-            text = json.dumps(v) if isinstance(v, dict | list) else str(v)
+            text = _plain_value(v)
         rows.append((k.replace("_", " "), text[:1500] + ("..." if len(text) > 1500 else ""),
                      note))
     out = _rows(rows, ("item", "value", "note"))

@@ -356,3 +356,82 @@ def test_report_of_an_infeasible_fit(result_folders, tmp_path):
     html = (out / "report.html").read_text(encoding="utf-8")
     assert "infeasible" in html and "e54Cr" in html and "has no estimates" in html
     assert "None" not in html
+
+
+# ----------------------------------------------------------------- compare, units, names
+def _synthetic_posterior(folder: Path, elements: list[str], y: np.ndarray, shift: float,
+                         rng: np.random.Generator, components_: list[str]) -> Path:
+    """A sample folder whose model predicts every element at ``shift`` with scatter 0.3
+    dex (Normal likelihood): a simulated truth for the PSIS-LOO comparison."""
+    import arviz as az
+
+    folder.mkdir(parents=True)
+    mu = rng.normal(shift, 0.02, size=(2, 300, 1))
+    ll = -0.5 * ((y[None, None, :] - mu) / 0.3) ** 2 - np.log(0.3 * np.sqrt(2 * np.pi))
+    idata = az.from_dict(posterior={"m": mu[..., 0]}, log_likelihood={"y_obs": ll},
+                         observed_data={"y_obs": y}, dims={"y_obs": ["elements"]},
+                         coords={"elements": elements})
+    idata.to_netcdf(str(folder / "posterior.nc"))
+    (folder / "sample.json").write_text(
+        '{"components": ' + str(components_).replace("'", '"') + ', "status": "passed"}')
+    return folder
+
+
+def test_compare_on_the_shared_elements_names_the_rest(tmp_path, capsys):
+    rng = np.random.default_rng(7)
+    els = ["Li", "Na", "K", "Cu", "Zn", "Ga", "Rb", "Cs", "Pb", "Sn"]
+    y = rng.normal(0.0, 0.3, len(els))  # simulated observations around 0 dex
+    good = _synthetic_posterior(tmp_path / "good", els, y, 0.0, rng, ["CI", "H"])
+    # the same model fitted without Sn: indistinguishable on the shared elements
+    twin = _synthetic_posterior(tmp_path / "twin", els[:-1], y[:-1], 0.01, rng, ["CI", "EH"])
+    # a model offset by 0.6 dex (two sigma of the scatter): clearly worse
+    bad = _synthetic_posterior(tmp_path / "bad", els, y, 0.6, rng, ["CV"])
+    out = tmp_path / "cmp"
+    assert main(["compare", str(good), str(twin), str(bad), "--out", str(out)]) == 0
+    printed = capsys.readouterr().out
+    assert "left out of" in printed and "Sn" in printed
+    table = pd.read_csv(out / "comparison.csv").set_index("components")
+    assert table.loc["CV", "elpd_diff"] > 2 * table.loc["CV", "dse"]
+    assert not table.loc["CV", "within_uncertainty"]
+    assert table.loc["CI+EH", "within_uncertainty"] or table.loc["CI+H", "within_uncertainty"]
+    assert "within its uncertainty" in " ".join(table["reading"].astype(str))
+    meta = __import__("json").loads((out / "comparison.json").read_text())
+    assert meta["left_out"] == {str(good): ["Sn"], str(bad): ["Sn"]}
+    assert meta["provenance"]["planetmix_version"]
+    assert main(["report", str(out)]) == 0
+    html = (out / "report.html").read_text(encoding="utf-8")
+    assert "left out of" in html and "planetmix ?" not in html
+    assert "records no provenance" not in html and "holds no provenance" not in html
+
+
+def test_trace_elements_in_ppm_or_ppb_and_majors_as_oxides():
+    from inversion.report import mantle_trace_table
+
+    # McDonough & Sun (1995) BSE: Na2O 0.36 wt%, Ir 3.2 ppb, Ga 4 ppm (from memory)
+    planet = pd.DataFrame({"reservoir": ["mantle"] * 4,
+                           "species": ["Na2O", "Ga2O3", "Ir", "MgO"],
+                           "value": [0.36, 4.0e-4 * 1.3442, 0.0032, 37.8],
+                           "unit": ["wt%", "wt%", "ppm", "wt%"]})
+    t = mantle_trace_table(planet).set_index("element")
+    assert set(t.index) == {"Ga", "Ir"}  # Na2O and MgO stay majors (oxide wt%)
+    assert t.loc["Ga", "unit"] == "ppm"
+    assert t.loc["Ga", "value"] == pytest.approx(4.0, rel=2e-3)  # Ga2O3/Ga2 = 1.3442
+    assert t.loc["Ir", "unit"] == "ppb" and t.loc["Ir", "value"] == pytest.approx(3.2)
+
+
+def test_report_names_parameters_as_users_know_them(result_folders):
+    from inversion.report import _user_name, _user_parameters, _vol_label
+
+    assert _vol_label("slope", "kinked") == "volatility slope [dex/K] (kinked)"
+    assert _vol_label("T0", "kinked") == "pivot temperature T0 [K] (kinked)"
+    assert "__" not in _user_name("T0_interval__")
+    s = pd.DataFrame({"parameter": ["T0", "T0_interval__", "w_simplex__[0]", "slope"]})
+    assert list(_user_parameters(s)["parameter"]) == ["T0", "slope"]
+    html = (result_folders["fit"] / "report.html")
+    assert main(["report", str(result_folders["fit"])]) == 0
+    text = html.read_text(encoding="utf-8")
+    assert "[dex/K]" in text and "['" not in text
+    assert main(["report", str(result_folders["rank"])]) == 0
+    rank = (result_folders["rank"] / "report.html").read_text(encoding="utf-8")
+    n = len(pd.read_csv(result_folders["rank"] / "ranking.csv"))
+    assert f"best of {n} hypotheses" in rank and "weight CI" in rank
