@@ -15,7 +15,8 @@ from typing import Any
 import pandas as pd
 
 import components
-from components._tables import check_composition_frame, read_csv_checked
+from components._tables import check_composition_frame, read_csv_checked, read_text_checked
+from components.units import PLAUSIBLE, check_in_range
 
 from .exceptions import InputError
 from .options import check_option
@@ -85,6 +86,7 @@ class Case:
     priors: dict[str, Any] = field(default_factory=dict)
     sampler: dict[str, Any] = field(default_factory=dict)
     isotope_window_sigma: float = 2.0
+    minimum_uncertainty_dex: float = 0.02
     cmf_range: tuple[float, float] | None = None
 
     @property
@@ -145,8 +147,27 @@ def read_target(path: str | Path, *, reference_element: str = "Mg",
     return comp, unc, tuple(missing)
 
 
+def _check_user_component(c: components.Component, file: str, field: str) -> None:
+    """A user's component may not take a library name, and its isotope header lines
+    must be finite values with a positive 1-sigma."""
+    if c.name in components.available():
+        raise InputError(f"the component file is named {c.name!r} like the library "
+                         f"component {c.name}; give it another name with a '# name: ...' "
+                         "header line (or use the library's by its name)", file=c.path,
+                         field="name", value=c.name)
+    for q, (v, sig) in c.isotopes.items():
+        if not PLAUSIBLE["isotope_value"].contains(v):
+            lim = PLAUSIBLE["isotope_value"]
+            raise InputError(f"the anomaly lies outside {lim.describe()}: {lim.reason}",
+                             file=c.path, field=q, value=v)
+        if not PLAUSIBLE["isotope_sigma"].contains(sig):
+            lim = PLAUSIBLE["isotope_sigma"]
+            raise InputError(f"the 1-sigma lies outside {lim.describe()}: {lim.reason}",
+                             file=c.path, field=q, value=sig)
+
+
 def _resolve_component(item: Any, base: Path, file: str, field: str) -> components.Component:
-    if not isinstance(item, str) or not item:
+    if not isinstance(item, str) or not item or "\x00" in item:
         raise InputError("must be a library name or a CSV path", file=file, field=field,
                          value=item)
     if item in components.available():
@@ -154,9 +175,15 @@ def _resolve_component(item: Any, base: Path, file: str, field: str) -> componen
     p = Path(item)
     if p.suffix.lower() == ".csv" or "/" in item:
         p = p if p.is_absolute() else base / p
-        if not p.exists():
+        try:
+            found = p.exists()
+        except OSError:
+            found = False
+        if not found:
             raise InputError("component file not found", file=file, field=field, value=item)
-        return components.read_component(p)
+        c = components.read_component(p)
+        _check_user_component(c, file, field)
+        return c
     raise InputError(f"unknown component; the library holds {components.available()} or "
                      "give the path of a component CSV", file=file, field=field, value=item)
 
@@ -180,12 +207,13 @@ def load_case(path: str | Path) -> Case:
     """
     path = Path(path)
     file = str(path)
-    if not path.exists():
-        raise InputError("case file not found", file=file)
+    text = read_text_checked(path, what="case")
     try:
-        raw = tomllib.loads(path.read_text(encoding="utf-8"))
-    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as err:
-        raise InputError(f"not valid TOML: {err}", file=file) from err
+        raw = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as err:
+        raise InputError(f"not valid TOML: {err}", file=file) from None
+    except RecursionError:
+        raise InputError("not valid TOML: nested too deeply", file=file) from None
     if not raw:
         raise InputError("case file is empty", file=file)
     base = path.parent
@@ -195,11 +223,24 @@ def load_case(path: str | Path) -> Case:
             if not isinstance(raw[sec], dict):
                 raise InputError("must be a table (a [section])", file=file, field=sec)
             _check_keys(sec, raw[sec], file)
+    for sec in ("isotopes", "priors"):
+        if sec in raw and not isinstance(raw[sec], dict):
+            raise InputError("must be a table (a [section])", file=file, field=sec,
+                             value=raw[sec])
+    _check_prior_types(raw.get("priors") or {}, file)
+    for k, v in (raw.get("sampler") or {}).items():
+        if not isinstance(v, str | int | float) or (isinstance(v, float)
+                                                    and not math.isfinite(v)):
+            raise InputError("a sampler setting is a number, a name or true/false", file=file,
+                             field=f"sampler.{k}", value=v)
 
     tgt = raw.get("target")
     if not tgt or "table" not in tgt:
         raise InputError("the case needs [target] table = 'file.csv'", file=file,
                          field="target.table")
+    if not isinstance(tgt["table"], str) or not tgt["table"].strip() or "\x00" in tgt["table"]:
+        raise InputError("give the path of the target CSV as text", file=file,
+                         field="target.table", value=tgt["table"])
     ref = tgt.get("reference_element", "Mg")
     if not isinstance(ref, str) or components.parse_species(ref) is None:
         raise InputError("not an element symbol", file=file, field="target.reference_element",
@@ -213,7 +254,11 @@ def load_case(path: str | Path) -> Case:
         dflt = _num(dflt, file=file, field="target.default_uncertainty_pct", positive=True)
     tpath = Path(tgt["table"])
     tpath = tpath if tpath.is_absolute() else base / tpath
-    if not tpath.exists():
+    try:
+        found = tpath.exists()
+    except OSError:
+        found = False
+    if not found:
         raise InputError(f"target table not found at {tpath}; paths are relative to the case "
                          "file's folder", file=file, field="target.table", value=tgt["table"])
     comp, unc, defaulted = read_target(tpath, reference_element=ref,
@@ -221,9 +266,17 @@ def load_case(path: str | Path) -> Case:
     planet_mass = tgt.get("planet_mass_kg")
     if planet_mass is not None:
         planet_mass = _num(planet_mass, file=file, field="target.planet_mass_kg", positive=True)
+        check_in_range(planet_mass, "planet_mass_kg", file=file, field="target.planet_mass_kg")
     mantle_mass = tgt.get("mantle_mass_kg")
     if mantle_mass is not None:
         mantle_mass = _num(mantle_mass, file=file, field="target.mantle_mass_kg", positive=True)
+        if planet_mass is not None and not mantle_mass < planet_mass:
+            raise InputError("the mantle must be lighter than the planet (planet_mass_kg)",
+                             file=file, field="target.mantle_mass_kg", value=mantle_mass)
+    min_dex = _num(tgt.get("minimum_uncertainty_dex", 0.02), file=file,
+                   field="target.minimum_uncertainty_dex", nonneg=True)
+    check_in_range(min_dex, "minimum_uncertainty_dex", file=file,
+                   field="target.minimum_uncertainty_dex")
     target = Target(comp, unc, str(tpath), ref, planet_mass, mantle_mass, defaulted)
 
     bb = raw.get("building_blocks", {})
@@ -236,6 +289,12 @@ def load_case(path: str | Path) -> Case:
                          field="building_blocks.candidates", value=cands)
     candidates = tuple(_resolve_component(c, base, file, "building_blocks.candidates")
                        for c in cands)
+    names = [c.name for c in candidates]
+    twice = sorted({n for n in names if names.count(n) > 1})
+    if twice:
+        raise InputError(f"two candidates carry the name(s) {twice}; give each component "
+                         "file its own '# name: ...'", file=file,
+                         field="building_blocks.candidates", value=cands)
     mms = bb.get("max_mixture_size", min(3, len(candidates)))
     if isinstance(mms, bool) or not isinstance(mms, int) or mms < 1:
         raise InputError("must be a positive whole number", file=file,
@@ -254,16 +313,27 @@ def load_case(path: str | Path) -> Case:
         raise InputError("give either mantle_FeO_wt or dIW, not both", file=file, field="core")
     if feo is not None:
         feo = _num(feo, file=file, field="core.mantle_FeO_wt", positive=True)
-        if feo >= 60:
-            raise InputError("mantle FeO must be below 60 wt%", file=file,
-                             field="core.mantle_FeO_wt", value=feo)
+        check_in_range(feo, "mantle_FeO_wt", file=file, field="core.mantle_FeO_wt")
     if diw is not None:
         diw = _num(diw, file=file, field="core.dIW")
+        check_in_range(diw, "dIW", file=file, field="core.dIW")
     D = {}
-    for el, val in (core_raw.get("D") or {}).items():
+    d_raw = core_raw.get("D", {})
+    if not isinstance(d_raw, dict):
+        raise InputError("give a table of element = D, e.g. D = {Ni = 25}", file=file,
+                         field="core.D", value=d_raw)
+    from .model import default_partition
+
+    partitioned = sorted(default_partition()["D"].index)
+    for el, val in d_raw.items():
         if components.parse_species(el) is None or components.parse_species(el)[2]:
             raise InputError("unknown element", file=file, field=f"core.D.{el}", value=el)
+        if el not in partitioned:
+            raise InputError(f"the model partitions only {partitioned} into the core (iron "
+                             "by the iron split); remove this entry", file=file,
+                             field=f"core.D.{el}", value=el)
         D[el] = _num(val, file=file, field=f"core.D.{el}", nonneg=True)
+        check_in_range(D[el], "core_D", file=file, field=f"core.D.{el}")
     if feo is None and diw is None and "Fe" in comp.index:
         # the observed mantle iron sets the split; recorded as such
         from components import oxide_to_element_factor
@@ -280,6 +350,7 @@ def load_case(path: str | Path) -> Case:
                                                              "late_accretion.component")
     la_max = _num(la.get("max_fraction", 0.05), file=file, field="late_accretion.max_fraction",
                   positive=True)
+    check_in_range(la_max, "late_max_fraction", file=file, field="late_accretion.max_fraction")
 
     iso = {}
     for name, pair in (raw.get("isotopes") or {}).items():
@@ -293,6 +364,11 @@ def load_case(path: str | Path) -> Case:
         if pair[1] <= 0:
             raise InputError("the 1-sigma must be positive", file=file,
                              field=f"isotopes.{name}", value=pair)
+        for key, x in (("isotope_value", pair[0]), ("isotope_sigma", pair[1])):
+            lim = PLAUSIBLE[key]
+            if not lim.contains(float(x)):
+                raise InputError(f"outside {lim.describe()}: {lim.reason}", file=file,
+                                 field=f"isotopes.{name}", value=pair)
         iso[name] = (float(pair[0]), float(pair[1]))
 
     excl = (raw.get("elements") or {}).get("exclude", [])
@@ -325,6 +401,29 @@ def load_case(path: str | Path) -> Case:
         condensation_table=ctab, core=core, late_component=late, late_max_fraction=la_max,
         isotopes=iso, exclude=tuple(excl), priors=dict(raw.get("priors") or {}),
         sampler=dict(raw.get("sampler") or {}), isotope_window_sigma=window,
+        minimum_uncertainty_dex=min_dex,
         cmf_range=(None if cmf_range is None
                    else (float(cmf_range[0]), float(cmf_range[1]))),
     )
+
+
+def _check_prior_types(priors: dict, file: str) -> None:
+    """Shape of the ``[priors]`` tables: each a table with a ``dist`` name and numbers
+    (or, for the weights, a list of numbers); the values are checked by
+    :func:`inversion.bayes.check_priors` against the compiled problem."""
+    for name, spec in priors.items():
+        fld = f"priors.{name}"
+        if not isinstance(spec, dict):
+            raise InputError('give a table such as {dist = "Uniform", lower = 0, upper = 1}',
+                             file=file, field=fld, value=spec)
+        for k, v in spec.items():
+            if k == "dist":
+                if not isinstance(v, str):
+                    raise InputError("the distribution is a name such as \"Normal\"",
+                                     file=file, field=f"{fld}.dist", value=v)
+                continue
+            vals = v if isinstance(v, list) else [v]
+            if not vals or not all(isinstance(x, int | float) and not isinstance(x, bool)
+                                   and math.isfinite(x) for x in vals):
+                raise InputError("must be a finite number (or a list of them for the "
+                                 "weights)", file=file, field=f"{fld}.{k}", value=v)

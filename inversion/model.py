@@ -245,7 +245,7 @@ def _impute(comp: pd.Series, ci: pd.Series, els: list[str], classes: pd.Series,
     return vals, imp, sig
 
 
-def compile_problem(case: Case, *, minimum_sigma_dex: float = 0.02,
+def compile_problem(case: Case, *, minimum_sigma_dex: float | None = None,
                     fit_imputed: bool = True) -> Problem:
     """Compile a case into a :class:`Problem`.
 
@@ -258,12 +258,15 @@ def compile_problem(case: Case, *, minimum_sigma_dex: float = 0.02,
     Parameters
     ----------
     case : Case
-    minimum_sigma_dex : float
-        Floor on each element's uncertainty [dex] (model imperfection; recorded).
+    minimum_sigma_dex : float, optional
+        Floor on each element's uncertainty [dex] (model imperfection; recorded);
+        default: the case's ``[target] minimum_uncertainty_dex`` (0.02 when not set).
     fit_imputed : bool
         Fit elements imputed for some candidate (default); False keeps them out of the
         fit, as before the end-member uncertainties existed.
     """
+    floor_dex = (getattr(case, "minimum_uncertainty_dex", 0.02) if minimum_sigma_dex is None
+                 else minimum_sigma_dex)
     ci = components.load("CI").composition
     props = components.elements()
     tc_col = CONDENSATION_TABLES[case.condensation_table]
@@ -336,7 +339,7 @@ def compile_problem(case: Case, *, minimum_sigma_dex: float = 0.02,
             obs[j] = tgt[e]
             y_all[j] = np.log10(tgt[e] / tgt[ref] / q_ci[j])
             rel = float(np.hypot(unc[e] / tgt[e], unc[ref] / tgt[ref])) if e != ref else 0.0
-            s_all[j] = max(np.log10(1.0 + rel), minimum_sigma_dex)
+            s_all[j] = max(np.log10(1.0 + rel), floor_dex)
     fit = np.array([j for j, e in enumerate(els) if np.isfinite(y_all[j]) and e != ref
                     and e not in case.exclude
                     and (fit_imputed or not imputed[:, j].any())], dtype=int)
