@@ -1,4 +1,4 @@
-"""Bayesian inversion with PyMC (MODEL.md sections 8-9): priors, model, sampling, gate.
+"""Bayesian inversion with PyMC (docs/model.md sections 8-9): priors, model, sampling, gate.
 
 The model is the pytensor twin of :func:`inversion.model.forward`: R-basis weights of
 the building blocks on the simplex, the chosen volatility form, core formation by an
@@ -69,7 +69,7 @@ GATE_DIVERGENCES_MAX = 0
 #: (one-Newton-step) form, which matches the numpy model to ~1e-12 with a far smaller
 #: graph (a 15-step unrolled graph took ~30 s to compile on a 2-core machine).
 CORE_UNROLL = 15
-#: Degrees of freedom of the Student-t likelihood (MODEL.md section 8).
+#: Degrees of freedom of the Student-t likelihood (docs/model.md section 8).
 STUDENT_NU = 4.0
 #: Observed variable names in the model.
 OBS_ELEMENTS = "y_obs"

@@ -25,7 +25,7 @@ from .volatility import FORMS
 __all__ = ["Case", "Target", "CoreSettings", "load_case", "read_target", "ISOTOPE_CARRIERS",
            "CONDENSATION_TABLES"]
 
-#: Isotope anomaly -> element that carries it (MODEL.md section 6).
+#: Isotope anomaly -> element that carries it (docs/model.md section 6).
 ISOTOPE_CARRIERS: dict[str, str] = {"D17O": "O", "e50Ti": "Ti", "e54Cr": "Cr", "e48Ca": "Ca"}
 CONDENSATION_TABLES = {"lodders2003": "tc50_lodders2003", "wood2019": "tc50_wood2019"}
 

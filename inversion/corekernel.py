@@ -1,4 +1,4 @@
-"""Compiled kernels of the core fixed point (MODEL.md section 4), for the samplers.
+"""Compiled kernels of the core fixed point (docs/model.md section 4), for the samplers.
 
 The core split of :func:`inversion.model._core_split` solves ``s = G(s)`` for the state
 ``s`` of the core mass balance: ``[k]`` with ``k = M_c / M_s`` when the mantle FeO is

@@ -1,4 +1,4 @@
-"""Radiogenic heat production of a silicate mantle (MODEL.md section 11).
+"""Radiogenic heat production of a silicate mantle (docs/model.md section 11).
 
 Heat from the decay of 238U, 235U, 232Th and 40K, per kg of mantle, today and back in
 time, vectorised over draws.

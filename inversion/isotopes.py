@@ -3,7 +3,7 @@
 A hypothesis mixes its building blocks (R-basis weights ``u_k`` on the simplex, R the
 reference element) and, when the case has one, a late component whose R-basis weight
 ``v`` is capped at ``v_max``. For an anomaly ``eps`` carried by element e
-(MODEL.md section 6)::
+(docs/model.md section 6)::
 
     eps_planet(u) = sum_k u_k q_k eps_k / sum_k u_k q_k,     q_k = c_k,e / c_k,R
 

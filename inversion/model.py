@@ -1,4 +1,4 @@
-"""The forward model (MODEL.md sections 2-7), vectorised over parameter sets.
+"""The forward model (docs/model.md sections 2-7), vectorised over parameter sets.
 
 A :class:`Problem` holds a case compiled to arrays on named element and component axes.
 :func:`forward` maps parameters (reference-element weights of the building blocks,

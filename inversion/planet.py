@@ -1,4 +1,4 @@
-"""Whole-planet assembly (MODEL.md section 7): mantle oxides, core, bulk, molar ratios.
+"""Whole-planet assembly (docs/model.md section 7): mantle oxides, core, bulk, molar ratios.
 
 Vectorised over parameter sets: every function takes the output of
 :func:`inversion.model.forward` for B sets and returns arrays with a leading B axis.

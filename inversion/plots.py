@@ -125,7 +125,7 @@ def volatility_diagram(
     title: str | None = None,
     interval_label: str = "90% credible interval",
 ) -> Figure:
-    """The volatility diagram (MODEL.md section 1).
+    """The volatility diagram (docs/model.md section 1).
 
     Parameters
     ----------

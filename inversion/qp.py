@@ -1,7 +1,7 @@
 """Exact solvers for the mixing sub-problem: least squares on the simplex with linear
 inequality constraints, vectorised over many problems at once.
 
-The sub-problem (MODEL.md section 9) is, for each of B problems,
+The sub-problem (docs/model.md section 9) is, for each of B problems,
 
     minimise ||A u - b||^2  subject to  sum(u) = 1,  u >= 0,  G u <= h.
 

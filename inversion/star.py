@@ -1,4 +1,4 @@
-"""From a host star's photospheric abundances to a rocky planet (MODEL.md sections 7, 10).
+"""From a host star's photospheric abundances to a rocky planet (docs/model.md sections 7, 10).
 
 Vectorised over Monte Carlo draws (and over stars: the batch stacks every star's draws
 into one array).

@@ -1,4 +1,4 @@
-"""The ``planetmix star`` and ``planetmix batch`` commands (MODEL.md sections 10, 11)."""
+"""The ``planetmix star`` and ``planetmix batch`` commands (docs/model.md sections 10, 11)."""
 
 from __future__ import annotations
 
@@ -83,7 +83,7 @@ def _star(parser: argparse.ArgumentParser):
         res = run_star(star, settings)
         meta = {
             "title": f"planet of star {star.star_id}",
-            "method": "star to planet (MODEL.md sections 7, 10, 11): Monte Carlo over the "
+            "method": "star to planet (docs/model.md sections 7, 10, 11): Monte Carlo over the "
                       "stellar abundance uncertainties",
             "star_id": star.star_id,
             "star_abundances_dex": {e: {"value": star.values[e], "uncertainty": star.errors[e]}

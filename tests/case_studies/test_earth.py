@@ -28,7 +28,7 @@ EARTH_CMF = 0.325
 #: Chem. Erde 69, 101; from memory).
 WALKER_LATE_FRACTION = 0.005
 #: Wang, Lineweaver & Ireland (2019, Icarus 328, 287): log10 f = a log10 Tc + b for the
-#: bulk Earth relative to the Sun (values as given in MODEL.md).
+#: bulk Earth relative to the Sun (values as given in docs/model.md).
 WANG_A, WANG_B = 3.676, -11.556
 
 

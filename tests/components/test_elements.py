@@ -56,7 +56,7 @@ def test_columns_of_the_api(el):
 
 def test_atomic_weight_is_periodictable_mass(el):
     # Source: periodictable package (IUPAC standard atomic weights), the project's one
-    # source of atomic weights (MODEL.md section 0).
+    # source of atomic weights (docs/model.md section 0).
     for sym, row in el.iterrows():
         pt = periodictable.elements.symbol(sym)
         assert row["atomic_weight"] == pytest.approx(float(pt.mass), abs=0.0), sym

@@ -127,7 +127,7 @@ def test_atmophile_elements_enriched_in_the_sun(sun, ci):
 
 
 def test_number_ratio_conversion_uses_periodictable(ci):
-    # The CI-side ratio uses atomic weights from periodictable (MODEL.md section 0).
+    # The CI-side ratio uses atomic weights from periodictable (docs/model.md section 0).
     for x in ("Mg", "Si", "Fe"):
         assert components.atomic_weight(x) == pytest.approx(
             float(periodictable.elements.symbol(x).mass))

@@ -379,7 +379,7 @@ def test_bulk_silicate_earth_late_veneer_and_volatility(tmp_path):
     memory); tolerance: posterior median within 0.2-1.0% of the planet.
     Wang, Lineweaver & Ireland (2019, Icarus 328, 287): Earth/Sun depletion pivot
     10**(11.556/3.676) = 1392 K; their power law falls 1.63 dex from the pivot to 500 K,
-    a mean log-linear slope of 0.0018 dex/K (values from MODEL.md). Tolerance: pivot
+    a mean log-linear slope of 0.0018 dex/K (values from docs/model.md). Tolerance: pivot
     T0 within 100 K, slope within 0.0008 dex/K (different functional form and Tc
     table).
     """

@@ -63,7 +63,7 @@ def test_late_accretion_inverse(earth_problem) -> None:
 def test_redox_split_reproduces_feo_mode(bse_case, tmp_path) -> None:
     """Simulate with the mantle FeO, compute the implied dIW, recover the same planet.
 
-    dIW = 2 log10(x_FeO^sil / x_Fe^met) with ideal mixing (MODEL.md section 4): the iron
+    dIW = 2 log10(x_FeO^sil / x_Fe^met) with ideal mixing (docs/model.md section 4): the iron
     mole fraction in the metal and the FeO mole fraction (formula units) in the mantle.
     """
     p = compile_problem(load_case(bse_case))
