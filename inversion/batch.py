@@ -91,10 +91,16 @@ def read_catalogue(path: str | Path) -> tuple[list[CatalogueRow], str]:
     value without its uncertainty, an empty or repeated star_id) are kept on the row as
     its reason: the batch records them and carries on.
     """
-    from components._tables import read_csv_checked
+    from components._tables import read_csv_rows
+    from components.units import PLAUSIBLE
 
     file = str(path)
-    df = read_csv_checked(path, ["star_id"], what="catalogue")
+    tab = read_csv_rows(path, what="catalogue")
+    if "star_id" not in tab.header:
+        raise InputError("catalogue file lacks the column star_id", file=file, row=1)
+    if not tab.rows:
+        raise InputError("catalogue file has a header but no data rows", file=file)
+    df = tab.frame()
     known = components.elements().index
     elements: list[str] = []
     for col in df.columns:
@@ -114,6 +120,14 @@ def read_catalogue(path: str | Path) -> tuple[list[CatalogueRow], str]:
     V = np.full((n, len(elements)), np.nan)
     E = np.full((n, len(elements)), np.nan)
     reason = [""] * n
+    width = len(tab.header)
+    for i, w in enumerate(tab.widths):
+        if w != width:
+            # a short row (a file cut mid-row) or an extra field shifts or drops values:
+            # the row is not computed
+            reason[i] = (f"the row has {w} fields, the header {width}; check for a missing "
+                         "or extra comma")
+    xh_lim, sig_lim = PLAUSIBLE["star_xh_dex"], PLAUSIBLE["star_sigma_dex"]
 
     def note(mask: np.ndarray, text: str, raw: pd.Series) -> None:
         for i in np.flatnonzero(mask):
@@ -132,12 +146,18 @@ def read_catalogue(path: str | Path) -> tuple[list[CatalogueRow], str]:
         err = pd.to_numeric(err_raw.where(~err_empty), errors="coerce").to_numpy(float)
         has = ~empty & ~bad
         note(bad, f"[{e}/H] is not a number", raw)
+        with np.errstate(invalid="ignore"):
+            note(~empty & ~bad & ((num < xh_lim.low) | (num > xh_lim.high)),
+                 f"[{e}/H] lies outside {xh_lim.describe()}: {xh_lim.reason}", raw)
         note(has & err_empty, f"missing uncertainty for [{e}/H]", err_raw)
         with np.errstate(invalid="ignore"):
             note(has & ~err_empty & ~np.isfinite(err), f"uncertainty of [{e}/H] is not a "
                  "number", err_raw)
             note(has & ~err_empty & np.isfinite(err) & (err < 0), f"uncertainty of [{e}/H] "
                  "must be a non-negative number of dex", err_raw)
+            note(has & ~err_empty & np.isfinite(err) & (err > sig_lim.high),
+                 f"uncertainty of [{e}/H] lies outside {sig_lim.describe()}: "
+                 f"{sig_lim.reason}", err_raw)
         V[:, j] = np.where(has, num, np.nan)
         E[:, j] = err
     used = [j for j, e in enumerate(elements) if e in STAR_ELEMENTS]
@@ -262,6 +282,14 @@ def run_partition(rows: list[CatalogueRow], settings: StarSettings) -> pd.DataFr
         out.loc[allbad, "reason"] = (f"no draw is feasible: a mantle FeO of "
                                      f"{settings.mantle_FeO_wt} wt% needs more iron than the "
                                      "star provides")
+    # a star whose median results are not finite is never written as a success
+    medians = [c for c in out.columns if c.endswith("_median")]
+    if medians:
+        nonfinite = (out["status"] == "ok") & ~np.isfinite(
+            out[medians].to_numpy(dtype=float)).all(axis=1)
+        if nonfinite.any():
+            out.loc[nonfinite, "status"] = "failed"
+            out.loc[nonfinite, "reason"] = "non-finite results; check the star's values"
     lead = list(_FLAG_COLUMNS)
     return out[lead + [c for c in out.columns if c not in lead]]
 

@@ -47,6 +47,7 @@ import numpy as np
 import pandas as pd
 
 import components
+from components.units import PLAUSIBLE
 
 from .case import CONDENSATION_TABLES, Case, CoreSettings, Target
 from .exceptions import InputError
@@ -185,14 +186,19 @@ def read_pattern(path: str | Path) -> Pattern:
     ``condensation_table`` or the condensation table among
     ``provenance.reference_tables`` (default lodders2003).
     """
+    from components._tables import read_text_checked
+
     file = str(path)
     p = Path(path)
     if not p.exists():
         raise InputError("pattern file not found", file=file, field="--pattern")
+    text = read_text_checked(p, what="pattern")
     try:
-        data = json.loads(p.read_text(encoding="utf-8"))
-    except (json.JSONDecodeError, UnicodeDecodeError) as err:
-        raise InputError(f"not valid JSON: {err}", file=file) from err
+        data = json.loads(text)
+    except json.JSONDecodeError as err:
+        raise InputError(f"not valid JSON: {err}", file=file) from None
+    except RecursionError:
+        raise InputError("not valid JSON: nested too deeply", file=file) from None
     vol = None
     if isinstance(data, dict):
         vol = data.get("volatility")
@@ -214,7 +220,8 @@ def read_pattern(path: str | Path) -> Pattern:
                              "number", file=file, field=f"volatility.{name}", value=v)
         params.append(float(v))
     prov = data.get("provenance", {}) if isinstance(data.get("provenance"), dict) else {}
-    listed = [t for t in prov.get("reference_tables", []) or []
+    refs = prov.get("reference_tables", [])
+    listed = [t for t in (refs if isinstance(refs, list) else [])
               if isinstance(t, str) and t in CONDENSATION_TABLES]
     table = prov.get("condensation_table", data.get(
         "condensation_table", listed[0] if listed else "lodders2003"))
@@ -363,6 +370,11 @@ def check_star_values(star_id: str, values: dict[str, Any], errors: dict[str, An
                              value=raw) from None
         if not math.isfinite(v):
             raise InputError(f"[{el}/H] is not finite", file=file, row=row, field=el, value=raw)
+        lim = PLAUSIBLE["star_xh_dex"]
+        if not lim.contains(v):
+            raise InputError(f"[{el}/H] lies outside {lim.describe()}: {lim.reason}; check "
+                             "the value (dex relative to the Sun, not an absolute abundance)",
+                             file=file, row=row, field=el, value=raw)
         e_raw = errors.get(el)
         if e_raw is None or (isinstance(e_raw, str) and e_raw.strip() == "") or (
                 isinstance(e_raw, float) and math.isnan(e_raw)):
@@ -376,6 +388,11 @@ def check_star_values(star_id: str, values: dict[str, Any], errors: dict[str, An
         if not math.isfinite(e) or e < 0:
             raise InputError(f"uncertainty of [{el}/H] must be a non-negative number of dex",
                              file=file, row=row, field=f"{el}_err", value=e_raw)
+        lim = PLAUSIBLE["star_sigma_dex"]
+        if not lim.contains(e):
+            raise InputError(f"uncertainty of [{el}/H] lies outside {lim.describe()}: "
+                             f"{lim.reason}", file=file, row=row, field=f"{el}_err",
+                             value=e_raw)
         vals[el] = v
         errs[el] = e
     unused = tuple(sorted(e for e in vals if e not in STAR_ELEMENTS))
