@@ -253,7 +253,7 @@ def _load_plugins() -> None:
     import importlib
 
     for mod in ("inversion.bayes_cli", "inversion.star_cli", "inversion.report_cli",
-                "inversion.demo", "inversion.diagram"):
+                "inversion.demo", "inversion.diagram", "inversion.sensitivity"):
         try:
             importlib.import_module(mod)
         except ModuleNotFoundError as err:
