@@ -448,7 +448,9 @@ def _overlaps(a: np.ndarray, boxes: np.ndarray) -> bool:
 
 
 def _place_labels(fig: Figure, ax: Any, points: pd.DataFrame, fontsize: float, ms: float,
-                  fixed_texts: list[Any], obstacles: np.ndarray) -> None:
+                  fixed_texts: list[Any], obstacles: np.ndarray,
+                  texts: dict[str, str] | None = None,
+                  styles: dict[str, dict[str, Any]] | None = None) -> None:
     """Place one symbol per element near its highest point, measuring rendered boxes.
 
     Candidate offsets at growing distance in eight directions; the first whose box lies in
@@ -473,7 +475,9 @@ def _place_labels(fig: Figure, ax: Any, points: pd.DataFrame, fontsize: float, m
     probe = ax.text(0, 0, "", fontsize=fontsize)
     for _, row in order.iterrows():
         el = row["element"]
-        probe.set_text(el)
+        label = (texts or {}).get(el, el)
+        probe.set_text(label)
+        probe.set(**(styles or {}).get(el, {}))
         bb = probe.get_window_extent(renderer)
         w, h = bb.width + 1.0, bb.height + 1.0
         x0, y0 = disp[int(row["_i"])]
@@ -498,8 +502,9 @@ def _place_labels(fig: Figure, ax: Any, points: pd.DataFrame, fontsize: float, m
         box, cx, cy, ring = best
         taken.append(box)
         xy = ax.transData.inverted().transform((cx, cy))
-        t = ax.text(xy[0], xy[1], el, fontsize=fontsize, ha="center", va="center",
-                    color="#222222", zorder=6)
+        t = ax.text(xy[0], xy[1], label, fontsize=fontsize, ha="center", va="center",
+                    color="#222222", zorder=6, **(styles or {}).get(el, {}))
+        probe.set(fontweight="normal")
         t.set_gid(f"label-{el}")
         if ring > rings[1]:
             ax.annotate("", xy=(row["tc50"], row["y"]), xytext=(xy[0], xy[1]),

@@ -158,8 +158,11 @@ def volatility_diagram(
     tc_all = df["tc50"].astype(float).to_numpy()
     x_lo = max(0.0, float(np.nanmin(tc_all)) - 60.0) if tc_all.size else 0.0
     x_hi = 1900.0
+    from .diagram import _place_labels, _tc_label
+
+    band_texts = []
     with plot_style():
-        fig, ax = plt.subplots(figsize=(11.5, 5.6), layout="constrained")
+        fig, ax = plt.subplots(figsize=(7.2, 4.6), layout="constrained")
         for cls, lo, hi in _cosmo_bands(f"tc50_{tc_table}"):
             lo, hi = max(lo, x_lo), min(hi, x_hi)
             if hi <= lo:
@@ -169,9 +172,10 @@ def volatility_diagram(
             ax.axvline(lo, color="#cfcfcf", lw=0.6, zorder=0)
             if hi - lo < 60:
                 continue
-            ax.text(0.5 * (lo + hi), 0.985,
-                    _COSMO_LABEL.get(cls, cls), transform=ax.get_xaxis_transform(),
-                    ha="center", va="top", fontsize=8, color="#555555", zorder=1)
+            band_texts.append(ax.text(0.5 * (lo + hi), 0.985,
+                                      _COSMO_LABEL.get(cls, cls),
+                                      transform=ax.get_xaxis_transform(), ha="center",
+                                      va="top", fontsize=7, color="#555555", zorder=1))
         ax.axhline(0.0, color="#888888", lw=0.8, ls=":", zorder=1)
         model = df["model"].astype(float).to_numpy()
         tc = df["tc50"].astype(float).to_numpy()
@@ -183,8 +187,9 @@ def volatility_diagram(
                       label=f"model, {interval_label}")
         seen_obs = np.isfinite(df["observed"].astype(float).to_numpy())
         ok = np.isfinite(model) & seen_obs
-        ax.scatter(tc[ok], model[ok], marker="_", s=140, color="black", lw=1.6, zorder=3,
-                   label="model (each element)")
+        if ok.any():
+            ax.scatter(tc[ok], model[ok], marker="_", s=110, color="black", lw=1.4, zorder=3,
+                       label="model (each element)")
         un = np.isfinite(model) & ~seen_obs
         if un.any():
             ax.scatter(tc[un], model[un], marker="_", s=90, color="#b5b5b5", lw=1.2,
@@ -210,37 +215,44 @@ def volatility_diagram(
                             mfc=colour if fit_state else "white", mec=colour, ecolor=colour,
                             elinewidth=0.9, capsize=0, zorder=4,
                             label=label if fit_state or not (in_cls & fitted).any() else None)
-        for i in np.flatnonzero(has):
-            ann = ax.annotate(df["element"].iloc[i], (tc[i], obs[i]), xytext=(3, 3),
-                              textcoords="offset points", fontsize=6.5, color="#333333",
-                              zorder=5)
-            ann.set_in_layout(False)
         flags = df.get("flag", pd.Series([""] * len(df), index=df.index)).fillna("")
         out = np.flatnonzero(flags.astype(str).isin(["above model", "below model"]).to_numpy()
                              & np.isfinite(obs))
+        out_text: dict[str, str] = {}
         for i in out:
-            ax.scatter(tc[i], obs[i], s=150, facecolors="none", edgecolors=OKABE_ITO["black"],
-                       lw=1.2, zorder=6)
+            ax.scatter(tc[i], obs[i], s=70, facecolors="none", edgecolors=OKABE_ITO["black"],
+                       lw=1.0, zorder=6)
             z = df["z"].iloc[i] if "z" in df.columns else np.nan
-            ann = ax.annotate(f"{df['element'].iloc[i]} ({float(z):+.1f}σ)", (tc[i], obs[i]),
-                              xytext=(8, -12 if obs[i] < model[i] else 8),
-                              textcoords="offset points", fontsize=7.5, fontweight="bold",
-                              color=OKABE_ITO["vermillion"], zorder=7)
-            ann.set_in_layout(False)
+            out_text[df["element"].iloc[i]] = f"{df['element'].iloc[i]} ({float(z):+.1f}σ)"
         if len(out):
             ax.scatter([], [], s=110, facecolors="none", edgecolors="black",
                        label="flagged outlier (|z| > 3)")
-        ax.scatter([], [], marker="o", s=25, facecolors="white", edgecolors="#555555",
-                   label="not fitted (open symbol)")
-        y0, y1 = ax.get_ylim()
-        ax.set_ylim(y0, y1 + 0.09 * (y1 - y0))  # room for the class labels
+        if (has & ~fitted).any():
+            ax.scatter([], [], marker="o", s=25, facecolors="white", edgecolors="#555555",
+                       label="not fitted (open symbol)")
+        # the y range follows the data and the model values, never the trend curve
+        vals = np.concatenate([obs[has] - np.nan_to_num(sig[has]),
+                               obs[has] + np.nan_to_num(sig[has]), model[np.isfinite(model)]])
+        y0, y1 = float(np.min(vals)), float(np.max(vals))
+        pad = 0.08 * max(y1 - y0, 0.5)
+        ax.set_ylim(y0 - pad, y1 + 2.5 * pad)  # room for the class labels
         ax.set_xlim(x_hi, x_lo)
-        ax.set_xlabel(f"50% condensation temperature [K] ({tc_table}, 1e-4 bar; hot on the "
-                      "left)")
-        ax.set_ylabel(f"log10 (X/{reference})sample / (X/{reference})CI")
+        ax.set_xlabel(_tc_label(tc_table) + "; hot on the left")
+        r = r"\mathrm{" + reference + "}"
+        ax.set_ylabel(rf"$\log_{{10}}\,[(\mathrm{{X}}/{r})_{{\mathrm{{sample}}}}\,/\,"
+                      rf"(\mathrm{{X}}/{r})_{{\mathrm{{CI}}}}]$")
         if title:
-            ax.set_title(title, loc="left")
-        ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), borderaxespad=0.0)
+            ax.set_title(title, loc="left", fontsize=9)
+        handles, labels = ax.get_legend_handles_labels()
+        fig.legend(handles, labels, loc="outside lower center", ncols=3, fontsize=7)
+        fig.canvas.draw()
+        fig.set_layout_engine("none")
+        pts = pd.DataFrame({"element": df["element"].to_numpy()[has], "tc50": tc[has],
+                            "y": obs[has]})
+        obst = np.vstack([np.column_stack([tc[has], obs[has]]),
+                          np.column_stack([tc[np.isfinite(model)], model[np.isfinite(model)]])])
+        _place_labels(fig, ax, pts, 6.0, 7.5, band_texts, obst, texts=out_text,
+                      styles={e: {"fontweight": "bold"} for e in out_text})
     return fig
 
 
@@ -276,7 +288,9 @@ def _volatility_curve(ax, df: pd.DataFrame, volatility: Mapping[str, object],
             lo, hi = np.percentile(band, [5, 95], axis=0)
             ax.fill_between(grid, lo, hi, color=OKABE_ITO["sky"], alpha=0.35, lw=0, zorder=2,
                             label=f"volatility trend, {interval_label}")
-    txt = ", ".join(f"{k} = {float(volatility[k]):.4g}" for k in names)
+    units = dict(zip(names, FORMS[form].units, strict=True))
+    txt = ", ".join(f"{k} = {float(volatility[k]):.4g}"
+                    f"{'' if units[k] == '1' else ' ' + units[k]}" for k in names)
     ax.plot(grid, curve, color=OKABE_ITO["sky"], lw=2.0, zorder=2.5,
             label=f"volatility trend ({form}: {txt})")
 
