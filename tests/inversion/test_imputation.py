@@ -149,3 +149,29 @@ def test_end_member_sigma_matches_monte_carlo(earth11):
     np.testing.assert_allclose(got[small], mc[small], rtol=0.15)
     # a block with zero weight contributes nothing
     assert end_member_sigma_dex(p, np.array([0.0, 1.0, 0.0])) == pytest.approx(S[1])
+
+
+def test_no_weight_hinges_on_one_imputed_value():
+    """Leave each imputed element out of the Earth fit in turn (the Earth case's best pair,
+    CV + EH, where EH lacks 21 of the fitted elements): no weight moves by more than 0.10,
+    the change threshold of ``planetmix sensitivity`` (our choice)."""
+    from inversion.fit import FitSettings, fit_problem
+    from inversion.sensitivity import CHANGE_THRESHOLDS
+
+    case = load_case(EARTH)
+    p = compile_problem(case).subset(["CV", "EH"])
+    settings = FitSettings(cmf_range=case.cmf_range, intervals=False, starts=2)
+    base = fit_problem(p, settings)
+    assert base.feasible
+    imputed = [j for j in p.fit_index if p.imputed[:, j].any()]
+    assert len(imputed) >= 15
+    moves = {}
+    for j in imputed:
+        keep = p.fit_index[p.fit_index != j]
+        sel = np.isin(p.fit_index, keep)
+        q = replace(p, fit_index=keep, y=p.y[sel], sigma=p.sigma[sel])
+        r = fit_problem(q, settings)
+        moves[p.elements[j]] = max(abs(r.weights[k] - base.weights[k]) for k in base.weights)
+    worst = max(moves, key=moves.get)
+    assert moves[worst] <= CHANGE_THRESHOLDS["weight"], (worst, moves[worst])
+    print(f"largest weight change: {moves[worst]:.4f} without {worst}")
