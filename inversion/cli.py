@@ -1,12 +1,15 @@
 """The ``planetmix`` command line.
 
-Exit status: 0 success; 2 bad input (one line naming file, row and field); 3 the best
-hypothesis is infeasible; 4 a Bayesian run failed its diagnostics gate.
+Exit status: 0 success; 1 a failure that is not the input's fault; 2 bad input or a bad
+option (one line naming file, row and field, prefixed ``planetmix: error:``); 3 the best
+hypothesis is infeasible; 4 a Bayesian run failed its diagnostics gate; 130 interrupted
+(Ctrl-C; no partial output is left); a closed output pipe ends the run silently (141).
 """
 
 from __future__ import annotations
 
 import argparse
+import os
 import sys
 from collections.abc import Callable
 from pathlib import Path
@@ -21,6 +24,22 @@ EXIT_OK = 0
 EXIT_INPUT = 2
 EXIT_INFEASIBLE = 3
 EXIT_GATE = 4
+EXIT_INTERRUPTED = 130
+EXIT_BROKEN_PIPE = 141
+
+#: Sub-commands whose ``--out`` is a result folder (written by
+#: :func:`inversion.output.atomic_folder`, or batch partitions).
+_FOLDER_OUT = {"fit", "rank", "sample", "compare", "star", "batch"}
+
+
+class _Parser(argparse.ArgumentParser):
+    """argparse with the project's one-line error form and exit status 2."""
+
+    def error(self, message: str) -> None:  # type: ignore[override]
+        text = " ".join(str(message).split())
+        print(f"planetmix: error: {self.prog}: {text} (see '{self.prog} --help')",
+              file=sys.stderr)
+        raise SystemExit(EXIT_INPUT)
 
 # Sub-commands register themselves here: name -> (configure parser, run).
 _COMMANDS: dict[str, tuple[str, Callable[[argparse.ArgumentParser], None],
@@ -264,7 +283,7 @@ def _load_plugins() -> None:
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser with every registered sub-command."""
     _load_plugins()
-    parser = argparse.ArgumentParser(
+    parser = _Parser(
         prog="planetmix",
         description="Planetary bulk composition from chondritic building blocks, volatile "
                     "loss, core formation and late accretion.")
@@ -288,13 +307,40 @@ def main(argv: list[str] | None = None) -> int:
         parser.print_help()
         return EXIT_INPUT
     try:
+        _check_common(args)
         return int(args._run(args))
     except InputError as err:
         print(f"planetmix: error: {err}", file=sys.stderr)
         return EXIT_INPUT
     except PlanetmixError as err:
-        print(f"planetmix: failed: {err}", file=sys.stderr)
+        print(f"planetmix: failed: {' '.join(str(err).split())}", file=sys.stderr)
         return 1
+    except KeyboardInterrupt:
+        print("planetmix: interrupted; no partial output was left", file=sys.stderr)
+        return EXIT_INTERRUPTED
+    except BrokenPipeError:
+        # the reader went away (e.g. `| head`): stop quietly; point stdout at /dev/null
+        # so that the interpreter's final flush does not fail again
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        return EXIT_BROKEN_PIPE
+
+
+def _check_common(args: argparse.Namespace) -> None:
+    """Checks of options shared by several sub-commands, before any work is done."""
+    seed = getattr(args, "seed", None)
+    if isinstance(seed, int) and seed < 0:
+        raise InputError("must be a whole number >= 0", field="--seed", value=seed)
+    out = getattr(args, "out", None)
+    if args.command in _FOLDER_OUT and out is not None:
+        from .output import check_out_folder
+
+        if args.command == "batch":  # partitions are resumed in place
+            if os.path.lexists(out) and not os.path.isdir(out):
+                raise InputError("exists and is not a folder; choose a folder name for the "
+                                 "results", file=str(out), field="--out")
+        else:
+            check_out_folder(out)
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -1,7 +1,8 @@
-"""Writing results: atomic file writes, JSON encoding, provenance.
+"""Writing results: atomic result folders, JSON encoding, provenance.
 
-A result folder is written into a temporary sibling folder and renamed into place at the
-end, so an interrupted run or a failure never leaves partial output.
+A result folder is written into a temporary sibling folder and put in place by renames
+only (:func:`atomic_folder`), so a failure, a Ctrl-C or a kill at any moment leaves
+either the previous complete result or nothing, never a mixture or a partial folder.
 """
 
 from __future__ import annotations
@@ -11,6 +12,8 @@ import json
 import math
 import os
 import platform
+import re
+import secrets
 import shutil
 import tempfile
 from collections.abc import Iterator
@@ -23,7 +26,8 @@ import numpy as np
 
 import components
 
-__all__ = ["atomic_folder", "write_json", "provenance", "case_provenance", "to_jsonable",
+__all__ = ["atomic_folder", "check_out_folder", "clean_stale", "RESULT_MARK", "write_json",
+           "provenance", "case_provenance", "to_jsonable",
            "package_version"]
 
 
@@ -62,26 +66,123 @@ def write_json(path: Path, data: dict[str, Any]) -> None:
                     encoding="utf-8")
 
 
+#: Empty file that marks a folder written by :func:`atomic_folder`; only such a folder
+#: (or an empty one, or one holding a known result file) is ever replaced.
+RESULT_MARK = ".planetmix-result"
+_KNOWN_RESULTS = ("fit.json", "ranking.json", "sample.json", "planet.json", "comparison.csv",
+                  "summary.json", "run.json")
+
+
+def _side_name(out: Path, kind: str) -> re.Pattern[str]:
+    return re.compile(rf"\.{re.escape(out.name)}\.{kind}-(\d+)-[A-Za-z0-9_]+")
+
+
+def _alive(pid: int) -> bool:
+    if pid == os.getpid():
+        return True
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    return True
+
+
+def clean_stale(out: str | Path) -> list[Path]:
+    """Remove what killed runs left beside ``out``; returns the paths removed.
+
+    A temporary folder ``.NAME.tmp-PID-*`` or a displaced earlier result
+    ``.NAME.old-PID-*`` whose process no longer runs is deleted, except that a displaced
+    earlier result is put back when ``out`` itself is missing (the run was killed
+    between its two renames, see :func:`atomic_folder`).
+    """
+    out = Path(os.path.abspath(out))
+    removed: list[Path] = []
+    if not out.parent.is_dir():
+        return removed
+    for kind in ("old", "tmp"):
+        pat = _side_name(out, kind)
+        for side in sorted(out.parent.glob(f".{glob_escape(out.name)}.{kind}-*")):
+            m = pat.fullmatch(side.name)
+            if not m or _alive(int(m.group(1))):
+                continue
+            if kind == "old" and not os.path.lexists(out):
+                os.rename(side, out)
+                continue
+            shutil.rmtree(side, ignore_errors=True)
+            removed.append(side)
+    return removed
+
+
+def glob_escape(name: str) -> str:
+    """``name`` with glob wild cards escaped."""
+    import glob
+
+    return glob.escape(name)
+
+
+def check_out_folder(out: str | Path, *, field: str = "--out") -> Path:
+    """Refuse an ``--out`` that cannot be replaced safely, before any work is done.
+
+    Refused: an existing file, the current folder or one of its parents, and a non-empty
+    folder that planetmix did not write (it would be replaced wholesale).
+    """
+    from .exceptions import InputError
+
+    path = Path(os.path.abspath(out))
+    if os.path.lexists(path) and not path.is_dir():
+        raise InputError("exists and is not a folder; choose a folder name for the results",
+                         file=str(out), field=field)
+    cwd = Path.cwd()
+    if path == cwd or path in cwd.parents:
+        raise InputError("is the current folder or one above it; give a new folder for the "
+                         "results", file=str(out), field=field)
+    if path.is_dir():
+        try:
+            names = set(os.listdir(path))
+        except OSError as err:
+            raise InputError(f"cannot be read ({err.strerror})", file=str(out),
+                             field=field) from None
+        if names and RESULT_MARK not in names and not names & set(_KNOWN_RESULTS):
+            raise InputError("is a folder that planetmix did not write and would be replaced "
+                             "whole; give a new or empty folder", file=str(out), field=field)
+    return path
+
+
 @contextlib.contextmanager
 def atomic_folder(out: str | Path) -> Iterator[Path]:
-    """Yield a temporary folder; on success its files replace those in ``out``.
+    """Yield a temporary folder beside ``out``; on success it replaces ``out`` whole.
 
-    Files already in ``out`` that the run does not write are left alone; files it writes
-    appear all at once (each by an atomic rename) only when the block ends without error.
+    The block writes into ``.NAME.tmp-PID-*`` beside ``out``. When it ends without error:
+    if ``out`` does not exist, one rename puts the new folder in place; if it does (an
+    earlier result), it is first renamed away to ``.NAME.old-PID-*``, then the new folder
+    is renamed in, then the old one is deleted. Between those two renames (a few
+    microseconds) ``out`` is missing; a run killed there leaves both complete folders
+    aside and the next run puts the earlier result back (:func:`clean_stale`). On an
+    error, a Ctrl-C or a kill, ``out`` keeps the earlier result or stays absent. Files
+    of the earlier result are never mixed with new ones.
     """
-    out = Path(out)
+    out = check_out_folder(out)
     out.parent.mkdir(parents=True, exist_ok=True)
-    tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.", dir=out.parent))
+    clean_stale(out)
+    tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.tmp-{os.getpid()}-", dir=out.parent))
     try:
+        mask = os.umask(0)
+        os.umask(mask)
+        os.chmod(tmp, 0o777 & ~mask)
+        (tmp / RESULT_MARK).touch()
         yield tmp
-        out.mkdir(parents=True, exist_ok=True)
-        for item in tmp.iterdir():
-            dest = out / item.name
-            if dest.is_dir() and not dest.is_symlink():
-                shutil.rmtree(dest)
-            os.replace(item, dest)
+        if os.path.lexists(out):
+            old = out.with_name(f".{out.name}.old-{os.getpid()}-{secrets.token_hex(6)}")
+            os.rename(out, old)
+            os.rename(tmp, out)
+            shutil.rmtree(old, ignore_errors=True)
+        else:
+            os.rename(tmp, out)
     finally:
-        shutil.rmtree(tmp, ignore_errors=True)
+        if tmp.exists():
+            shutil.rmtree(tmp, ignore_errors=True)
 
 
 def provenance(*, tables: list[str], extra: dict[str, Any] | None = None,
