@@ -40,6 +40,7 @@ import components
 
 from .case import CONDENSATION_TABLES, Case, read_target
 from .cli import EXIT_OK, register
+from .exceptions import InputError
 from .model import Problem, compile_problem
 
 __all__ = ["Variant", "variants", "run_sensitivity", "spread_table", "sensitivity_plot",
@@ -164,12 +165,24 @@ def run_sensitivity(case: Case, *, vary: tuple[str, ...] = TABLES,
     settings = settings or FitSettings(cmf_range=case.cmf_range, intervals=False)
     rows = []
     for v in variants(case, vary):
-        p = compile_problem(v.case, fit_imputed=v.fit_imputed)
+        try:
+            p = compile_problem(v.case, fit_imputed=v.fit_imputed)
+        except InputError as err:
+            if v.table == "baseline":
+                raise
+            # e.g. a Tc table without Fe: the alternative cannot be run on this case
+            rows.append({"variant": v.name, "table": v.table, "choice": v.choice,
+                         "status": "not applicable", "reason": err.reason})
+            continue
         if v.transform is not None:
             p = v.transform(p)
         rows.append(_row(v, p, fit_problem(p, settings)))
     table = pd.DataFrame(rows)
-    table["changed"] = [_changes(table.iloc[0], table.iloc[i]) for i in range(len(table))]
+    if "reason" not in table.columns:
+        table["reason"] = ""
+    table["reason"] = table["reason"].fillna("")
+    table["changed"] = [_changes(table.iloc[0], table.iloc[i]) if table["status"].iloc[i]
+                        != "not applicable" else "" for i in range(len(table))]
     return table
 
 
@@ -202,6 +215,7 @@ def spread_table(table: pd.DataFrame) -> pd.DataFrame:
     cols = [c for c in table.columns if c.startswith("w_")] + [
         c for c in ("T0", "slope", "late_accretion_fraction", "core_mass_fraction", "chi2",
                     "n_elements") if c in table.columns]
+    table = table[table["status"] != "not applicable"].reset_index(drop=True)
     num = table[cols].apply(pd.to_numeric, errors="coerce")
     return pd.DataFrame({"baseline": num.iloc[0], "min": num.min(), "max": num.max(),
                          "range": num.max() - num.min(),
@@ -262,7 +276,8 @@ def _sensitivity(parser: argparse.ArgumentParser):
         with atomic_folder(args.out) as tmp:
             table.to_csv(tmp / "sensitivity.csv", index=False)
             spread.to_csv(tmp / "spread.csv")
-            save_figure(sensitivity_plot(table, title=case.title), tmp / "sensitivity")
+            ran = table[table["status"] != "not applicable"].reset_index(drop=True)
+            save_figure(sensitivity_plot(ran, title=case.title), tmp / "sensitivity")
             write_json(tmp / "summary.json", {
                 "what": "sensitivity of the convex fit's conclusions to the reference tables",
                 "runs": table.to_dict(orient="records"),
@@ -274,6 +289,9 @@ def _sensitivity(parser: argparse.ArgumentParser):
             })
         print(f"{case.title}: {len(table) - 1} alternatives")
         for _, r in table.iterrows():
+            if r["status"] == "not applicable":
+                print(f"  {r['variant']:<24} not applicable: {r['reason']}")
+                continue
             print(f"  {r['variant']:<24} {r['status']:<18} n={r['n_elements']:<3} "
                   f"chi2={r['chi2']:.1f}  {r['changed'] or 'no change'}")
         return EXIT_OK

@@ -151,27 +151,48 @@ def test_end_member_sigma_matches_monte_carlo(earth11):
     assert end_member_sigma_dex(p, np.array([0.0, 1.0, 0.0])) == pytest.approx(S[1])
 
 
-def test_no_weight_hinges_on_one_imputed_value():
-    """Leave each imputed element out of the Earth fit in turn (the Earth case's best pair,
-    CV + EH, where EH lacks 21 of the fitted elements): no weight moves by more than 0.10,
-    the change threshold of ``planetmix sensitivity`` (our choice)."""
+def _leave_one_imputed_out(case, n: int | None = None):
+    """Best pair of the Earth case (CV + EH; EH lacks 21 fitted elements): the base fit,
+    its stated 1-sigma of the EH weight, and the EH weight change when each imputed element
+    is left out in turn (``n``: only the n imputed elements on which the two blocks differ
+    most, in dex over their combined uncertainty: the ones that can move the weights)."""
     from inversion.fit import FitSettings, fit_problem
-    from inversion.sensitivity import CHANGE_THRESHOLDS
 
-    case = load_case(EARTH)
     p = compile_problem(case).subset(["CV", "EH"])
-    settings = FitSettings(cmf_range=case.cmf_range, intervals=False, starts=2)
+    settings = FitSettings(cmf_range=case.cmf_range, intervals=True, starts=2)
     base = fit_problem(p, settings)
     assert base.feasible
+    sd = base.intervals["quantities"]["weight:EH"]["sd"]
     imputed = [j for j in p.fit_index if p.imputed[:, j].any()]
     assert len(imputed) >= 15
+    if n is not None:
+        contrast = {j: abs(np.log10(p.Q[0, j] / p.Q[1, j]))
+                    / np.hypot(p.Q_sigma_dex[0, j], p.Q_sigma_dex[1, j]) for j in imputed}
+        imputed = sorted(imputed, key=lambda j: -contrast[j])[:n]
     moves = {}
     for j in imputed:
         keep = p.fit_index[p.fit_index != j]
         sel = np.isin(p.fit_index, keep)
         q = replace(p, fit_index=keep, y=p.y[sel], sigma=p.sigma[sel])
-        r = fit_problem(q, settings)
-        moves[p.elements[j]] = max(abs(r.weights[k] - base.weights[k]) for k in base.weights)
+        r = fit_problem(q, replace(settings, intervals=False))
+        moves[p.elements[j]] = abs(r.weights["EH"] - base.weights["EH"])
+    return base, sd, moves
+
+
+def test_no_weight_hinges_on_one_imputed_value():
+    """The Earth case as given (isotope constraints included): leaving out any one imputed
+    element moves the EH weight by no more than its stated 1-sigma (the fit's interval)."""
+    base, sd, moves = _leave_one_imputed_out(load_case(EARTH), n=6)
+    assert "Bi" in moves
     worst = max(moves, key=moves.get)
-    assert moves[worst] <= CHANGE_THRESHOLDS["weight"], (worst, moves[worst])
-    print(f"largest weight change: {moves[worst]:.4f} without {worst}")
+    assert moves[worst] <= max(sd, 1e-3), (worst, moves[worst], sd)
+
+
+@pytest.mark.slow
+@pytest.mark.xfail(strict=True, reason="known: without the isotope constraints the EH "
+                   "weight hinges on EH's imputed Bi (0.90 -> 0.56, 1.5 sigma; measured "
+                   "for issue 12)")
+def test_no_weight_hinges_on_one_imputed_value_without_isotopes():
+    base, sd, moves = _leave_one_imputed_out(replace(load_case(EARTH), isotopes={}))
+    worst = max(moves, key=moves.get)
+    assert moves[worst] <= sd, (worst, moves[worst], sd)
