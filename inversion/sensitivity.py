@@ -292,7 +292,7 @@ def _sensitivity(parser: argparse.ArgumentParser):
             if r["status"] == "not applicable":
                 print(f"  {r['variant']:<24} not applicable: {r['reason']}")
                 continue
-            print(f"  {r['variant']:<24} {r['status']:<18} n={r['n_elements']:<3} "
+            print(f"  {r['variant']:<24} {r['status']:<18} n={int(r['n_elements']):<3} "
                   f"chi2={r['chi2']:.1f}  {r['changed'] or 'no change'}")
         return EXIT_OK
 
