@@ -94,6 +94,10 @@ PLAUSIBLE: dict[str, Limit] = {
                            "mantle", low_open=True, high_open=True),
     "minimum_uncertainty_dex": Limit(0.0, 2.0, "dex", "a floor on the log10 uncertainty of "
                                      "the target; above 2 dex no element constrains the fit"),
+    "default_uncertainty_pct": Limit(0.0, 1000.0, "%", "a 1-sigma above ten times the value "
+                                     "carries no information", low_open=True),
+    "isotope_window_sigma": Limit(0.0, 10.0, "sigma", "a window wider than 10 sigma screens "
+                                  "nothing out", low_open=True),
     "isotope_sigma": Limit(0.0, 1e3, "epsilon or per mil", "a 1-sigma must be positive; "
                            "nucleosynthetic anomalies are below 1e3 epsilon units",
                            low_open=True),

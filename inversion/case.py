@@ -181,6 +181,9 @@ def _resolve_component(item: Any, base: Path, file: str, field: str) -> componen
             found = False
         if not found:
             raise InputError("component file not found", file=file, field=field, value=item)
+        if not p.is_file():
+            raise InputError("is not a regular file (a folder, FIFO or device); give the path "
+                             "of a component CSV", file=file, field=field, value=item)
         c = components.read_component(p)
         _check_user_component(c, file, field)
         return c
@@ -252,6 +255,8 @@ def load_case(path: str | Path) -> Case:
     dflt = tgt.get("default_uncertainty_pct")
     if dflt is not None:
         dflt = _num(dflt, file=file, field="target.default_uncertainty_pct", positive=True)
+        check_in_range(dflt, "default_uncertainty_pct", file=file,
+                       field="target.default_uncertainty_pct")
     tpath = Path(tgt["table"])
     tpath = tpath if tpath.is_absolute() else base / tpath
     try:
@@ -261,6 +266,9 @@ def load_case(path: str | Path) -> Case:
     if not found:
         raise InputError(f"target table not found at {tpath}; paths are relative to the case "
                          "file's folder", file=file, field="target.table", value=tgt["table"])
+    if not tpath.is_file():
+        raise InputError("is not a regular file (a folder, FIFO or device); give the path of "
+                         "the target CSV", file=file, field="target.table", value=tgt["table"])
     comp, unc, defaulted = read_target(tpath, reference_element=ref,
                                        default_uncertainty_pct=dflt)
     planet_mass = tgt.get("planet_mass_kg")
@@ -382,6 +390,7 @@ def load_case(path: str | Path) -> Case:
     fit = raw.get("fit", {})
     window = _num(fit.get("isotope_window_sigma", 2.0), file=file,
                   field="fit.isotope_window_sigma", positive=True)
+    check_in_range(window, "isotope_window_sigma", file=file, field="fit.isotope_window_sigma")
     # [fit] cmf_range is a constraint of the convex fit and the screen (the core mass
     # fraction of every answer lies in it); absent = no constraint beyond physics
     cmf_range = fit.get("cmf_range")
