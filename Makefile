@@ -4,7 +4,7 @@ VENV := .venv
 BIN := $(VENV)/bin
 STAMP := $(VENV)/.installed
 
-.PHONY: demo test lint bench clean
+.PHONY: demo test lint bench clean browser
 
 $(BIN)/python:
 	$(PYTHON) -m venv $(VENV)
@@ -17,8 +17,18 @@ $(STAMP): pyproject.toml | $(BIN)/python
 demo: $(STAMP)
 	$(BIN)/planetmix demo --out demo_output
 
-test: $(STAMP)
+test: $(STAMP) browser
 	$(BIN)/python -m pytest -q
+
+# Headless Chromium for the report checks (tests/inversion/test_browser.py). Optional:
+# installed from the Debian package only when missing and when running as root; the
+# browser tests skip, saying why, where it cannot be installed. PLANETMIX_NO_BROWSER=1
+# skips the installation.
+browser:
+	@command -v chromium >/dev/null 2>&1 || [ -n "$$PLANETMIX_NO_BROWSER" ] \
+	  || [ "$$(id -u)" != 0 ] || ! command -v apt-get >/dev/null 2>&1 \
+	  || timeout 600 apt-get install -y --no-install-recommends chromium >/dev/null 2>&1 \
+	  || echo "chromium not installed: the browser tests will be skipped"
 
 lint: $(STAMP)
 	$(BIN)/ruff check .

@@ -244,7 +244,7 @@ def volatility_diagram(
         if title:
             ax.set_title(title, loc="left", fontsize=9)
         handles, labels = ax.get_legend_handles_labels()
-        fig.legend(handles, labels, loc="outside lower center", ncols=3, fontsize=7)
+        fig.legend(handles, labels, loc="outside lower center", ncols=2, fontsize=7)
         fig.canvas.draw()
         fig.set_layout_engine("none")
         pts = pd.DataFrame({"element": df["element"].to_numpy()[has], "tc50": tc[has],

@@ -1039,7 +1039,12 @@ def _compare_report(folder: Path) -> Report:
                         "predictive density from the best run (error bars: standard error "
                         "of the difference).",
                         lambda: plots.ranking_plot(shown, criterion="elpd_loo")))
-    rep.tables.append(("Comparison", _table_html(table)))
+    first = [c for c in ("rank", "components", "elpd_loo", "se", "elpd_diff", "dse",
+                         "within_uncertainty", "pareto_k_max", "pareto_k_high", "reading",
+                         "gate") if c in table.columns]
+    rest = [c for c in table.columns if c not in first and c not in ("scale", "warning")]
+    rep.tables.append(("Comparison (elpd in nats; dse: standard error of the difference)",
+                       _table_html(table[first + rest])))
     rep.limits.append("PSIS-LOO compares runs fitted to the same target and elements; "
                       "it says which predicts held-out elements best, not whether any is "
                       "adequate.")
@@ -1058,10 +1063,13 @@ body{font-family:system-ui,-apple-system,'Segoe UI',sans-serif;max-width:1180px;
 padding:0 1em;color:#1d1d1d;line-height:1.45}
 h1{font-size:1.6em;margin-bottom:.1em}h2{border-bottom:2px solid #0072B2;padding-bottom:.15em;
 margin-top:1.8em;font-size:1.25em}
-.meta{color:#555;font-size:.9em}table{border-collapse:collapse;font-size:.86em;margin:.5em 0}
-td,th{border:1px solid #ddd;padding:.25em .55em;text-align:left;vertical-align:top}
+.meta{color:#555;font-size:.9em}table{border-collapse:collapse;font-size:.86em;margin:.5em 0;
+display:block;max-width:100%;overflow-x:auto}
+td,th{border:1px solid #ddd;padding:.25em .55em;text-align:left;vertical-align:top;
+overflow-wrap:break-word}
 th{background:#f2f6fa}tr:nth-child(even) td{background:#fafafa}
-figure{margin:1.2em 0}figure img{max-width:100%;border:1px solid #eee}
+figure{margin:1.2em 0}figure img{max-width:100%;height:auto;box-sizing:border-box;
+border:1px solid #eee}
 figcaption{font-size:.88em;color:#444}.note{background:#fff8e5;border-left:4px solid #E69F00;
 padding:.4em .8em}nav a{margin-right:1em}code{background:#f4f4f4;padding:0 .2em}
 """
