@@ -291,6 +291,13 @@ def _fit_report(folder: Path) -> Report:
             rep.key_numbers.append((f"mantle heat production today [{unit}]",
                                     _fmt(table["total"].iloc[0]), "238U+235U+232Th+40K"))
             _add_source(rep, "turcotteschubert2014")
+    truth = _truth_of(prov)
+    if truth and feasible:
+        rep.tables.append(("Recovered vs the stated truth (simulated scenario)", _truth_table(
+            truth, {"weights": d.get("weights"), "mass_fractions": d.get("mass_fractions"),
+                    "volatility": vol, "late_accretion_fraction":
+                    d.get("late_accretion_fraction"),
+                    "core_mass_fraction": d.get("core_mass_fraction")}, "convex fit")))
     if len(resid):
         flagged = resid[resid["flag"].fillna("").isin(["above model", "below model"])]
         if len(flagged):
@@ -298,6 +305,52 @@ def _fit_report(folder: Path) -> Report:
                 flagged[["element", "tc50", "observed", "model", "sigma", "z", "fitted",
                          "flag"]])))
     return rep
+
+
+def _truth_of(prov: dict[str, Any]) -> dict[str, Any] | None:
+    """The stated truth of a simulated scenario: ``truth.json`` beside the case file."""
+    case = prov.get("case_file")
+    if not case:
+        return None
+    path = Path(str(case)).parent / "truth.json"
+    if not path.is_file():
+        return None
+    try:
+        return json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, json.JSONDecodeError):
+        return None
+
+
+def _truth_table(truth: dict[str, Any], est: dict[str, Any], label: str) -> str:
+    """Truth beside the recovered value for weights, volatility, late accretion, CMF.
+
+    ``est`` maps the same keys as ``truth`` to a number or to ``{"median", "q05", "q95"}``.
+    """
+    rows = []
+
+    def val(v: Any) -> tuple[str, str]:
+        if isinstance(v, dict) and "median" in v:
+            return _fmt(v["median"]), f"[{_fmt(v.get('q05'))}, {_fmt(v.get('q95'))}]"
+        return _fmt(v), ""
+
+    for group, name in (("weights", "weight of {} (reference basis)"), ("mass_fractions",
+                                                         "mass fraction of {}")):
+        for k, t in (truth.get(group) or {}).items():
+            e = (est.get(group) or {}).get(k)
+            if e is not None or t:
+                rows.append((name.format(k), _fmt(t), *val(e if e is not None else 0.0)))
+    vt, ve = truth.get("volatility") or {}, est.get("volatility") or {}
+    for k, t in vt.items():
+        if k != "form" and k in ve:
+            rows.append((_vol_label(k, vt.get("form")), _fmt(t), *val(ve[k])))
+    for k, name in (("late_accretion_fraction", "late accretion, fraction of mantle"),
+                    ("core_mass_fraction", "core mass fraction")):
+        if k in truth and est.get(k) is not None:
+            rows.append((name, _fmt(truth[k]), *val(est[k])))
+    df = pd.DataFrame(rows, columns=["quantity", "stated truth", label, "90% interval"])
+    if not (df["90% interval"] != "").any():
+        df = df.drop(columns=["90% interval"])
+    return _table_html(df)
 
 
 def _add_source(rep: Report, key: str) -> None:
@@ -502,6 +555,10 @@ def _sample_report(folder: Path) -> Report:
     post = meta.get("posterior") or {}
     if post:
         rep.key_numbers += _posterior_numbers(post, ref)
+        truth = _truth_of(prov)
+        if truth:
+            rep.tables.append(("Recovered vs the stated truth (simulated scenario)",
+                               _truth_table(truth, post, "posterior median")))
     summary = _read_csv(folder / "summary.csv") if (folder / "summary.csv").exists() else None
     if summary is not None:
         summary = _user_parameters(summary)
@@ -859,8 +916,10 @@ def _planet_from_draws(rep: Report, draws: pd.DataFrame, meta: dict[str, Any], *
                                 f"{width} interval [{_fmt(r['lo'])}, {_fmt(r['hi'])}]"))
     from .plots import MAJOR_OXIDE_MIN_WT
 
-    majors = planet[~((planet["reservoir"] == "mantle") & (planet["unit"] == "wt%")
-                      & (planet["value"].astype(float) < MAJOR_OXIDE_MIN_WT))]
+    mantle = planet["reservoir"] == "mantle"
+    majors = planet[~(mantle & (((planet["unit"] == "wt%")
+                                 & (planet["value"].astype(float) < MAJOR_OXIDE_MIN_WT))
+                                | planet["unit"].isin(["ppm", "ppb"])))]
     rep.tables.append((f"Planet (medians and {width} intervals over the draws; mantle "
                        "majors as oxide wt%)", _table_html(majors)))
     trace = mantle_trace_table(planet)
@@ -896,6 +955,20 @@ def _stat_text(st: Any) -> tuple[str, str]:
     return _fmt(st), ""
 
 
+def _iron_text(iron: dict[str, Any]) -> str:
+    """``mantle FeO 8 wt% (Earth-like)`` or ``ΔIW -2 (...)``: the iron split in words."""
+    parts = []
+    if iron.get("mantle_FeO_wt") is not None:
+        parts.append(f"mantle FeO {_fmt(iron['mantle_FeO_wt'])} wt%")
+    if iron.get("dIW") is not None:
+        parts.append(f"ΔIW {_fmt(iron['dIW'])}")
+    rest = {k: v for k, v in iron.items() if k not in ("mantle_FeO_wt", "dIW", "label")}
+    if rest:
+        parts.append(_plain_value(rest))
+    text = "; ".join(parts) or "n/a"
+    return f"{text} ({iron['label']})" if iron.get("label") else text
+
+
 def _star_report(folder: Path) -> Report:
     meta = _read_json(folder / "planet.json")
     rep = Report(title=meta.get("title", meta.get("star_id", folder.name)), kind="star",
@@ -909,7 +982,7 @@ def _star_report(folder: Path) -> Report:
                                 f"{dv.get('form', '')}: {pars}"))
     iron = meta.get("iron_split") or {}
     if iron:
-        rep.key_numbers.append(("iron split", json.dumps({k: v for k, v in iron.items()}),
+        rep.key_numbers.append(("iron split", _iron_text(iron),
                                 ""))
     draws = _planet_draws(folder)
     if draws is not None:
@@ -1194,7 +1267,8 @@ def _provenance_html(prov: dict[str, Any]) -> str:
         rows.append(("packages", ", ".join(f"{k} {v}" for k, v in prov["packages"].items()),
                      ""))
     if prov.get("reference_tables"):
-        rows.append(("reference tables", ", ".join(map(str, prov["reference_tables"])), ""))
+        rows.append(("reference tables",
+                     ", ".join(dict.fromkeys(map(str, prov["reference_tables"]))), ""))
     for name, info in (prov.get("components") or {}).items():
         rows.append((f"component {name}", f"{info.get('file', '')}: "
                      f"{info.get('description', '')}",

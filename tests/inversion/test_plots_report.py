@@ -435,3 +435,25 @@ def test_report_names_parameters_as_users_know_them(result_folders):
     rank = (result_folders["rank"] / "report.html").read_text(encoding="utf-8")
     n = len(pd.read_csv(result_folders["rank"] / "ranking.csv"))
     assert f"best of {n} hypotheses" in rank and "weight CI" in rank
+
+
+def test_report_sets_recovered_beside_the_stated_truth(tmp_path):
+    """A simulated scenario (truth.json beside its case file): the report's table puts the
+    stated truth beside the recovered numbers (here invented ones)."""
+    import json
+
+    from inversion.report import _truth_of, _truth_table
+
+    (tmp_path / "case.toml").write_text("")
+    (tmp_path / "truth.json").write_text(json.dumps({
+        "weights": {"H": 0.5, "CV": 0.5}, "volatility": {"form": "kinked", "T0": 1300.0},
+        "core_mass_fraction": 0.3}))
+    truth = _truth_of({"case_file": str(tmp_path / "case.toml")})
+    assert truth is not None and _truth_of({"case_file": str(tmp_path / "x" / "c")}) is None
+    html = _truth_table(truth, {"weights": {"H": 0.45, "CV": 0.55},
+                                "volatility": {"T0": {"median": 1310.0, "q05": 1290.0,
+                                                      "q95": 1333.0}},
+                                "core_mass_fraction": 0.31}, "posterior median")
+    for text in ("weight of H", "0.45", "pivot temperature T0 [K]", "1310", "[1290, 1333]",
+                 "core mass fraction", "0.31", "stated truth"):
+        assert text in html, text
