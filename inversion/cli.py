@@ -60,6 +60,37 @@ def register(name: str, help_text: str):
 
 
 # --------------------------------------------------------------------------- library
+#: Width the printed tables and text fit in (columns of a terminal).
+TERMINAL_WIDTH = 100
+
+
+def _wrap(text: str, indent: str = "") -> str:
+    """Prose wrapped to :data:`TERMINAL_WIDTH`, continuation lines indented."""
+    import textwrap
+
+    return textwrap.fill(text, TERMINAL_WIDTH, subsequent_indent=indent or "  ",
+                         break_on_hyphens=False)
+
+
+def _table(df, *, index: bool = True, cell: int = 36) -> str:
+    """A table that fits :data:`TERMINAL_WIDTH`: long text cells cut to ``cell``
+    characters (with a note), wide tables split into column blocks by pandas."""
+    cut = False
+    out = df.copy()
+    for c in out.columns:
+        if out[c].dtype == object:
+            long = out[c].astype(str).str.len() > cell
+            if long.any():
+                cut = True
+                out[c] = out[c].astype(str).where(~long, out[c].astype(str).str[:cell - 1]
+                                                  + "…")
+    text = out.to_string(index=index, line_width=TERMINAL_WIDTH)
+    if cut:
+        text += (f"\n(text cells longer than {cell} characters are cut; the full text is in "
+                 "the library's CSV files, components/data/)")
+    return text
+
+
 @register("library", "list the reference library, or show one table with its sources")
 def _library(parser: argparse.ArgumentParser):
     parser.add_argument("name", nargs="?", help="a component name (CI, EH, BSE_MS95...), "
@@ -77,8 +108,8 @@ def _library(parser: argparse.ArgumentParser):
                 c = components.load(name)
                 cites = ", ".join(c.source_keys)
                 levels = " ".join(f"{k}={v}" for k, v in c.provenance_counts().items())
-                print(f"  {name:<10} {c.kind:<19} {len(c.composition):>3} elements  "
-                      f"({levels})  [{cites}]")
+                print(_wrap(f"  {name:<10} {c.kind:<19} {len(c.composition):>3} elements  "
+                            f"({levels})  [{cites}]", " " * 14))
             print(f"\nElement properties: {len(components.elements())} elements "
                   "(Tc50 Lodders 2003 / Wood et al. 2019, classes, oxides)")
             print(f"Solar abundance tables: {', '.join(components.solar_tables())}")
@@ -89,46 +120,62 @@ def _library(parser: argparse.ArgumentParser):
             return EXIT_OK
         with pd.option_context("display.max_rows", 200, "display.width", 120):
             if args.name == "elements":
-                print(components.elements().drop(columns=["source"]).to_string())
+                print(_table(components.elements().drop(columns=["source"])))
                 keys = set()
                 for s in components.elements()["source"]:
                     keys |= {k.strip() for k in str(s).split(";")}
             elif args.name == "solar":
                 tab = components.solar()
-                print(tab.to_string())
+                print(_table(tab))
                 keys = set(tab["source"])
             elif args.name == "isotopes":
                 tab = components.isotopes()
-                print(tab.to_string(index=False))
+                print(_table(tab, index=False))
                 keys = set(tab["source"])
             elif args.name == "sources":
-                print(srcs.to_string())
+                for key, row in srcs.iterrows():
+                    doi = f" doi:{row['doi']}" if isinstance(row.get("doi"), str) and \
+                        row["doi"] else ""
+                    print(_wrap(f"[{key}] {row['citation']}{doi}", "    "))
                 return EXIT_OK
             else:
                 c = components.load(args.name)
-                print(f"{c.name}: {c.description}\n")
+                print(_wrap(f"{c.name}: {c.description}") + "\n")
                 df = c.to_dataframe()
                 df["mass_fraction"] = df["mass_fraction"].map(lambda v: f"{v:.4g}")
                 df["uncertainty"] = df["uncertainty"].map(lambda v: f"{v:.2g}")
-                print(df.to_string())
-                print("\nProvenance: " + ", ".join(
+                df = df.rename(columns={"mass_fraction": "mass_fraction [kg/kg]",
+                                        "uncertainty": "1-sigma [kg/kg]"})
+                print(_table(df))
+                print("\n" + _wrap("Provenance: " + ", ".join(
                     f"{v} {k}" for k, v in c.provenance_counts().items())
                     + f" (of {len(c.composition)}); uncertainties: "
                     + ", ".join(f"{v} {k or 'none'}" for k, v in
-                                c.uncertainty_basis.value_counts().items()))
+                                c.uncertainty_basis.value_counts().items())))
                 keys = set(c.source_keys)
         print("\nSources:")
         for k in sorted(keys):
             for kk in str(k).split(";"):
                 kk = kk.strip()
                 if kk in srcs.index:
-                    print(f"  [{kk}] {srcs.loc[kk, 'citation']}")
+                    print(_wrap(f"  [{kk}] {srcs.loc[kk, 'citation']}", "      "))
         return EXIT_OK
 
     return run
 
 
 # --------------------------------------------------------------------------- fit
+def _unit(form: str, name: str) -> str:
+    """`` K``, `` dex/K`` or nothing: the unit of a volatility parameter, for printing."""
+    from .volatility import FORMS
+
+    spec = FORMS.get(form)
+    if spec is None or name not in spec.params:
+        return ""
+    u = spec.units[spec.params.index(name)]
+    return "" if u == "1" else f" {u}"
+
+
 def _write_fit(out: Path, case, p, result, findings: dict) -> None:
     from .fit import planet_of
     from .output import atomic_folder, case_provenance, write_json
@@ -205,7 +252,8 @@ def _fit(parser: argparse.ArgumentParser):
         print("  mass fractions: " + ", ".join(f"{k} {v:.3f}"
                                                for k, v in result.mass_fractions.items()))
         print(f"  volatility ({result.volatility_form}): " + ", ".join(
-            f"{k} = {v:.4g}" for k, v in result.volatility.items()))
+            f"{k} = {v:.4g}{_unit(result.volatility_form, k)}"
+            for k, v in result.volatility.items()))
         print(f"  core mass fraction {result.core_mass_fraction:.3f}; chi2 {result.chi2:.1f} "
               f"on {result.n_elements} elements; AIC {result.aic:.1f}; BIC {result.bic:.1f}")
         q = result.intervals.get("quantities", {})

@@ -457,3 +457,14 @@ def test_report_sets_recovered_beside_the_stated_truth(tmp_path):
     for text in ("weight of H", "0.45", "pivot temperature T0 [K]", "1310", "[1290, 1333]",
                  "core mass fraction", "0.31", "stated truth"):
         assert text in html, text
+
+
+@pytest.mark.parametrize("name", [None, "sources", "elements", "isotopes", "solar", "EH"])
+def test_library_output_fits_a_100_column_terminal(name, capsys):
+    assert main(["library"] + ([name] if name else [])) == 0
+    out = capsys.readouterr().out
+    assert max(len(line) for line in out.splitlines()) <= 100
+    if name == "sources":
+        # every citation is there, wrapped rather than cut
+        assert "Solar system abundances and condensation temperatures" in out.replace("\n    ",
+                                                                                       " ")
