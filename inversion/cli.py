@@ -346,11 +346,14 @@ def build_parser() -> argparse.ArgumentParser:
 
 def main(argv: list[str] | None = None) -> int:
     """Entry point of the ``planetmix`` command."""
-    parser = build_parser()
     try:
+        parser = build_parser()
         args = parser.parse_args(argv)
     except SystemExit as exc:  # argparse usage errors exit 2 already
         return int(exc.code or 0)
+    except KeyboardInterrupt:
+        print("planetmix: interrupted", file=sys.stderr)
+        return EXIT_INTERRUPTED
     if not getattr(args, "command", None):
         parser.print_help()
         return EXIT_INPUT
