@@ -120,8 +120,10 @@ def main(argv: list[str] | None = None) -> int:
               f"speed-up {speed:.2f}x")
         print("peak RSS per worker: " + ", ".join(f"{v:.0f} MB" for v in
                                                   rss_workers.values()))
-        a = pd.concat([pd.read_parquet(f) for f in sorted((work / "single0").glob("part-*"))])
-        b = pd.concat([pd.read_parquet(f) for f in sorted((work / "dask0").glob("part-*"))])
+        a = pd.concat([pd.read_parquet(f)
+                       for f in sorted((work / "single0" / "parts").glob("part-*"))])
+        b = pd.concat([pd.read_parquet(f)
+                       for f in sorted((work / "dask0" / "parts").glob("part-*"))])
         same = a.reset_index(drop=True).equals(b.reset_index(drop=True))
         print(f"identical results: {same}")
         peak = max([rss_single, *rss_workers.values()])

@@ -9,7 +9,8 @@ each star's draws come from its own seed (:func:`inversion.star.star_seed`), so 
 path gives identical results.
 
 Output folder: ``run.json`` (settings and catalogue fingerprint, checked on resume),
-``part-NNNNN.parquet`` (one row per catalogue row: ``row``, ``star_id``, ``status``
+``parts/part-NNNNN.parquet`` (``pandas.read_parquet(folder / "parts")`` reads them all;
+one row per catalogue row: ``row``, ``star_id``, ``status``
 ``ok``/``failed``, ``reason``, flags, and for each quantity of the hand-off the columns
 ``<quantity>_<stat>`` with stat in p2.5, p16, median, p84, p97.5), and at the end
 ``summary.json`` and ``failed.csv``.
@@ -57,6 +58,9 @@ ALLOCATOR_ENV: dict[str, str] = {"MALLOC_MMAP_THRESHOLD_": str(512 * 2**20),
                                  "MALLOC_TRIM_THRESHOLD_": str(2**30)}
 
 _PART = "part-{:05d}.parquet"
+#: Sub-folder of the output folder that holds the partitions and nothing else, so that
+#: ``pandas.read_parquet(out / PARTS_DIR)`` reads the whole catalogue's results.
+PARTS_DIR = "parts"
 #: Draws computed together inside a partition.
 BLOCK_DRAWS = 25_000
 _FLAG_COLUMNS = ("row", "star_id", "status", "reason", "solar_ratio", "ci_reference",
@@ -431,7 +435,13 @@ def run_batch(catalogue: str | Path, out: str | Path, settings: StarSettings, *,
     out.mkdir(parents=True, exist_ok=True)
     fp = _fingerprint(digest, settings, partition_size)
     run_file = out / "run.json"
-    existing = sorted(out.glob("part-*.parquet"))
+    if list(out.glob("part-*.parquet")):
+        raise InputError(f"the folder holds partitions beside run.json (an older layout); "
+                         f"move the part-*.parquet files into {PARTS_DIR}/ to resume it",
+                         file=str(out))
+    pdir = out / PARTS_DIR
+    pdir.mkdir(exist_ok=True)
+    existing = sorted(pdir.glob("part-*.parquet"))
     if run_file.exists() or existing:
         if not resume:
             raise InputError("the folder holds results of an earlier run; add --resume to "
@@ -451,18 +461,18 @@ def run_batch(catalogue: str | Path, out: str | Path, settings: StarSettings, *,
             component_names=["CI", "BSE_MS95"],
             extra={"catalogue": str(Path(catalogue).resolve()), "command": "batch"})})
         os.replace(tmp, run_file)
-    for stale in out.glob(".part-*.parquet.tmp-*"):  # left by a run killed while writing
+    for stale in pdir.glob(".part-*.parquet.tmp-*"):  # left by a run killed while writing
         stale.unlink(missing_ok=True)
     parts = list(_chunks(rows, partition_size))
-    todo = [(i, r) for i, r in parts if not (out / partition_name(i)).exists()]
-    skipped = [(i, r) for i, r in parts if (out / partition_name(i)).exists()]
+    todo = [(i, r) for i, r in parts if not (pdir / partition_name(i)).exists()]
+    skipped = [(i, r) for i, r in parts if (pdir / partition_name(i)).exists()]
     if max_partitions is not None:
         todo = todo[:max_partitions]
     bar = tqdm(total=sum(len(r) for _, r in todo), desc="stars", unit="star",
                disable=not progress)
     if client is None:
         for i, r in todo:
-            write_partition(r, settings, out / partition_name(i))
+            write_partition(r, settings, pdir / partition_name(i))
             bar.update(len(r))
     else:
         from distributed import as_completed
@@ -486,7 +496,7 @@ def run_batch(catalogue: str | Path, out: str | Path, settings: StarSettings, *,
                 key = f"planetmix-partition-{i:05d}-{run_token}"
                 if workers_write:
                     f = client.submit(write_partition, r, s_future,
-                                      str(out.resolve() / partition_name(i)), pure=False,
+                                      str(pdir.resolve() / partition_name(i)), pure=False,
                                       key=key)
                 else:
                     f = client.submit(run_partition, r, s_future, pure=False, key=key)
@@ -499,12 +509,12 @@ def run_batch(catalogue: str | Path, out: str | Path, settings: StarSettings, *,
             i, n = futs.pop(fut)
             res = fut.result()
             if not workers_write:
-                _write_parquet_atomic(res, out / partition_name(i))
+                _write_parquet_atomic(res, pdir / partition_name(i))
             fut.release()
             bar.update(n)
             submit_next()
     bar.close()
-    done_files = sorted(out.glob("part-*.parquet"))
+    done_files = sorted(pdir.glob("part-*.parquet"))
     status = (pd.concat([pd.read_parquet(f, columns=["row", "star_id", "status", "reason"])
                          for f in done_files], ignore_index=True)
               if done_files else pd.DataFrame(columns=["row", "star_id", "status", "reason"]))

@@ -1022,11 +1022,12 @@ def _batch_report(folder: Path) -> Report:
     run = _read_json(folder / "run.json") if (folder / "run.json").exists() else {}
     rep = Report(title=run.get("title", f"catalogue {folder.name}"), kind="batch",
                  folder=str(folder), provenance=run.get("provenance") or run)
-    parts = sorted(folder.glob("*.parquet")) or sorted(folder.rglob("*.parquet"))
-    if not parts:
-        raise InputError("batch folder holds no Parquet parts", file=str(folder))
+    pdir = folder / "parts"
+    if not pdir.is_dir() or not any(pdir.glob("part-*.parquet")):
+        raise InputError("batch folder holds no Parquet parts (parts/part-*.parquet)",
+                         file=str(folder))
     try:
-        table = pd.concat([pd.read_parquet(p) for p in parts], ignore_index=True)
+        table = pd.read_parquet(pdir)
     except Exception as err:  # noqa: BLE001 - pyarrow raises several kinds
         raise InputError(f"cannot read the batch parts: {err}", file=str(folder)) from err
     ok = table[table["status"] == "ok"] if "status" in table.columns else table

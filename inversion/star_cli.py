@@ -203,7 +203,7 @@ def _batch(parser: argparse.ArgumentParser):
                     print(f"  ... and {len(summary.failed) - 20} more in {args.out}/failed.csv")
         print(f"\ndevolatilisation: {settings.pattern.label}")
         print(CAUTION)
-        print(f"written to {args.out}/part-*.parquet, summary.json, failed.csv "
+        print(f"written to {args.out}/parts/part-*.parquet, summary.json, failed.csv "
               f"({summary.seconds:.1f} s)")
         return EXIT_OK
 

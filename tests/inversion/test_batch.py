@@ -44,7 +44,7 @@ def write_catalogue(path: Path, n: int = 10, bad: bool = True, seed: int = 0) ->
 
 
 def _all_parts(folder: Path) -> pd.DataFrame:
-    files = sorted(folder.glob("part-*.parquet"))
+    files = sorted((folder / "parts").glob("part-*.parquet"))
     return pd.concat([pd.read_parquet(f) for f in files], ignore_index=True)
 
 
@@ -88,12 +88,12 @@ def test_interrupted_then_resumed_equals_uninterrupted(tmp_path, settings):
                      progress=False)
     assert not part.complete and part.partitions_computed == 1
     # killed while writing the next partition: only its temporary file exists
-    (tmp_path / "res" / ".part-00001.parquet.tmp-12345").write_bytes(b"partial")
+    (tmp_path / "res" / "parts" / ".part-00001.parquet.tmp-12345").write_bytes(b"partial")
     res = run_batch(cat, tmp_path / "res", settings, partition_size=3, resume=True,
                     progress=False)
     assert res.complete and res.partitions_skipped == 1 and res.partitions_computed == 3
-    assert not list((tmp_path / "res").glob(".part-*"))
-    (tmp_path / "res" / "part-00002.parquet").unlink()  # a partition lost
+    assert not list((tmp_path / "res" / "parts").glob(".part-*"))
+    (tmp_path / "res" / "parts" / "part-00002.parquet").unlink()  # a partition lost
     res = run_batch(cat, tmp_path / "res", settings, partition_size=3, resume=True,
                     progress=False)
     assert res.partitions_computed == 1 and res.partitions_skipped == 3

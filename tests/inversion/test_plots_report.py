@@ -238,6 +238,10 @@ def test_star_and_batch_reports(tmp_path):
     assert main(["batch", str(tpl / "catalog.csv"), "--out", str(batch_dir), "--draws", "50",
                  "--workers", "1"]) == 0
     assert detect_kind(star_dir) == "star" and detect_kind(batch_dir) == "batch"
+    # the parts sit alone in their folder: pandas reads the whole catalogue in one call
+    whole = pd.read_parquet(batch_dir / "parts")
+    n_rows = len(pd.read_csv(tpl / "catalog.csv", comment="#"))
+    assert len(whole) == n_rows and whole["row"].is_unique
     for folder, expect in ((star_dir, ("Whole planet", "core_mass_fraction", "Caution")),
                            (batch_dir, ("Across the catalogue", "CMF, median star",
                                         "Mg/Si (bulk, molar), median star", "demo-002"))):
