@@ -576,7 +576,8 @@ def _prior_rv(name: str, spec: dict[str, Any], **kw: Any):
     return getattr(pm, spec["dist"])(name, **pars, **kw)
 
 
-def end_member_sigma_dex(p: Problem, w: Any, *, xp: Any = np) -> Any:
+def end_member_sigma_dex(p: Problem, w: Any, *, xp: Any = np, Q: Any = None,
+                         S: Any = None) -> Any:
     """Model 1-sigma [dex] of the fitted elements from the blocks' own uncertainties.
 
     The bulk ratio of element i to the reference is ``B_i = sum_k w_k Q_ki`` (R-basis
@@ -594,10 +595,12 @@ def end_member_sigma_dex(p: Problem, w: Any, *, xp: Any = np) -> Any:
     w : (K,) weights (numpy array or pytensor tensor)
     xp : module
         ``numpy`` or ``pytensor.tensor``.
+    Q, S : optional
+        The fitted columns of ``p.Q`` and ``p.Q_sigma_dex`` (e.g. as ``pm.Data``).
     """
     fit = p.fit_index
-    Q = np.asarray(p.Q, float)[:, fit]
-    S = np.asarray(p.Q_sigma_dex, float)[:, fit]
+    Q = np.asarray(p.Q, float)[:, fit] if Q is None else Q
+    S = np.asarray(p.Q_sigma_dex, float)[:, fit] if S is None else S
     wq = w[:, None] * Q
     return xp.sqrt(xp.sum((wq * S) ** 2, axis=0)) / xp.sum(wq, axis=0)
 
@@ -674,8 +677,13 @@ def build_model(p: Problem, priors: dict[str, dict[str, Any]] | None = None, *,
         if p.Q_sigma_dex is not None and np.any(p.Q_sigma_dex[:, p.fit_index] > 0):
             # end-member uncertainties (errors in variables, marginalised to first order):
             # sigma_model_i = sqrt(sum_k (w_k Q_ki s_ki)^2) / sum_k w_k Q_ki  [dex]
+            # as data, not constants (the same pytensor rewrite issue as sigma2_data)
+            q_fit = pm.Data("Q_fit_data", np.asarray(p.Q, float)[:, p.fit_index])
+            s_fit = pm.Data("Q_sigma_fit_data",
+                            np.asarray(p.Q_sigma_dex, float)[:, p.fit_index])
             sigma2 = sigma2 + pm.Deterministic(
-                "sigma_model", end_member_sigma_dex(p, w, xp=pt), dims="elements") ** 2
+                "sigma_model", end_member_sigma_dex(p, w, xp=pt, Q=q_fit, S=s_fit),
+                dims="elements") ** 2
         scale = pt.sqrt(sigma2 + tau ** 2)
         y_data = pm.Data("y_data", y, dims="elements")
         pm.StudentT(OBS_ELEMENTS, nu=STUDENT_NU, mu=mu, sigma=scale, observed=y_data,
@@ -1468,11 +1476,16 @@ def _flat_truth(truth: dict[str, Any], p: Problem) -> dict[str, float]:
 
 def sbc(p: Problem, n_replicates: int, *, draws: int = 200, tune: int = 200, chains: int = 2,
         seed: int = 0, thin_to: int = 99, priors: dict[str, dict[str, Any]] | None = None,
-        progress: bool = False, engine: str = "nutpie", cores: int = 1) -> pd.DataFrame:
+        progress: bool = False, engine: str = "nutpie", cores: int = 1,
+        blocks: str = "fixed", fit_block_uncertainty: bool = True) -> pd.DataFrame:
     """Simulation-based calibration (Talts et al. 2018) of the sampler on problem ``p``.
 
     Each replicate draws parameters from the prior, simulates observations from the
-    numpy forward model and the likelihood, samples the posterior as :func:`sample` does
+    numpy forward model and the likelihood (``blocks="drawn"``: from building blocks
+    whose ratios are drawn within their uncertainties, ``Q * 10**N(0, Q_sigma_dex)``, an
+    errors-in-variables truth; ``"fixed"``: from ``p.Q`` itself), samples the posterior as
+    :func:`sample` does (with ``fit_block_uncertainty=False`` the fitted model treats the
+    blocks as exact: ``Q_sigma_dex`` dropped from the likelihood and the convex start)
     (NUTS from the jittered convex optimum; the log density is compiled once and reused
     with new data), and records the rank of the truth among ``thin_to`` thinned
     posterior draws and whether the central 90% interval covers it.
@@ -1489,6 +1502,15 @@ def sbc(p: Problem, n_replicates: int, *, draws: int = 200, tune: int = 200, cha
     from .fit import fit_problem
 
     check_option("sampler engine", engine, ENGINES)
+    check_option("sbc blocks", blocks, ("fixed", "drawn"))
+    if blocks == "drawn" and getattr(p, "Q_sigma_dex", None) is None:
+        raise InputError("blocks='drawn' needs the blocks' uncertainties (Q_sigma_dex); "
+                         "pass the problem as compiled", field="blocks", value=blocks)
+    from dataclasses import replace as _replace
+
+    q_sigma_sim = getattr(p, "Q_sigma_dex", None)
+    if not fit_block_uncertainty:
+        p = _replace(p, Q_sigma_dex=None)
     priors = priors or default_priors(p)
     rng = np.random.default_rng(seed)
     model = build_model(p, priors)
@@ -1502,7 +1524,11 @@ def sbc(p: Problem, n_replicates: int, *, draws: int = 200, tune: int = 200, cha
             step = pm.NUTS(target_accept=settings.target_accept)
     for r in tqdm(range(n_replicates), desc="SBC replicates", disable=not progress):
         truth = draw_prior(p, priors, rng)
-        y = simulate(p, truth, rng)
+        if blocks == "drawn":
+            q_true = p.Q * 10.0 ** (rng.standard_normal(p.Q.shape) * q_sigma_sim)
+            y = simulate(_replace(p, Q=q_true), truth, rng)
+        else:
+            y = simulate(p, truth, rng)
         fit = fit_problem(_with_y(p, y))
         if runner is not None:
             idata, _, _ = runner.run(p, priors, fit, settings, cores=cores,
