@@ -45,7 +45,8 @@ from .volatility import log10_retained  # noqa: E402
 
 __all__ = ["OKABE_ITO", "CLASS_STYLE", "plot_style", "volatility_diagram", "residuals_plot",
            "weights_plot", "pair_plot", "ranking_plot", "planet_plot", "heat_plot",
-           "distribution_plot", "save_figure", "png_bytes", "svg_text"]
+           "distribution_plot", "trace_rank_plot", "prior_posterior_plot", "save_figure",
+           "png_bytes", "svg_text"]
 
 #: The eight colours of Okabe & Ito (2008, "Color Universal Design").
 OKABE_ITO = {
@@ -687,6 +688,103 @@ def distribution_plot(values: pd.DataFrame, *, columns: Sequence[str] | None = N
             ax.set_yticks([])
         if title:
             fig.suptitle(title, x=0.01, ha="left")
+    return fig
+
+
+def trace_rank_plot(chains: Mapping[str, np.ndarray], *, title: str | None = None) -> Figure:
+    """Trace of every chain (left) and rank histograms per chain (right), per parameter.
+
+    Rank histograms: the draws of all chains pooled and ranked; each chain's ranks
+    binned. Well-mixed chains give flat, overlapping histograms (Vehtari et al. 2021).
+
+    Parameters
+    ----------
+    chains : mapping
+        Parameter -> array (chains, draws).
+    """
+    names = list(chains)
+    with plot_style():
+        fig, axs = plt.subplots(len(names), 2, figsize=(7.2, 1.25 * len(names) + 0.6),
+                                squeeze=False, layout="constrained",
+                                gridspec_kw={"width_ratios": [2.2, 1]})
+        for row, name in enumerate(names):
+            arr = np.asarray(chains[name], dtype=float)
+            n_ch, n_dr = arr.shape
+            ranks = arr.ravel().argsort().argsort().reshape(arr.shape)
+            bins = np.linspace(0, arr.size, min(20, max(5, n_dr // 10)) + 1)
+            for c in range(n_ch):
+                colour = _SERIES[c % len(_SERIES)]
+                axs[row, 0].plot(arr[c], lw=0.5, color=colour, alpha=0.8)
+                axs[row, 1].hist(ranks[c], bins=bins, histtype="step", color=colour, lw=1.0)
+            axs[row, 1].axhline(n_dr / (len(bins) - 1), color="#555555", lw=0.7, ls=":")
+            axs[row, 0].set_ylabel(name, fontsize=8)
+            axs[row, 1].set_yticks([])
+            axs[row, 0].grid(False)
+            axs[row, 1].grid(False)
+        axs[-1, 0].set_xlabel("draw (after tuning), one line per chain")
+        axs[-1, 1].set_xlabel("pooled rank, per chain")
+        if title:
+            fig.suptitle(title, x=0.01, ha="left", fontsize=9)
+    return fig
+
+
+def _prior_pdf(spec: Mapping[str, object], x: np.ndarray) -> np.ndarray | None:
+    from scipy import stats
+
+    d = spec.get("dist")
+    g = {k: float(v) for k, v in spec.items() if k != "dist" and isinstance(v, int | float)}
+    if d == "Uniform":
+        return stats.uniform(g["lower"], g["upper"] - g["lower"]).pdf(x)
+    if d == "Normal":
+        return stats.norm(g["mu"], g["sigma"]).pdf(x)
+    if d == "HalfNormal":
+        return stats.halfnorm(0.0, g["sigma"]).pdf(x)
+    if d == "LogNormal":
+        return stats.lognorm(g["sigma"], scale=np.exp(g["mu"])).pdf(x)
+    if d == "TruncatedNormal":
+        a, b = (g["lower"] - g["mu"]) / g["sigma"], (g["upper"] - g["mu"]) / g["sigma"]
+        return stats.truncnorm(a, b, g["mu"], g["sigma"]).pdf(x)
+    return None
+
+
+def prior_posterior_plot(draws: Mapping[str, np.ndarray],
+                         priors: Mapping[str, Mapping[str, object]], *,
+                         title: str | None = None) -> Figure:
+    """Posterior histogram against the prior density, one panel per parameter.
+
+    Parameters
+    ----------
+    draws : mapping
+        Parameter -> 1-d array of posterior draws.
+    priors : mapping
+        Parameter -> ``{"dist": name, <parameters>}`` (Uniform, Normal, HalfNormal,
+        LogNormal, TruncatedNormal), as recorded in ``sample.json``.
+    """
+    names = [n for n in draws if n in priors]
+    ncol = min(3, len(names))
+    nrow = int(np.ceil(len(names) / ncol))
+    with plot_style():
+        fig, axs = plt.subplots(nrow, ncol, figsize=(7.2, 2.0 * nrow + 0.4), squeeze=False,
+                                layout="constrained")
+        for ax, name in zip(axs.ravel(), names, strict=False):
+            v = np.asarray(draws[name], dtype=float)
+            v = v[np.isfinite(v)]
+            ax.hist(v, bins=30, density=True, color=OKABE_ITO["blue"], alpha=0.7,
+                    label="posterior")
+            lo, hi = np.percentile(v, [0.5, 99.5])
+            span = hi - lo or abs(hi) or 1.0
+            x = np.linspace(lo - 0.6 * span, hi + 0.6 * span, 400)
+            pdf = _prior_pdf(priors[name], x)
+            if pdf is not None:
+                ax.plot(x, pdf, color=OKABE_ITO["vermillion"], lw=1.4, label="prior")
+            ax.set_title(f"{name}: prior {priors[name].get('dist')}", fontsize=8, loc="left")
+            ax.set_yticks([])
+            ax.grid(False)
+        for ax in axs.ravel()[len(names):]:
+            ax.set_visible(False)
+        axs.ravel()[0].legend(loc="upper right", fontsize=7)
+        if title:
+            fig.suptitle(title, x=0.01, ha="left", fontsize=9)
     return fig
 
 

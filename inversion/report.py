@@ -615,6 +615,22 @@ def _sample_report(folder: Path) -> Report:
             rep.figures.append(("Pairwise posterior", "Main parameters: draws and marginals "
                                 "(median and 5-95%).",
                                 lambda: plots.pair_plot(draws, columns=main[:6])))
+        chains = _chain_arrays(idata, [c for c in (*vol_names, "lam", "cmf", "tau")
+                                       if c in draws.columns])
+        if chains:
+            rep.figures.append(("Traces and rank histograms", "Each chain's draws (left) and "
+                                "the ranks of the pooled draws per chain (right): mixed "
+                                "chains overlap and give flat histograms (dotted: the flat "
+                                "level; Vehtari et al. 2021).",
+                                lambda: plots.trace_rank_plot(chains)))
+        priors = meta.get("priors") or {}
+        shown = {c: draws[c].to_numpy(float) for c in (*vol_names, "lam", "tau")
+                 if c in draws.columns and c in priors}
+        if shown:
+            rep.figures.append(("Prior and posterior", "Posterior histograms against the "
+                                "prior densities of the case (a posterior that repeats its "
+                                "prior means the data say little about that parameter).",
+                                lambda: plots.prior_posterior_plot(shown, priors)))
     pdraws = _planet_draws(folder)
     if pdraws is not None:
         # the same 90% intervals as the posterior summary
@@ -789,6 +805,15 @@ def _load_idata(path: Path) -> Any:
         except Exception as err:  # noqa: BLE001 - netCDF/HDF5 raise several kinds
             raise InputError(f"cannot read the posterior: {err}", file=str(path)) from err
     return SimpleNamespace(**groups)
+
+
+def _chain_arrays(idata: Any, names: list[str]) -> dict[str, np.ndarray]:
+    """Scalar parameters of the posterior as (chain, draw) arrays (for trace plots)."""
+    post = getattr(idata, "posterior", None)
+    if post is None:
+        return {}
+    return {n: np.asarray(post[n].values, dtype=float) for n in names
+            if n in post.data_vars and post[n].ndim == 2}
 
 
 def _posterior_draws(idata: Any) -> pd.DataFrame | None:

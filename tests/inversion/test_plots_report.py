@@ -293,6 +293,9 @@ def _fake_sample_folder(folder: Path) -> Path:
         "title": "synthetic posterior", "components": ["CI", "EH"],
         "status": "failed diagnostics gate",
         "gate_messages": ["bulk ESS 120 < 400 (slope): run more draws"],
+        "priors": {"T0": {"dist": "Uniform", "lower": 900.0, "upper": 1700.0},
+                   "slope": {"dist": "HalfNormal", "sigma": 0.004},
+                   "tau": {"dist": "HalfNormal", "sigma": 0.05}},
         "posterior": {"mass_fractions": {"CI": interval(x_ci), "EH": interval(1 - x_ci)},
                       "volatility": {"form": "kinked", "T0": interval(T0),
                                      "slope": interval(slope)},
@@ -324,7 +327,7 @@ def test_sample_report_from_a_posterior(tmp_path):
     for text in ("Volatility diagram", "Building blocks", "Pairwise posterior",
                  "Whole planet", "FAILED", "largest R-hat", "90% credible interval",
                  "mass fraction of CI", "run more draws", "Flagged elements",
-                 "Posterior summary"):
+                 "Posterior summary", "Traces and rank histograms", "Prior and posterior"):
         assert text in html, text
     assert len(re.findall(r"data:image/png;base64,", html)) >= 4
     _no_external(html)
