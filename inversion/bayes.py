@@ -1086,6 +1086,15 @@ def _add_observed(idata: Any, p: Problem, y: np.ndarray) -> None:
     idata.add_groups({"observed_data": xr.Dataset(data, coords=coords)})
 
 
+def _obs_scale(p: Problem, post: Any) -> np.ndarray:
+    """Likelihood scale of the fitted elements per draw, as in :func:`build_model`:
+    sqrt(sigma**2 + tau**2 + sigma_model**2), the last term where the model has it."""
+    var = p.sigma ** 2 + post["tau"].values[..., None] ** 2
+    if "sigma_model" in post:
+        var = var + post["sigma_model"].values ** 2
+    return np.sqrt(var)
+
+
 def add_log_likelihood(p: Problem, idata: Any) -> None:
     """Add the pointwise log-likelihood group (elements ``y_obs``; isotopes ``eps_obs``).
 
@@ -1098,7 +1107,7 @@ def add_log_likelihood(p: Problem, idata: Any) -> None:
 
     post = idata.posterior
     y = idata.observed_data[OBS_ELEMENTS].values
-    scale = np.sqrt(p.sigma ** 2 + post["tau"].values[..., None] ** 2)
+    scale = _obs_scale(p, post)
     ll = stats.t.logpdf(y, STUDENT_NU, loc=post["mu"].values, scale=scale)
     data = {OBS_ELEMENTS: (("chain", "draw", "elements"), ll)}
     coords = {"chain": post["chain"].values, "draw": post["draw"].values,
@@ -1120,7 +1129,7 @@ def add_posterior_predictive(p: Problem, idata: Any, rng: np.random.Generator) -
 
     post = idata.posterior
     mu = post["mu"].values
-    scale = np.sqrt(p.sigma ** 2 + post["tau"].values[..., None] ** 2)
+    scale = _obs_scale(p, post)
     rep = mu + scale * rng.standard_t(STUDENT_NU, size=mu.shape)
     idata.add_groups({"posterior_predictive": xr.Dataset(
         {OBS_ELEMENTS: (("chain", "draw", "elements"), rep)},
