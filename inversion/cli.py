@@ -201,6 +201,10 @@ def _write_fit(out: Path, case, p, result, findings: dict) -> None:
         "n_elements": result.n_elements,
         "n_params": result.n_params,
         "fit_elements": p.fit_elements,
+        # elements some block lacked: imputed for those blocks and fitted (model.py _impute)
+        "imputed": {p.elements[j]: [p.components[k] for k in range(len(p.components))
+                                    if p.imputed[k, j]]
+                    for j in p.fit_index if p.imputed[:, j].any()},
         "isotopes_observed": {k: {"value": v, "sigma": s} for k, (v, s) in
                               case.isotopes.items()},
         "isotopes_predicted": result.isotopes,
