@@ -19,12 +19,9 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-import components
 from inversion.cli import main
-from tests.conftest import EARTH_EXCLUDE, write_case, write_target
 from tests.inversion.test_plots_report import _fake_sample_folder, _synthetic_posterior
 
-REPO = Path(__file__).resolve().parents[2]
 BROWSER = next((shutil.which(b) for b in ("chromium", "chromium-browser")
                 if shutil.which(b)), None)
 pytestmark = pytest.mark.skipif(
@@ -73,17 +70,10 @@ def _chromium(args: list[str], profile: Path) -> subprocess.CompletedProcess:
 
 
 @pytest.fixture(scope="module")
-def report_folders(tmp_path_factory) -> dict[str, Path]:
+def report_folders(shared_results, tmp_path_factory) -> dict[str, Path]:
     """One result folder of each kind, each with its report.html."""
     base = tmp_path_factory.mktemp("browser")
-    bse = components.load("BSE_MS95")
-    write_target(base / "target.csv", bse.composition,
-                 (bse.uncertainty / bse.composition).fillna(0.15))
-    case = write_case(base, candidates=["CI", "H"], exclude=EARTH_EXCLUDE,
-                      title="BSE vs CI+H (browser test)")
-    folders = {"fit": base / "fit", "rank": base / "rank"}
-    assert main(["fit", str(case), "--out", str(folders["fit"])]) in (0, 3)
-    assert main(["rank", str(case), "--out", str(folders["rank"]), "--workers", "1"]) in (0, 3)
+    folders = {k: shared_results[k] for k in ("fit", "rank", "star", "batch")}
     folders["sample"] = _fake_sample_folder(base / "sample")
     rng = np.random.default_rng(3)
     els = ["Li", "Na", "K", "Cu", "Zn", "Ga", "Rb", "Cs"]
@@ -92,13 +82,6 @@ def report_folders(tmp_path_factory) -> dict[str, Path]:
     b = _synthetic_posterior(base / "run_b", els[:-1], y[:-1], 0.5, rng, ["CV"])
     folders["compare"] = base / "compare"
     assert main(["compare", str(a), str(b), "--out", str(folders["compare"])]) == 0
-    tpl = REPO / "data_templates"
-    folders["star"] = base / "star"
-    assert main(["star", str(tpl / "star_abundances.csv"), "--out", str(folders["star"]),
-                 "--draws", "100"]) == 0
-    folders["batch"] = base / "batch"
-    assert main(["batch", str(tpl / "catalog.csv"), "--out", str(folders["batch"]),
-                 "--draws", "30", "--workers", "1"]) == 0
     for f in folders.values():
         assert main(["report", str(f)]) == 0
     return folders
