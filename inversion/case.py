@@ -422,7 +422,7 @@ def _check_prior_types(priors: dict, file: str) -> None:
     :func:`inversion.bayes.check_priors` against the compiled problem."""
     for name, spec in priors.items():
         fld = f"priors.{name}"
-        if not isinstance(spec, dict):
+        if not isinstance(spec, dict) or "dist" not in spec:
             raise InputError('give a table such as {dist = "Uniform", lower = 0, upper = 1}',
                              file=file, field=fld, value=spec)
         for k, v in spec.items():
