@@ -105,6 +105,13 @@ def test_no_two_labels_overlap_and_every_element_is_labelled(width):
         assert not overlap, (e1, e2)
     ax = fig.axes[0]
     assert ax.get_xlim()[0] > ax.get_xlim()[1]  # hot on the left
+    # nothing drawn outside the page: legend and every text inside the figure
+    page = fig.bbox
+    renderer = fig.canvas.get_renderer()
+    for artist in [*fig.legends, *ax.texts, *fig.texts]:
+        bb = artist.get_window_extent(renderer)
+        assert bb.x0 >= page.x0 - 1 and bb.x1 <= page.x1 + 1, artist
+        assert bb.y0 >= page.y0 - 1 and bb.y1 <= page.y1 + 1, artist
     plt.close(fig)
 
 

@@ -461,3 +461,27 @@ def test_library_output_fits_a_100_column_terminal(name, capsys):
         # every citation is there, wrapped rather than cut
         assert "Solar system abundances and condensation temperatures" in out.replace("\n    ",
                                                                                        " ")
+
+
+def test_report_volatility_diagram_labels_apart_and_inside_the_page():
+    from inversion.diagram import label_boxes
+
+    fig = plots.volatility_diagram(_residuals(), reference="Mg",
+                                   volatility={"form": "kinked", "T0": 1350.0,
+                                               "slope": 0.006})
+    fig.canvas.draw()
+    boxes = label_boxes(fig)
+    assert set(boxes) == set(_residuals()["element"])
+    vals = list(boxes.values())
+    for i, a in enumerate(vals):
+        for b in vals[i + 1:]:
+            assert not (a[0] < b[2] and b[0] < a[2] and a[1] < b[3] and b[1] < a[3])
+    renderer = fig.canvas.get_renderer()
+    for artist in [*fig.legends, *fig.axes[0].texts]:
+        bb = artist.get_window_extent(renderer)
+        assert fig.bbox.x0 - 1 <= bb.x0 and bb.x1 <= fig.bbox.x1 + 1, artist
+    # the y range follows data and model (down to -1.3 dex); the steeper trend drawn here
+    # (-4 dex at the coolest element) does not stretch it
+    assert fig.axes[0].get_ylim()[0] > -2.0
+    assert "Pb (" in " ".join(t.get_text() for t in fig.axes[0].texts)  # outlier with its z
+    plots.plt.close(fig)
