@@ -12,7 +12,8 @@ offers, each alternative changing one thing:
     default uncertainty for rows without one;
 ``Tc``
     the other 50% condensation-temperature table (elements without a value there leave
-    the mass balance);
+    the mass balance), and that table where it gives a value with the case's own
+    elsewhere;
 ``partition``
     every core-mantle partition coefficient moved up, then down, by its stated log10
     spread (the partition table's own uncertainty);
@@ -89,6 +90,14 @@ def _scale_D(sign: float) -> Callable[[Problem], Problem]:
     return f
 
 
+def _tc_where_given(table: str) -> Callable[[Problem], Problem]:
+    def f(p: Problem) -> Problem:
+        other = components.elements()[CONDENSATION_TABLES[table]]
+        alt = np.array([other.get(e, np.nan) for e in p.elements], dtype=float)
+        return replace(p, tc=np.where(np.isfinite(alt), alt, p.tc))
+    return f
+
+
 def variants(case: Case, vary: tuple[str, ...] = TABLES) -> list[Variant]:
     """The baseline and every alternative the library offers for this case.
 
@@ -121,6 +130,11 @@ def variants(case: Case, vary: tuple[str, ...] = TABLES) -> list[Variant]:
             if table != case.condensation_table:
                 out.append(Variant(f"Tc={table}", "Tc", table,
                                    replace(case, condensation_table=table)))
+                # the other table where it gives a value, the case's own elsewhere (a
+                # partial table, such as wood2019's 15 elements, can still be tested)
+                out.append(Variant(f"Tc={table} where given", "Tc",
+                                   f"{table}, else {case.condensation_table}", case,
+                                   _tc_where_given(table)))
     if "partition" in vary:
         out.append(Variant("D=+1 spread", "partition", "+1 log10 spread", case, _scale_D(1.0)))
         out.append(Variant("D=-1 spread", "partition", "-1 log10 spread", case, _scale_D(-1.0)))
