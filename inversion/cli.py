@@ -292,7 +292,7 @@ def _rank(parser: argparse.ArgumentParser):
         from .output import atomic_folder, provenance, write_json
 
         case = load_case(args.case)
-        workers = args.workers or os.cpu_count() or 1
+        workers = args.workers if args.workers is not None else os.cpu_count() or 1
         if workers < 1:
             raise InputError("must be at least 1", field="--workers", value=args.workers)
         ranking = screen(case, workers=workers, progress=True)
@@ -386,6 +386,11 @@ def _check_common(args: argparse.Namespace) -> None:
     seed = getattr(args, "seed", None)
     if isinstance(seed, int) and seed < 0:
         raise InputError("must be a whole number >= 0", field="--seed", value=seed)
+    diw = getattr(args, "dIW", None)
+    if isinstance(diw, float):
+        from components.units import check_in_range
+
+        check_in_range(diw, "dIW", field="--dIW")
     out = getattr(args, "out", None)
     if args.command in _FOLDER_OUT and out is not None:
         from .output import check_out_folder
