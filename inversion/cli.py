@@ -373,6 +373,10 @@ def main(argv: list[str] | None = None) -> int:
     except KeyboardInterrupt:
         print("planetmix: interrupted; no partial output was left", file=sys.stderr)
         return EXIT_INTERRUPTED
+    except (IsADirectoryError, NotADirectoryError, PermissionError, FileExistsError) as err:
+        # a path the user gave cannot be written or read as asked
+        print(f"planetmix: error: {err.filename}: {err.strerror}", file=sys.stderr)
+        return EXIT_INPUT
     except BrokenPipeError:
         # the reader went away (e.g. `| head`): stop quietly; point stdout at /dev/null
         # so that the interpreter's final flush does not fail again
