@@ -150,13 +150,23 @@ def test_closed_pipe_is_silent(tmp_path: Path) -> None:
 
 
 def _ctrl_c_fit(tmp_path: Path, case: Path, delay: float) -> None:
-    """Ctrl-C during a fit into a fresh folder: exit 130, one line, nothing left."""
+    """Ctrl-C during a fit into a fresh folder: exit 130, one line, nothing left.
+
+    A Ctrl-C while Python itself still imports the package (before ``main`` runs, the
+    first ~0.5 s; nothing is written yet) ends with Python's own message: the trial is
+    then repeated later in the run.
+    """
     out = tmp_path / "fresh"
-    p = subprocess.Popen([sys.executable, "-c", RUN, "fit", str(case), "--out", str(out)],
-                         stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
-    time.sleep(delay)
-    p.send_signal(signal.SIGINT)
-    err = p.communicate(timeout=120)[1].decode()
+    for _ in range(4):
+        p = subprocess.Popen([sys.executable, "-c", RUN, "fit", str(case), "--out", str(out)],
+                             stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+        time.sleep(delay)
+        p.send_signal(signal.SIGINT)
+        err = p.communicate(timeout=120)[1].decode()
+        if p.returncode != -signal.SIGINT:
+            break
+        assert not out.exists() and list(tmp_path.glob(".fresh.*")) == []
+        delay *= 1.5
     if p.returncode == 0:  # the fit finished before the signal: nothing to check
         shutil.rmtree(out)
         return
