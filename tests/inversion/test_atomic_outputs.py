@@ -253,7 +253,7 @@ def _kill_trials(tmp_path: Path, n_fit: int, n_report: int, seed: int,
     rduration = time.perf_counter() - t0
     assert done.returncode == 0, done.stderr
     for _ in range(n_report):
-        (tmp_path / "report.html").unlink()
+        (tmp_path / "report.html").unlink(missing_ok=True)
         rc = _kill_at(["report", "o", "--out", "report.html"], tmp_path,
                       rng.uniform(0.3, 1.0) * rduration)
         killed += rc == -signal.SIGKILL
