@@ -20,10 +20,10 @@ from components.units import PLAUSIBLE, check_in_range
 
 from .exceptions import InputError
 from .options import check_option
-from .volatility import FORMS
+from .volatility import CASE_FORMS
 
 __all__ = ["Case", "Target", "CoreSettings", "load_case", "read_target", "ISOTOPE_CARRIERS",
-           "CONDENSATION_TABLES"]
+           "CONDENSATION_TABLES", "reference_elements"]
 
 #: Isotope anomaly -> element that carries it (docs/model.md section 6).
 ISOTOPE_CARRIERS: dict[str, str] = {"D17O": "O", "e50Ti": "Ti", "e54Cr": "Cr", "e48Ca": "Ca"}
@@ -33,7 +33,7 @@ _ALLOWED: dict[str, set[str]] = {
     "": {"title", "target", "building_blocks", "volatility", "core", "late_accretion",
          "isotopes", "elements", "priors", "sampler", "fit"},
     "target": {"table", "reference_element", "planet_mass_kg", "mantle_mass_kg",
-               "default_uncertainty_pct", "minimum_uncertainty_dex"},
+               "default_uncertainty_pct", "minimum_uncertainty_dex", "normaliser"},
     "building_blocks": {"candidates", "max_mixture_size"},
     "volatility": {"form", "condensation_table"},
     "core": {"mantle_FeO_wt", "dIW", "D"},
@@ -88,11 +88,25 @@ class Case:
     isotope_window_sigma: float = 2.0
     minimum_uncertainty_dex: float = 0.02
     cmf_range: tuple[float, float] | None = None
+    normaliser: components.Component | None = None
 
     @property
     def candidate_names(self) -> list[str]:
         """Names of the building-block candidates, in case order."""
         return [c.name for c in self.candidates]
+
+
+def reference_elements() -> list[str]:
+    """Elements allowed as the reference element: lithophile, refractory or main-component,
+    and without a partition coefficient into the core (so that no volatile loss and no
+    core formation moves the denominator of every ratio)."""
+    from .model import default_partition
+
+    props = components.elements()
+    part = default_partition()["D"]
+    ok = (props["geochemical_class"] == "lithophile") & props["cosmochemical_class"].isin(
+        ["refractory", "main_component"])
+    return sorted(e for e in props.index[ok] if not part.get(e, 0.0) > 0)
 
 
 def _check_keys(section: str, table: dict, file: str) -> None:
@@ -248,10 +262,10 @@ def load_case(path: str | Path) -> Case:
     if not isinstance(ref, str) or components.parse_species(ref) is None:
         raise InputError("not an element symbol", file=file, field="target.reference_element",
                          value=ref)
-    if ref not in components.elements().index or components.elements().loc[
-            ref, "geochemical_class"] != "lithophile":
-        raise InputError("the reference element must be a lithophile element such as Mg or "
-                         "Al", file=file, field="target.reference_element", value=ref)
+    if ref not in reference_elements():
+        raise InputError("the reference element must be a refractory or main-component "
+                         f"lithophile, one of {reference_elements()}", file=file,
+                         field="target.reference_element", value=ref)
     dflt = tgt.get("default_uncertainty_pct")
     if dflt is not None:
         dflt = _num(dflt, file=file, field="target.default_uncertainty_pct", positive=True)
@@ -309,10 +323,18 @@ def load_case(path: str | Path) -> Case:
                          field="building_blocks.max_mixture_size", value=mms)
 
     vol = raw.get("volatility", {})
-    form = check_option("volatility form", vol.get("form", "kinked"), FORMS, file=file,
+    form = check_option("volatility form", vol.get("form", "kinked"), CASE_FORMS, file=file,
                         field="volatility.form")
     ctab = check_option("condensation table", vol.get("condensation_table", "lodders2003"),
                         CONDENSATION_TABLES, file=file, field="volatility.condensation_table")
+    excl_raw = (raw.get("elements") or {}).get("exclude", [])
+    _check_tc_complete(comp, ctab, excl_raw if isinstance(excl_raw, list) else [], file)
+    normaliser = None
+    if tgt.get("normaliser", "CI") != "CI":
+        normaliser = _resolve_component(tgt["normaliser"], base, file, "target.normaliser")
+        if ref not in normaliser.composition.index or not normaliser.composition[ref] > 0:
+            raise InputError(f"the normaliser has no {ref}, the reference element", file=file,
+                             field="target.normaliser", value=tgt["normaliser"])
 
     core_raw = raw.get("core", {})
     feo = core_raw.get("mantle_FeO_wt")
@@ -413,7 +435,25 @@ def load_case(path: str | Path) -> Case:
         minimum_uncertainty_dex=min_dex,
         cmf_range=(None if cmf_range is None
                    else (float(cmf_range[0]), float(cmf_range[1]))),
+        normaliser=normaliser,
     )
+
+
+def _check_tc_complete(comp: pd.Series, table: str, exclude: list, file: str) -> None:
+    """Refuse a condensation table that lacks a Tc for a target element the fit would use."""
+    from .model import MODEL_EXCLUDED
+
+    props = components.elements()
+    col = CONDENSATION_TABLES[table]
+    lacking = [e for e in comp.index if e not in MODEL_EXCLUDED and e not in exclude
+               and comp[e] > 0 and (e not in props.index or not math.isfinite(
+                   float(props.loc[e, col])))]
+    if lacking:
+        held = int(props[col].notna().sum())
+        raise InputError(f"the condensation table {table} ({held} elements) has no 50% "
+                         f"condensation temperature for {lacking}; use lodders2003 or add "
+                         "them to [elements] exclude", file=file,
+                         field="volatility.condensation_table", value=table)
 
 
 def _check_prior_types(priors: dict, file: str) -> None:

@@ -38,7 +38,8 @@ from .exceptions import InputError
 from .volatility import get_form, log10_retained
 
 __all__ = ["Problem", "compile_problem", "forward", "relative_log_retained",
-           "default_partition", "CORE_ITERATIONS", "MODEL_EXCLUDED"]
+           "default_partition", "CORE_ITERATIONS", "MODEL_EXCLUDED", "METAL_CLASSES",
+           "implausible_values", "implausible_lines", "IMPLAUSIBLE_DEX"]
 
 #: Maximum fixed-point iterations for the core-to-mantle mass ratio (it stops earlier once
 #: k changes by < 1e-12 relative; chondritic bulk compositions need about ten).
@@ -75,13 +76,18 @@ class Problem:
         relative 1-sigma (stored or documented default; imputed values carry their rule's
         uncertainty), 0 for the reference element. None for problems built without blocks.
     q_late : (n,) late component ratios (zeros when there is none).
-    q_ci : (n,) CI ratios, the normaliser.
+    q_ci : (n,) the normaliser's ratios to R (CI unless the case names another).
     tc : (n,) condensation temperatures [K].
     D : (n,) effective partition coefficients (0 lithophile; Fe handled separately).
     oxide_factor : (n,) oxide mass per element mass in the mantle.
     atomic_weight : (n,) g/mol.
     cations : (n,) cations per oxide formula unit.
     fit_index : indices of elements used in the fit; y, sigma on those.
+    metal_class : (n,) bool, True for chalcophile and siderophile elements (the class mask
+        of the ``kinked-split`` volatility form).
+    dropped : (element, reason) for every target element that is not fitted.
+    implausible : target values far from the CI expectation (:func:`implausible_values`).
+    normaliser : name of the normalising composition of ``q_ci`` and ``y`` (default CI).
     isotopes : one dict per isotope system: ``name``, ``carrier``, observed ``value`` and
         ``sigma``; per block (K,) ``eps``, ``eps_sigma`` (1-sigma of the end-member),
         ``q_carrier`` (carrier mass ratio to R), ``q_carrier_rel_sigma`` (its relative
@@ -122,6 +128,10 @@ class Problem:
     isotope_window_sigma: float
     notes: tuple[str, ...] = field(default=())
     Q_sigma_dex: np.ndarray | None = None
+    metal_class: np.ndarray | None = None
+    dropped: tuple[tuple[str, str], ...] = field(default=())
+    implausible: tuple[dict[str, Any], ...] = field(default=())
+    normaliser: str = "CI"
 
     @property
     def n_fit(self) -> int:
@@ -310,7 +320,17 @@ def compile_problem(case: Case, *, minimum_sigma_dex: float | None = None,
         rel_ref = float(rel[ref]) if rel is not None else 0.0
         Q_sig[k] = np.log10(1.0 + np.hypot(rel_el, rel_ref))
         Q_sig[k, els.index(ref)] = 0.0
-    q_ci = np.array([ci[e] for e in els]) / ci[ref]
+    norm = getattr(case, "normaliser", None)
+    norm_name = "CI" if norm is None else norm.name
+    if norm is None:
+        q_ci = np.array([ci[e] for e in els]) / ci[ref]
+    else:
+        nc = norm.composition
+        if ref not in nc.index or not nc[ref] > 0:
+            raise InputError(f"the normaliser {norm.name} has no {ref}, the reference element",
+                             file=case.path, field="target.normaliser", value=norm.name)
+        q_ci = np.array([nc[e] / nc[ref] if e in nc.index and nc[e] > 0 else np.nan
+                         for e in els])
     if case.late_component is not None:
         lv = case.late_component
         vals, _, _ = _impute(lv.composition, ci, els, classes, tc_series, geo)
@@ -335,7 +355,7 @@ def compile_problem(case: Case, *, minimum_sigma_dex: float | None = None,
     obs = np.full(len(els), np.nan)
     unc = case.target.uncertainty
     for j, e in enumerate(els):
-        if e in tgt.index and tgt[e] > 0:
+        if e in tgt.index and tgt[e] > 0 and np.isfinite(q_ci[j]):
             obs[j] = tgt[e]
             y_all[j] = np.log10(tgt[e] / tgt[ref] / q_ci[j])
             rel = float(np.hypot(unc[e] / tgt[e], unc[ref] / tgt[ref])) if e != ref else 0.0
@@ -354,6 +374,7 @@ def compile_problem(case: Case, *, minimum_sigma_dex: float | None = None,
                      "group's own CI-normalised level at similar Tc, "
                      + ("fitted with the imputation's 1-sigma" if fit_imputed else
                         "not fitted") + f"): {held_out}")
+    dropped = _dropped(case, els, fit, y_all, imputed, q_ci, norm_name, tc_col, ci)
     if fit.size < 3:
         raise InputError(f"only {fit.size} elements can be fitted; the target and the "
                          "building blocks share too few elements", file=case.target.path)
@@ -409,7 +430,113 @@ def compile_problem(case: Case, *, minimum_sigma_dex: float | None = None,
         late_max_fraction=case.late_max_fraction if late_name else 0.0,
         isotopes=tuple(iso), isotope_window_sigma=case.isotope_window_sigma,
         notes=tuple(notes), Q_sigma_dex=Q_sig,
+        metal_class=np.isin(props.loc[els, "geochemical_class"].to_numpy(), METAL_CLASSES),
+        dropped=dropped, implausible=implausible_values(case), normaliser=norm_name,
     )
+
+
+#: Geochemical classes that the ``kinked-split`` form gives their own volatility slope.
+METAL_CLASSES = ("chalcophile", "siderophile_moderate", "siderophile_highly")
+#: A target value further than this from the CI expectation [dex] is reported.
+IMPLAUSIBLE_DEX = 2.0
+#: Unit mix-ups a factor points to: log10 factor -> wording.
+_UNIT_SLIPS = {3.0: "ppm given where ppb was meant (factor 1000)",
+               -3.0: "ppb given where ppm was meant (factor 1000)",
+               4.0: "wt% given where ppm was meant (factor 10^4)",
+               -4.0: "ppm given where wt% was meant (factor 10^4)",
+               7.0: "wt% given where ppb was meant (factor 10^7)",
+               -7.0: "ppb given where wt% was meant (factor 10^7)"}
+
+
+def implausible_values(case: Case, *, threshold_dex: float = IMPLAUSIBLE_DEX
+                       ) -> tuple[dict[str, Any], ...]:
+    """Target values far from what CI times the ratio to the reference element predicts.
+
+    For each target element X other than the reference R, the offset
+    ``log10[(C_X / C_R)_target / (C_X / C_R)_CI]``; an offset beyond ``threshold_dex`` is
+    reported unless the element's known behaviour explains it: highly siderophile
+    elements (stripped by core formation), highly volatile and atmophile elements, and
+    the depletion (not an excess) of moderately volatile elements, which volatile loss
+    and core formation together take to -3 dex in the Earth's mantle (S, Se, Te). A unit
+    slip is therefore caught on refractory and main-component elements and on any
+    excess. The nearest unit slip (ppb vs ppm, ppm vs wt%) within 0.7 dex is named.
+
+    Parameters
+    ----------
+    case : Case
+    threshold_dex : float
+        Reporting threshold [dex].
+
+    Returns
+    -------
+    tuple of dict
+        ``element``, ``file``, ``row`` (1-based line of the CSV, header = 1), ``value_ppm``,
+        ``offset_dex`` and ``likely`` (the unit slip, or ``None``).
+    """
+    ci = components.load("CI").composition
+    props = components.elements()
+    tgt = case.target.composition
+    ref = case.target.reference_element
+    out = []
+    for i, e in enumerate(tgt.index):
+        if e == ref or e in MODEL_EXCLUDED or not tgt[e] > 0 or e not in ci.index \
+                or not ci[e] > 0 or e not in props.index:
+            continue
+        if props.loc[e, "geochemical_class"] in ("siderophile_highly", "atmophile") \
+                or props.loc[e, "cosmochemical_class"] == "highly_volatile":
+            continue
+        off = float(np.log10(tgt[e] / tgt[ref] / (ci[e] / ci[ref])))
+        if abs(off) <= threshold_dex or (
+                off < 0 and props.loc[e, "cosmochemical_class"] == "moderately_volatile"):
+            continue
+        slip = min(_UNIT_SLIPS, key=lambda f: abs(off - f))
+        out.append({"element": e, "file": case.target.path, "row": i + 2,
+                    "value_ppm": float(tgt[e] * 1e6), "offset_dex": off,
+                    "likely": _UNIT_SLIPS[slip] if abs(off - slip) <= 0.7 else None})
+    return tuple(out)
+
+
+def implausible_lines(items: tuple[dict[str, Any], ...]) -> list[str]:
+    """One warning line per implausible value (CLI summary)."""
+    return [f"implausible value: {d['element']} in {d['file']} row {d['row']} "
+            f"({d['value_ppm']:.4g} ppm) is {d['offset_dex']:+.2f} dex from CI x its ratio to "
+            "the reference element" + (f"; likely {d['likely']}" if d["likely"] else "")
+            + " (fitted as given)" for d in items]
+
+
+def _dropped(case: Case, els: list[str], fit: np.ndarray, y_all: np.ndarray,
+             imputed: np.ndarray, q_ci: np.ndarray, norm_name: str, tc_col: str,
+             ci: pd.Series) -> tuple[tuple[str, str], ...]:
+    """Every target element that is not fitted, with the reason."""
+    props = components.elements()
+    fitted = {els[j] for j in fit}
+    tgt = case.target.composition
+    out = []
+    for e in tgt.index:
+        if e in fitted:
+            continue
+        j = els.index(e) if e in els else None
+        if e == case.target.reference_element:
+            why = "reference element (every ratio is taken to it)"
+        elif e in MODEL_EXCLUDED:
+            why = ("not in the mass balance (oxygen from stoichiometry; H, C, N and the "
+                   "noble gases are outside the oxide budget)")
+        elif not tgt[e] > 0:
+            why = "zero concentration in the target"
+        elif e in case.exclude:
+            why = "excluded by the case ([elements] exclude)"
+        elif e not in ci.index or not ci[e] > 0:
+            why = "no CI value (needed for the imputation rule and the normalisation)"
+        elif e not in props.index or not np.isfinite(props.loc[e, tc_col]):
+            why = f"no 50% condensation temperature in {case.condensation_table}"
+        elif j is not None and not np.isfinite(q_ci[j]):
+            why = f"no value in the normaliser {norm_name}"
+        elif j is not None and imputed[:, j].any():
+            why = "missing from some building block and fit_imputed is off"
+        else:
+            why = "not in the mass balance"
+        out.append((e, why))
+    return tuple(out)
 
 
 def _core_split(a: np.ndarray, p: Problem, D: np.ndarray, k0: np.ndarray | None = None
@@ -455,7 +582,7 @@ def _core_split(a: np.ndarray, p: Problem, D: np.ndarray, k0: np.ndarray | None 
 
 def relative_log_retained(p: Problem, vol: np.ndarray) -> np.ndarray:
     """Volatility factor log10(r_i / r_R) for each parameter set, shape (B, n)."""
-    logr = log10_retained(p.volatility_form, vol, p.tc)
+    logr = log10_retained(p.volatility_form, vol, p.tc, metal=p.metal_class)
     return logr - logr[:, p.ref_index:p.ref_index + 1]
 
 

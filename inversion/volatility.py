@@ -16,7 +16,8 @@ import numpy as np
 
 from .options import check_option
 
-__all__ = ["VolatilityForm", "FORMS", "get_form", "log10_retained"]
+__all__ = ["VolatilityForm", "FORMS", "CASE_FORMS", "get_form", "log10_retained",
+           "SPLIT_FORM"]
 
 
 @dataclass(frozen=True)
@@ -56,7 +57,24 @@ FORMS: dict[str, VolatilityForm] = {
          (-4.0, -2.5, -1.5, -0.7)),
         "log10 r = max(log10_floor, min(0, slope * (Tc - T0)))",
     ),
+    "kinked-split": VolatilityForm(
+        "kinked-split", ("T0", "slope", "slope_offset"), ("K", "dex/K", "dex/K"),
+        (700.0, 0.0, -0.01), (1800.0, 0.02, 0.01),
+        (tuple(np.linspace(900, 1700, 9)), (0.0, 0.0005, 0.001, 0.002, 0.003, 0.005, 0.008),
+         (-0.001, -0.0003, 0.0, 0.0003, 0.001)),
+        "log10 r = min(0, s_i * (Tc - T0)), s_i = max(0, slope + slope_offset * m_i), "
+        "m_i = 1 for chalcophile and siderophile elements, 0 for the others",
+    ),
 }
+
+#: The class-split kinked form: one pivot, a separate slope for the chalcophile and
+#: siderophile elements. It needs each element's class (``metal`` in
+#: :func:`log10_retained`); the class-independence test of :mod:`inversion.findings`
+#: fits it against ``kinked``.
+SPLIT_FORM = "kinked-split"
+#: Forms a case file may name (the split form is the nested alternative of the class
+#: test; the Bayesian model has no twin of it).
+CASE_FORMS: dict[str, VolatilityForm] = {k: v for k, v in FORMS.items() if k != SPLIT_FORM}
 
 
 def get_form(name: str) -> VolatilityForm:
@@ -65,7 +83,8 @@ def get_form(name: str) -> VolatilityForm:
     return FORMS[name]
 
 
-def log10_retained(form: str, params: np.ndarray, tc: np.ndarray) -> np.ndarray:
+def log10_retained(form: str, params: np.ndarray, tc: np.ndarray, *,
+                   metal: np.ndarray | None = None) -> np.ndarray:
     """log10 of the retained fraction for each parameter set and element.
 
     Parameters
@@ -76,6 +95,9 @@ def log10_retained(form: str, params: np.ndarray, tc: np.ndarray) -> np.ndarray:
         Parameters in the order of ``FORMS[form].params``.
     tc : ndarray, shape (n,)
         50% condensation temperatures [K].
+    metal : ndarray of bool, shape (n,), optional
+        True for chalcophile and siderophile elements; required by ``kinked-split``
+        (whose ``slope_offset`` applies to them), ignored by the other forms.
 
     Returns
     -------
@@ -87,6 +109,9 @@ def log10_retained(form: str, params: np.ndarray, tc: np.ndarray) -> np.ndarray:
     >>> import numpy as np
     >>> log10_retained("kinked", np.array([[1200.0, 0.002]]), np.array([1500.0, 700.0]))
     array([[ 0., -1.]])
+    >>> log10_retained("kinked-split", np.array([[1200.0, 0.002, 0.001]]),
+    ...                np.array([700.0, 700.0]), metal=np.array([False, True]))
+    array([[-1. , -1.5]])
     """
     p = np.atleast_2d(np.asarray(params, dtype=float))
     tc = np.asarray(tc, dtype=float)[None, :]
@@ -100,5 +125,11 @@ def log10_retained(form: str, params: np.ndarray, tc: np.ndarray) -> np.ndarray:
         return -np.logaddexp(0.0, -z) / np.log(10.0)
     if form == "kinked-floor":
         return np.maximum(p[:, 2:3], np.minimum(0.0, p[:, 1:2] * (tc - p[:, 0:1])))
+    if form == SPLIT_FORM:
+        if metal is None:
+            raise ValueError("the kinked-split form needs the class mask 'metal'")
+        m = np.asarray(metal, dtype=float)[None, :]
+        s = np.maximum(0.0, p[:, 1:2] + p[:, 2:3] * m)
+        return np.minimum(0.0, s * (tc - p[:, 0:1]))
     check_option("volatility form", form, FORMS)
     raise AssertionError("unreachable")
