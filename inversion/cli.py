@@ -211,6 +211,9 @@ def _write_fit(out: Path, case, p, result, findings: dict) -> None:
         "planet_mass_kg": case.target.planet_mass_kg,
         "findings": findings,
         "notes": list(p.notes),
+        "normaliser": p.normaliser,
+        "dropped_elements": [{"element": e, "reason": r} for e, r in p.dropped],
+        "implausible_values": list(p.implausible),
         "provenance": case_provenance(case, p, extra={
             "solver": result.settings.record}),
     }
@@ -238,6 +241,10 @@ def _fit(parser: argparse.ArgumentParser):
 
         case = load_case(args.case)
         p = compile_problem(case)
+        from .model import implausible_lines
+
+        for line in implausible_lines(p.implausible):
+            print("warning: " + line)
         result = fit_problem(p, FitSettings(cmf_range=case.cmf_range))
         f = findings(p, result, planet_mass_kg=case.target.planet_mass_kg)
         _write_fit(Path(args.out), case, p, result, f)

@@ -1,0 +1,189 @@
+"""Findings: the class-independence test (simulated truths), reference element, normaliser,
+Tc-table refusal, dropped elements and implausible-value warnings."""
+
+from __future__ import annotations
+
+from dataclasses import replace
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from inversion import compile_problem, load_case
+from inversion.exceptions import InputError
+from inversion.findings import class_test, findings
+from inversion.fit import FitSettings, fit_problem
+from inversion.model import forward
+from inversion.volatility import SPLIT_FORM, log10_retained
+
+ROOT = Path(__file__).resolve().parents[2]
+DEMO = ROOT / "case_studies" / "demo" / "orrin.toml"
+EARTH = ROOT / "case_studies" / "earth" / "case.toml"
+#: Settings of the simulated fits: no Laplace intervals for the common fit (not read).
+COMMON = FitSettings(intervals=False)
+
+
+def synthetic_body(p, w, vol, rng, *, offset=0.0, d_scatter_dex=0.0, sigma_dex=None, lam=0.003):
+    """A body made with one volatility trend (``offset`` = 0) or class-split slopes, true D
+    scattered by ``d_scatter_dex`` around the fitted ones, Normal noise ``sigma_dex`` (the
+    problem's own sigma when None); returns the problem with those observations."""
+    D = p.D * 10.0 ** (rng.normal(0.0, d_scatter_dex, p.D.size) * (p.D > 0))
+    pt = replace(p, volatility_form=SPLIT_FORM)
+    mu = forward(pt, np.asarray(w)[None], np.array([[vol[0], vol[1], offset]]), lam, D=D
+                 )["log10N"][0]
+    fi = p.fit_index
+    sig = p.sigma if sigma_dex is None else np.full(fi.size, sigma_dex)
+    y_all = p.y_all.copy()
+    s_all = p.sigma_all.copy()
+    y_all[fi] = mu[fi] + rng.normal(0.0, sig)
+    s_all[fi] = sig
+    return replace(p, y=y_all[fi], sigma=s_all[fi], y_all=y_all, sigma_all=s_all)
+
+
+def run_class_test(p):
+    """Common fit then the nested test; returns the class-test record."""
+    r = fit_problem(p, COMMON)
+    return class_test(p, r)
+
+
+def demo_problem():
+    """The demo planet's problem on its two true blocks (truth.json: H and EH dominate)."""
+    return compile_problem(load_case(DEMO)).subset(["H", "EH"])
+
+
+def earth_problem():
+    """An Earth-like problem: the McDonough & Sun (1995) element set on two blocks."""
+    return compile_problem(load_case(EARTH)).subset(["CV", "EH"])
+
+
+def test_split_form_needs_the_class_mask_and_reduces_to_kinked():
+    tc = np.array([1500.0, 900.0, 700.0])
+    th = np.array([[1300.0, 0.003]])
+    same = log10_retained(SPLIT_FORM, np.array([[1300.0, 0.003, 0.0]]), tc,
+                          metal=np.array([False, True, False]))
+    assert np.allclose(same, log10_retained("kinked", th, tc))
+    with pytest.raises(ValueError, match="class mask"):
+        log10_retained(SPLIT_FORM, np.array([[1300.0, 0.003, 0.0]]), tc)
+
+
+def test_class_test_null_and_power_few_replicates():
+    """Simulated truth: one common trend with D scattered by 0.3 dex (no detection at
+    3 sigma), and a 0.3 dex per 1000 K class difference on Earth-like 15% noise recovered
+    within 3 stated sigma. The 50/30-replicate calibration is the slow test below."""
+    rng = np.random.default_rng(11)
+    p = demo_problem()
+    for _ in range(2):
+        body = synthetic_body(p, [0.55, 0.45], (1300.0, 0.003), rng, d_scatter_dex=0.3)
+        c = run_class_test(body)
+        assert c["status"] == "done"
+        assert c["significance_sigma"] < 3.0, c
+    pe = earth_problem()
+    body = synthetic_body(pe, [0.5, 0.5], (1380.0, 0.0022), rng, offset=0.0003,
+                          sigma_dex=np.log10(1.15))
+    c = run_class_test(body)
+    assert abs(c["slope_difference_dex_per_1000K"] - 0.3) <= 3 * c["uncertainty"], c
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("kind", ["demo", "earth"])
+def test_class_test_false_positive_rate_50_null_bodies(kind):
+    """Issue 11 check: FPR at 3 sigma <= 5% on 50 one-trend bodies with D scattered."""
+    rng = np.random.default_rng(2026 if kind == "demo" else 2027)
+    if kind == "demo":
+        p, w, vol, sig = demo_problem(), [0.55, 0.45], (1300.0, 0.003), None
+    else:
+        p, w, vol, sig = earth_problem(), [0.5, 0.5], (1380.0, 0.0022), np.log10(1.15)
+    hits = sum(run_class_test(synthetic_body(p, w, vol, rng, d_scatter_dex=0.3,
+                                             sigma_dex=sig))["differ"] for _ in range(50))
+    assert hits / 50 <= 0.05
+
+
+@pytest.mark.slow
+def test_class_test_power_30_earth_like_bodies():
+    """Issue 11 check: 0.3 dex per 1000 K detected in >= 80% of 30 Earth-like bodies,
+    recovered within its stated 1-sigma in >= 90%... of a Normal error that is 68%, so the
+    check reads 'within its stated uncertainty' as the 95% interval (1.96 sigma)."""
+    rng = np.random.default_rng(2028)
+    p = earth_problem()
+    det = cover = 0
+    for _ in range(30):
+        c = run_class_test(synthetic_body(p, [0.5, 0.5], (1380.0, 0.0022), rng,
+                                          offset=0.0003, sigma_dex=np.log10(1.15)))
+        det += c["differ"]
+        cover += abs(c["slope_difference_dex_per_1000K"] - 0.3) <= 1.96 * c["uncertainty"]
+    assert det >= 24 and cover >= 27
+
+
+def _case(tmp_path, **target):
+    """A copy of the demo case with [target] keys and table overridden."""
+    src = DEMO.read_text()
+    table = target.pop("table", str(DEMO.parent / "orrin_mantle.csv"))
+    src = src.replace('table = "orrin_mantle.csv"', f'table = "{table}"')
+    for k, v in target.items():
+        if k == "condensation_table":
+            src = src.replace('condensation_table = "lodders2003"',
+                              f'condensation_table = "{v}"')
+        elif k == "reference_element":
+            src = src.replace('reference_element = "Mg"', f'reference_element = "{v}"')
+        else:
+            src = src.replace("[target]\n", f'[target]\n{k} = "{v}"\n')
+    path = tmp_path / "case.toml"
+    path.write_text(src)
+    return path
+
+
+def test_reference_element_outside_the_allowed_set_is_refused(tmp_path):
+    with pytest.raises(InputError, match=r"refractory or main-component lithophile.*'Al'"):
+        load_case(_case(tmp_path, reference_element="Cl"))
+    with pytest.raises(InputError, match="lithophile"):
+        load_case(_case(tmp_path, reference_element="K"))
+
+
+def test_non_ci_normaliser_shifts_y_by_the_ratio_of_normalisers(tmp_path):
+    import components
+
+    p_ci = compile_problem(load_case(DEMO))
+    p_cm = compile_problem(load_case(_case(tmp_path, normaliser="CM")))
+    assert p_cm.normaliser == "CM"
+    ci, cm = components.load("CI").composition, components.load("CM").composition
+    both = np.isfinite(p_ci.y_all) & np.isfinite(p_cm.y_all)
+    els = np.array(p_ci.elements)[both]
+    expect = np.log10((ci[els] / ci["Mg"]) / (cm[els] / cm["Mg"])).to_numpy()
+    assert both.sum() > 20
+    assert np.allclose(p_cm.y_all[both] - p_ci.y_all[both], expect, atol=1e-12)
+
+
+def test_incomplete_tc_table_is_refused_naming_elements(tmp_path):
+    with pytest.raises(InputError, match=r"wood2019 \(15 elements\).*'Fe'"):
+        load_case(_case(tmp_path, condensation_table="wood2019"))
+
+
+def test_ppb_for_ppm_is_caught_and_nothing_leaves_silently(tmp_path):
+    import pandas as pd
+
+    df = pd.read_csv(DEMO.parent / "orrin_mantle.csv", comment="#")
+    i = int(np.flatnonzero(df["element"] == "Sc")[0])
+    assert df.loc[i, "unit"] == "ppm"
+    df.loc[i, "unit"] = "ppb"  # the value read as ppb: 1000 times too small
+    table = tmp_path / "mantle.csv"
+    df.to_csv(table, index=False)
+    case = load_case(_case(tmp_path, table=str(table)))
+    p = compile_problem(case)
+    hit = [d for d in p.implausible if d["element"] == "Sc"]
+    assert len(hit) == 1 and "ppb given where ppm" in hit[0]["likely"]
+    assert hit[0]["row"] == i + 2 and abs(hit[0]["offset_dex"] + 3.0) < 0.3
+    assert not [d for d in compile_problem(load_case(DEMO)).implausible]
+    target = set(case.target.composition.index)
+    assert set(p.fit_elements) | {e for e, _ in p.dropped} == target
+    assert dict(p.dropped)["Mg"].startswith("reference element")
+
+
+def test_findings_report_class_and_onset_on_the_demo():
+    p = compile_problem(load_case(DEMO))
+    r = fit_problem(p, COMMON)
+    f = findings(p, r, run_class_test=False)
+    assert not f["volatility_onset"]["above_reference_tc"]
+    assert all("geochemical_class" in o for o in f["off_trend"])
+    # the reference element depleted: an onset far above Mg's Tc is flagged
+    hot = replace(r, volatility={"T0": 1790.0, "slope": 0.003})
+    assert findings(p, hot, run_class_test=False)["volatility_onset"]["above_reference_tc"]
