@@ -47,7 +47,8 @@ def run_class_test(p):
 
 
 def demo_problem():
-    """The demo planet's problem on its two true blocks (truth.json: H and EH dominate)."""
+    """Demo-like: the demo planet's elements and uncertainties on two of its true blocks
+    (H, EH; truth.json has H 0.5, EH 0.3, CV 0.2)."""
     return compile_problem(load_case(DEMO)).subset(["H", "EH"])
 
 

@@ -10,7 +10,7 @@ from inversion.case import load_case
 from inversion.fit import fit_problem
 from inversion.model import compile_problem, forward, lam_from_v
 from inversion.planet import assemble
-from inversion.volatility import FORMS, log10_retained
+from inversion.volatility import CASE_FORMS, log10_retained
 from tests.conftest import EARTH_EXCLUDE, write_case, write_target
 
 
@@ -84,7 +84,7 @@ def test_redox_split_reproduces_feo_mode(bse_case, tmp_path) -> None:
     np.testing.assert_allclose(fwd2["mantle"], fwd["mantle"], rtol=1e-6)
 
 
-@pytest.mark.parametrize("form", sorted(FORMS))
+@pytest.mark.parametrize("form", sorted(CASE_FORMS))
 def test_every_form_fits_the_bse(form, tmp_path) -> None:
     bse = components.load("BSE_MS95")
     rel = (bse.uncertainty / bse.composition).fillna(0.15)
