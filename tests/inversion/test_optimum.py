@@ -19,6 +19,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from scipy.ndimage import minimum_filter
 
 from components.exceptions import InputError
 from inversion.case import load_case
@@ -163,3 +164,38 @@ def test_cmf_range_fit_matches_global_search(mars_bounded) -> None:
     ref = reference_fit(compile_problem(case), cmf_range=case.cmf_range, maxiter=100,
                         popsize=15)
     assert _no_worse(bound.chi2, ref.chi2), (bound.chi2, ref.chi2)
+
+
+def test_two_basins_solved_to_the_global_one(earth: Problem) -> None:
+    """One block (CI), kinked volatility: half the elements simulated from a steep,
+    early depletion (T0 1050 K, 0.004 dex/K), half from a shallow, late one (1550 K,
+    0.0008 dex/K, weighed less), so chi2(T0, slope) has two separated basins."""
+    p = replace(earth.subset(["CI"]), isotopes=(), late_name=None)
+    fi = p.fit_index
+    one = np.ones((1, 1))
+    steep = forward(p, one, np.array([[1050.0, 0.004]]), 0.0)["log10N"][0, fi]
+    shallow = forward(p, one, np.array([[1550.0, 0.0008]]), 0.0)["log10N"][0, fi]
+    first = np.arange(fi.size) % 2 == 0
+    p = replace(p, y=np.where(first, steep, shallow),
+                sigma=np.where(first, p.sigma, 0.6 * p.sigma))
+    # dense grid scan of chi2 over the form's box: the local minima of the surface
+    T = np.linspace(700.0, 1800.0, 111)
+    S = np.linspace(0.0, 0.02, 101)
+    TT, SS = np.meshgrid(T, S, indexing="ij")
+    V = np.stack([TT.ravel(), SS.ravel()], axis=1)
+    chi = evaluate(p, np.ones((V.shape[0], 1)), np.zeros(V.shape[0]), V)[0].reshape(TT.shape)
+    minima = np.argwhere(chi == minimum_filter(chi, size=7, mode="nearest"))
+    assert len(minima) == 2
+    (i1, j1), (i2, j2) = sorted(minima, key=lambda ij: chi[tuple(ij)])
+    low, high = chi[i1, j1], chi[i2, j2]
+    assert abs(T[i1] - T[i2]) >= 200.0 and high > 1.3 * low
+    res = fit_problem(p)
+    # the global basin (within two grid steps), at or below the grid's best value
+    assert abs(res.volatility["T0"] - T[i1]) <= 2 * (T[1] - T[0])
+    assert res.chi2 <= low + 1e-6
+    # the record shows a start that stayed in the other basin
+    final = np.array(res.optimality["final_chi2"])
+    assert np.isclose(final.min(), res.chi2)
+    stuck = final[final > res.chi2 * (1 + 1e-3)]
+    assert stuck.size >= 1 and np.all(np.abs(stuck - high) <= 0.05 * high)
+    assert res.optimality["agreeing"] < res.optimality["starts"]
