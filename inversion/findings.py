@@ -230,9 +230,12 @@ def summary_lines(f: dict[str, Any]) -> list[str]:
         lines.append("warning: " + o["warning"])
     if "late_accretion" in f:
         la = f["late_accretion"]
-        extra = f", {la['mass_kg']:.3g} kg" if "mass_kg" in la else ""
-        lines.append(f"late accretion: {100 * la['fraction_of_mantle']:.3f}% of the mantle "
-                     f"({100 * la['fraction_of_planet']:.3f}% of the planet{extra})")
+        if la["fraction_of_mantle"] <= 1e-9:
+            lines.append("late accretion: none (the fit puts the late component at zero)")
+        else:
+            extra = f", {la['mass_kg']:.3g} kg" if "mass_kg" in la else ""
+            lines.append(f"late accretion: {100 * la['fraction_of_mantle']:.3g}% of the "
+                         f"mantle ({100 * la['fraction_of_planet']:.3g}% of the planet{extra})")
     for o in f.get("off_trend", []):
         lines.append(f"off trend: {o['element']} ({o['geochemical_class']}) {o['direction']} by "
                      f"{o['offset_dex']:+.2f} dex (z = {o['z']:+.1f})")
