@@ -211,18 +211,35 @@ def _fit_report(folder: Path) -> Report:
             rep.diagnostics.append(("infeasible", r, "the hypothesis cannot meet its "
                                     "constraints; this is an answer, not a poor fit"))
     feasible = status not in ("infeasible", "?")
+    opt = d.get("optimality") or {}
+    if opt:
+        rep.diagnostics.append((
+            "optimality", status,
+            f"{opt.get('agreeing')} of {opt.get('starts')} distinct starts reach the best "
+            f"chi2 within {opt.get('agreement_tolerance_relative')} (relative); first-order "
+            f"residual {_fmt(opt.get('kkt_residual'))} (tolerance "
+            f"{opt.get('kkt_tolerance')}); optimal_unverified means the starts disagree "
+            "or the residual is large (docs/solver.md)"))
+    ivals = (d.get("intervals") or {}).get("quantities") or {}
+
+    def _ci(key: str) -> str:
+        q = ivals.get(key)
+        return f"95% [{_fmt(q['p2.5'])}, {_fmt(q['p97.5'])}]" if q else ""
+
     for k, v in ((d.get("weights") or {}) if feasible else {}).items():
         mf = (d.get("mass_fractions") or {}).get(k)
         rep.key_numbers.append((f"weight of {k} ({ref} basis)", _fmt(v),
-                                f"mass fraction {_fmt(mf)}"))
+                                f"mass fraction {_fmt(mf)}; {_ci('weight:' + k)}"))
     vol = dict(d.get("volatility") or {})
     for k, v in vol.items():
         if k != "form" and feasible:
-            rep.key_numbers.append((_vol_label(k, vol.get("form")), _fmt(v), ""))
+            rep.key_numbers.append((_vol_label(k, vol.get("form")), _fmt(v),
+                                    _ci("volatility:" + k)))
     if feasible:
         rep.key_numbers.append(("late accretion, fraction of mantle",
                                 _fmt(d.get("late_accretion_fraction")),
-                                f"component {d.get('late_accretion_component')}"))
+                                f"component {d.get('late_accretion_component')}; "
+                                f"{_ci('late_accretion_fraction')}"))
     la = (d.get("findings") or {}).get("late_accretion") or {}
     if la.get("fraction_of_planet") is not None:
         rep.key_numbers.append(("late accretion, fraction of planet",
@@ -230,7 +247,12 @@ def _fit_report(folder: Path) -> Report:
                                 f"{_fmt(la.get('mass_kg'))} kg"))
     if feasible:
         rep.key_numbers.append(("core mass fraction", _fmt(d.get("core_mass_fraction")),
-                                ""))
+                                _ci("core_mass_fraction")))
+    if ivals:
+        iv = d["intervals"]
+        rep.notes.append("Intervals of the convex fit: " + str(iv.get("method", "")) + (
+            "; active constraints: " + ", ".join(iv["active_constraints"])
+            if iv.get("active_constraints") else ""))
     else:
         rep.key_numbers.append(("estimates", "none", "an infeasible hypothesis has no "
                                 "estimates; see the diagnostics for the binding constraints"))
@@ -251,7 +273,7 @@ def _fit_report(folder: Path) -> Report:
                                 "above 1: scatter beyond the stated uncertainties "
                                 "(the idealised model is not exact)"))
     rep.findings = _findings_lines(d.get("findings") or {})
-    rep.notes = list(d.get("notes") or [])
+    rep.notes = list(d.get("notes") or []) + rep.notes
     title = rep.title
     if len(resid):
         ctab = prov.get("condensation_table", "lodders2003")
