@@ -627,6 +627,66 @@ def _residual_table(p: Problem, fwd: dict[str, np.ndarray], row: int = 0) -> pd.
     return df
 
 
+def _isotope_reasons_at_weights(p: Problem) -> list[str]:
+    """Isotope systems whose window, widened by the end-members' uncertainties at the
+    weights themselves, no mixture of the hypothesis meets, alone or together.
+
+    The margin ``g_j(u) = n sigma_eff,j(u) - |eps_j(u) - eps_obs,j|`` is maximised over
+    the mixtures (SLSQP from every vertex and the centre; the late component within its
+    cap): a system whose best margin is negative fails alone; when each holds alone, the
+    best of ``min_j g_j`` says whether they fail together.
+    """
+    from scipy.optimize import minimize
+
+    from .isotopes import late_weight_bound, reachable_intervals
+    from .solver import isotope_prediction
+
+    K = len(p.components)
+    late = p.late_name is not None
+    m = K + late
+    v_max = late_weight_bound(p) if late else 0.0
+    bounds = [(0.0, 1.0)] * K + ([(0.0, v_max)] if late else [])
+    starts = [np.eye(m)[k] for k in range(K)] + [np.full(m, 1.0 / m)]
+    if late:
+        starts = [np.clip(s_, 0, None) for s_ in starts]
+        for st in starts:
+            st[K] = min(st[K], v_max)
+            st[:K] *= (1 - st[K]) / max(st[:K].sum(), 1e-12)
+
+    def margin(u: np.ndarray, iso: dict) -> float:
+        U = np.clip(u, 0.0, None)[None]
+        eps = isotope_prediction(p, iso, U)[0]
+        win = p.isotope_window_sigma * isotope_sigma(p, iso, U)[0]
+        return float(win - abs(eps - iso["value"]))
+
+    def best(fun) -> float:
+        out = -np.inf
+        for st in starts:
+            r = minimize(lambda u: -fun(u), st, method="SLSQP", bounds=bounds,
+                         constraints=[{"type": "eq", "fun": lambda u: u.sum() - 1.0}])
+            u = np.clip(r.x, 0.0, None)
+            u = u / u.sum()
+            out = max(out, fun(u), fun(st))
+        return out
+
+    ranges = reachable_intervals(p)
+    blocks = "+".join(p.components)
+    reasons = []
+    for iso in p.isotopes:
+        if best(lambda u, iso=iso: margin(u, iso)) < 0:
+            lo, hi = ranges[iso["name"]]
+            reasons.append(f"{iso['name']}: observed {iso['value']:.3g} +- "
+                           f"{p.isotope_window_sigma:g} sigma_eff; no mixture of {blocks} "
+                           f"meets its window widened at its own weights (reachable "
+                           f"[{lo:.2f}, {hi:.2f}])")
+    if not reasons and len(p.isotopes) > 1:
+        if best(lambda u: min(margin(u, iso) for iso in p.isotopes)) < 0:
+            names = " and ".join(d["name"] for d in p.isotopes)
+            reasons.append(f"{names}: each can be met alone, not together, by a mixture of "
+                           f"{blocks} (windows widened at the weights)")
+    return reasons
+
+
 def _infeasible(p: Problem, n_params: int, settings: FitSettings) -> FitResult:
     """The infeasible answer with its reasons: each isotope system that no mixture of the
     hypothesis reaches on its own, the combinations that fail only together
@@ -651,6 +711,8 @@ def _infeasible(p: Problem, n_params: int, settings: FitSettings) -> FitResult:
             if iron:
                 rep2 = feasibility_report(p, extra=(G[0, iron], h[0, iron]))
                 reasons.extend(rep2.messages)
+        if p.isotopes and not reasons:
+            reasons.extend(_isotope_reasons_at_weights(p))
         if settings.cmf_range is not None and not reasons:
             reasons.append(f"core mass fraction range {list(settings.cmf_range)}: no start "
                            "of the solver met it together with the other constraints")

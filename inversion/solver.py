@@ -121,7 +121,8 @@ def _model_sigma(p: Problem, U: np.ndarray, ratio: np.ndarray, fi: np.ndarray
 
 
 def evaluate(p: Problem, U: np.ndarray, TH: np.ndarray, *,
-             cmf_range: tuple[float, float] | None = None) -> dict[str, np.ndarray]:
+             cmf_range: tuple[float, float] | None = None,
+             restore: bool = False) -> dict[str, np.ndarray]:
     """Residuals, chi2 and nonlinear constraint values for a batch of parameter sets.
 
     Parameters
@@ -135,6 +136,10 @@ def evaluate(p: Problem, U: np.ndarray, TH: np.ndarray, *,
         Volatility parameters.
     cmf_range : (low, high), optional
         Core-mass-fraction range imposed as a constraint.
+    restore : bool
+        Restoration mode: the residuals become the constraint violations (weighted
+        1e3) with the misfit as a faint tie-breaker (1e-4), and no constraints; the
+        polish then moves an infeasible start to the feasible set.
 
     Returns
     -------
@@ -178,6 +183,11 @@ def evaluate(p: Problem, U: np.ndarray, TH: np.ndarray, *,
         cons.append((win - (eps_pl - iso["value"])) / iso["sigma"])
         cons.append((eps_pl - iso["value"] + win) / iso["sigma"])
     C = np.stack(cons, axis=1) if cons else np.zeros((U.shape[0], 0))
+    if restore:
+        r = np.concatenate([1e-4 * np.nan_to_num(r, nan=1e6, posinf=1e6, neginf=-1e6),
+                            1e3 * np.minimum(C, 0.0)], axis=1)
+        chi2 = (r ** 2).sum(axis=1)
+        C = np.zeros((U.shape[0], 0))
     return {"r": r, "chi2": chi2, "cons": C, "cmf": fwd["cmf"], "M_s": fwd["M_s"],
             "k": fwd["k"]}
 
@@ -249,8 +259,8 @@ def _isotope_rows(p: Problem, B: int, U: np.ndarray | None = None
 
 
 def _jacobian(p: Problem, U: np.ndarray, TH: np.ndarray, base: dict[str, np.ndarray],
-              settings: JointSettings, cmf_range, upper: np.ndarray | None = None
-              ) -> tuple[np.ndarray, np.ndarray]:
+              settings: JointSettings, cmf_range, upper: np.ndarray | None = None,
+              restore: bool = False) -> tuple[np.ndarray, np.ndarray]:
     """Forward-difference Jacobians of residuals and constraints in (u, theta); the
     volatility steps go backwards where a forward step would pass ``upper``."""
     B, m = U.shape
@@ -271,7 +281,7 @@ def _jacobian(p: Problem, U: np.ndarray, TH: np.ndarray, base: dict[str, np.ndar
     Zp = Zp.reshape(B * n, n)
     rows = np.repeat(np.arange(B), n)
     pr = row_problem(p, rows)
-    ev = evaluate(pr, Zp[:, :m], Zp[:, m:], cmf_range=cmf_range)
+    ev = evaluate(pr, Zp[:, :m], Zp[:, m:], cmf_range=cmf_range, restore=restore)
     denom = (sign * steps)[:, :, None]
     Jr = (ev["r"].reshape(B, n, -1) - base["r"][:, None, :]) / denom
     Jc = (ev["cons"].reshape(B, n, -1) - base["cons"][:, None, :]) / denom
@@ -389,7 +399,8 @@ def kink_boxes(p: Problem, th: np.ndarray, reach: int = 1
 def polish(p: Problem, U0: np.ndarray, TH0: np.ndarray, *,
            settings: JointSettings | None = None,
            cmf_range: tuple[float, float] | None = None,
-           bounds: tuple[np.ndarray, np.ndarray] | None = None) -> dict[str, np.ndarray]:
+           bounds: tuple[np.ndarray, np.ndarray] | None = None,
+           restore: bool = False) -> dict[str, np.ndarray]:
     """Levenberg-Marquardt on all parameters from a batch of starts.
 
     Parameters
@@ -416,8 +427,18 @@ def polish(p: Problem, U0: np.ndarray, TH0: np.ndarray, *,
     bounds = _bounds(p, B, bounds)
     U = np.array(U0, float)
     TH = np.clip(np.array(TH0, float), *bounds)
-    base = evaluate(row_problem(p, np.arange(B)), U, TH, cmf_range=cmf_range)
     tol_c = settings.constraint_tolerance
+    base = evaluate(row_problem(p, np.arange(B)), U, TH, cmf_range=cmf_range,
+                    restore=restore)
+    bad = ~np.all(base["cons"] >= -tol_c, axis=1)
+    if bad.any() and not restore:
+        # restoration: move infeasible starts onto the feasible set first
+        idx0 = np.flatnonzero(bad)
+        rest = polish(row_problem(p, idx0), U[idx0], TH[idx0], settings=settings,
+                      cmf_range=cmf_range, bounds=(bounds[0][idx0], bounds[1][idx0]),
+                      restore=True)
+        U[idx0], TH[idx0] = rest["U"], rest["TH"]
+        base = evaluate(row_problem(p, np.arange(B)), U, TH, cmf_range=cmf_range)
     feasible = np.all(base["cons"] >= -tol_c, axis=1) & np.isfinite(base["chi2"])
     start_chi2 = np.where(feasible, base["chi2"], np.inf)
     chi2 = start_chi2.copy()
@@ -435,7 +456,8 @@ def polish(p: Problem, U0: np.ndarray, TH0: np.ndarray, *,
         pr = row_problem(p, idx)
         bsub = {"r": r[idx], "cons": cons[idx]}
         bnd = (bounds[0][idx], bounds[1][idx])
-        Jr, Jc = _jacobian(pr, U[idx], TH[idx], bsub, settings, cmf_range, bnd[1])
+        Jr, Jc = _jacobian(pr, U[idx], TH[idx], bsub, settings, cmf_range, bnd[1],
+                           restore)
         Giso = np.zeros((idx.size, 0, m))
         g_act = None if act_sets is None else act_sets[idx]
         Un, Tn, _pred, ok, act = _linearised_step(pr, U[idx], TH[idx], bsub, Jr, Jc, Giso,
@@ -443,7 +465,7 @@ def polish(p: Problem, U0: np.ndarray, TH0: np.ndarray, *,
         if act_sets is None:
             act_sets = np.zeros((B, act.shape[1]), dtype=bool)
         act_sets[idx] = act
-        trial = evaluate(pr, Un, Tn, cmf_range=cmf_range)
+        trial = evaluate(pr, Un, Tn, cmf_range=cmf_range, restore=restore)
         good = (ok & np.isfinite(trial["chi2"]) & (trial["chi2"] <= chi2[idx])
                 & np.all(trial["cons"] >= -tol_c, axis=1))
         gain = np.where(good, chi2[idx] - trial["chi2"], 0.0)
