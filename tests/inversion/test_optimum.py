@@ -163,9 +163,6 @@ def test_cmf_range_is_imposed(mars_bounded) -> None:
     assert CMF_RANGE[0] - 1e-6 <= bound.core_mass_fraction <= CMF_RANGE[1] + 1e-6
 
 
-@pytest.mark.xfail(strict=True, reason="issue 10: under cmf_range (0.26, 0.28) the engine "
-                   "stops at chi2 155.32 (CMF 0.269) while the reference reaches 141.80 "
-                   "(CMF 0.260); reported to the solver's owner")
 def test_cmf_range_fit_matches_global_search(mars_bounded) -> None:
     case, bound = mars_bounded
     ref = reference_fit(compile_problem(case), cmf_range=case.cmf_range, maxiter=100,
