@@ -450,9 +450,10 @@ def _check_tc_complete(comp: pd.Series, table: str, exclude: list, file: str) ->
                    float(props.loc[e, col])))]
     if lacking:
         held = int(props[col].notna().sum())
+        fix = ("use lodders2003 or add them to [elements] exclude" if table != "lodders2003"
+               else "no table offered has one: add them to [elements] exclude")
         raise InputError(f"the condensation table {table} ({held} elements) has no 50% "
-                         f"condensation temperature for {lacking}; use lodders2003 or add "
-                         "them to [elements] exclude", file=file,
+                         f"condensation temperature for {lacking}; {fix}", file=file,
                          field="volatility.condensation_table", value=table)
 
 
