@@ -352,9 +352,25 @@ def _solve_group(p: Problem, subsets: list[tuple[str, ...]], settings: FitSettin
     informative = (logr.max(axis=1) - logr.min(axis=1)) > 1e-3
     starts: list[list[_Start]] = []
     for h in range(len(subsets)):
+        picks = _distinct_starts(grid, chi[h], settings.starts, p.volatility_form,
+                                 informative)
         mine = [_Start(us[h, j], grid[j], f"profile grid point {grid[j].round(6).tolist()}")
-                for j in _distinct_starts(grid, chi[h], settings.starts, p.volatility_form,
-                                          informative)]
+                for j in picks]
+        # weight-space starts: each block dominant, and the centre, at the best profile
+        # point (the profile's frozen core can hide a basin in which another block
+        # dominates; restoration moves an infeasible one onto the constraints)
+        K = len(subsets[h])
+        if K > 1 and picks:
+            m = us.shape[2]
+            th = grid[picks[0]]
+            for k in range(K):
+                u = np.zeros(m)
+                u[:K] = 0.2 / K
+                u[k] += 0.8
+                mine.append(_Start(u, th, f"{subsets[h][k]} dominant"))
+            u = np.zeros(m)
+            u[:K] = 1.0 / K
+            mine.append(_Start(u, th, "equal weights"))
         if extra is not None:
             mine += extra[h]
         starts.append(mine)
