@@ -159,7 +159,10 @@ def reference_fit(p: Problem, *, cmf_range: tuple[float, float] | None = None,
         constraints = [{"type": "eq", "fun": lambda y: np.sum(y[:K]) - 1.0}]
         if cons(y0).size:
             constraints.append({"type": "ineq", "fun": cons})
-        res = minimize(fun, y0, method="SLSQP", bounds=[(0.0, 1.0)] * len(y0),
+        # a parameter whose box is a point (no late component) stays fixed
+        ybounds = [(0.0, 1.0)] * K + [(0.0, 1.0 if h > lo_ else 0.0)
+                                      for lo_, h in zip(lo, hi, strict=True)]
+        res = minimize(fun, y0, method="SLSQP", bounds=ybounds,
                        constraints=constraints, options={"maxiter": 500, "ftol": 1e-12})
         for y in (res.x, y0):
             w, lam, vol = split(y)
