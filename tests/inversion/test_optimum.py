@@ -102,13 +102,7 @@ def test_engine_matches_global_search_30(earth: Problem) -> None:
 
 
 @pytest.mark.slow
-@pytest.mark.parametrize("path", [
-    EARTH,
-    pytest.param(MARS, marks=pytest.mark.xfail(
-        strict=True, reason="issue 10: Mars, all five candidates: engine chi2 130.990 "
-        "(L+CI, CMF 0.13, marked optimal) vs reference 130.771 (L 0.39 + EH 0.61, CMF "
-        "0.23); reported to the solver's owner")),
-    DEMO], ids=["earth", "mars", "demo"])
+@pytest.mark.parametrize("path", [EARTH, MARS, DEMO], ids=["earth", "mars", "demo"])
 def test_case_studies_match_global_search(path: Path) -> None:
     p = compile_problem(load_case(path))
     ours, ref = _check(p, maxiter=400, popsize=40)
