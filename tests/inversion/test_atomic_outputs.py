@@ -276,3 +276,40 @@ def test_kill_9_during_fit_and_report_leaves_whole_results(tmp_path: Path) -> No
 def test_kill_9_many_moments(tmp_path: Path) -> None:
     res = _kill_trials(tmp_path, n_fit=20, n_report=8, seed=11)
     assert res["killed"] >= 10
+
+
+def _rank_folder_state(out: Path) -> str | None:
+    """None when ``out`` is absent; else the run title, after checking the folder holds
+    exactly one complete ranking."""
+    if not out.exists():
+        return None
+    names = {p.name for p in out.iterdir()}
+    assert names == {"ranking.csv", "ranking.json", ".planetmix-result"}, names
+    data = json.loads((out / "ranking.json").read_text())
+    rows = (out / "ranking.csv").read_text(encoding="utf-8").strip().splitlines()
+    assert len(rows) == data["n_hypotheses"] + 1  # header + one row per hypothesis
+    return data["title"]
+
+
+@pytest.mark.slow
+def test_kill_9_during_rank_leaves_whole_results(tmp_path: Path) -> None:
+    rng = random.Random(3)
+    cases = {t: _case(tmp_path, t) for t in ("A", "B")}
+    out = tmp_path / "r"
+    t0 = time.perf_counter()
+    done = _run(["rank", str(cases["A"]), "--out", "r", "--workers", "1"], tmp_path)
+    duration = time.perf_counter() - t0
+    assert done.returncode == 0, done.stderr
+    killed = 0
+    for i in range(8):
+        title = "B" if i % 2 == 0 else "A"
+        before = _rank_folder_state(out)
+        rc = _kill_at(["rank", str(cases[title]), "--out", "r", "--workers", "1"], tmp_path,
+                      rng.uniform(0.3, 1.0) * duration)
+        killed += rc == -signal.SIGKILL
+        assert _rank_folder_state(out) in (before, f"run {title}")
+    done = _run(["rank", str(cases["B"]), "--out", "r", "--workers", "1"], tmp_path)
+    assert done.returncode == 0, done.stderr
+    assert _rank_folder_state(out) == "run B"
+    assert sorted(p.name for p in tmp_path.glob(".r.*")) == []
+    assert killed >= 3
