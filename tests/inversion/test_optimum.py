@@ -23,7 +23,7 @@ from scipy.ndimage import minimum_filter
 
 from components.exceptions import InputError
 from inversion.case import load_case
-from inversion.fit import fit, fit_problem, screen
+from inversion.fit import FitSettings, fit_problem, screen
 from inversion.model import Problem, compile_problem, forward
 from tests.inversion.reference_search import evaluate, reference_fit
 
@@ -147,7 +147,8 @@ CMF_RANGE = (0.26, 0.28)
 def mars_bounded(tmp_path_factory: pytest.TempPathFactory):
     folder = tmp_path_factory.mktemp("mars_cmf")
     case = load_case(_copy_case(folder, MARS, f"[fit]\ncmf_range = {list(CMF_RANGE)}"))
-    return case, fit(case)  # the case's range is imposed by default
+    settings = FitSettings(cmf_range=case.cmf_range, intervals=False)
+    return case, fit_problem(compile_problem(case), settings)
 
 
 def test_cmf_range_is_imposed(mars_bounded) -> None:
