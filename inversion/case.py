@@ -117,7 +117,7 @@ def _check_keys(section: str, table: dict, file: str) -> None:
         if key not in allowed:
             where = f"[{section}] " if section else ""
             raise InputError(f"unknown key {where}'{key}'; allowed keys: {sorted(allowed)}",
-                             file=file, field=key)
+                             file=file, field=f"{section}.{key}" if section else key)
 
 
 def _num(value: Any, *, file: str, field: str, positive: bool = False,

@@ -390,8 +390,13 @@ def _solve_group(p: Problem, subsets: list[tuple[str, ...]], settings: FitSettin
         # form; polish every answer again on the smooth pieces around it, so that a
         # corner optimum is reached exactly (as a bound of a smooth piece)
         src, lo2, hi2 = [], [], []
+        # only answers near their hypothesis' best (within 1%) can decide its optimum or
+        # its agreement count; the others are left as the first stage found them
+        hyp_best = np.full(len(subsets), np.inf)
+        np.minimum.at(hyp_best, rows, pol["chi2"])
+        near = pol["chi2"] <= hyp_best[rows] * (1.0 + 1e-2) + 1e-6
         for i in range(B):
-            if not np.isfinite(pol["chi2"][i]):
+            if not (np.isfinite(pol["chi2"][i]) and near[i]):
                 continue
             for lo, hi in kink_boxes(ps, pol["TH"][i]):
                 src.append(i)

@@ -171,7 +171,9 @@ def evaluate(p: Problem, U: np.ndarray, TH: np.ndarray, *,
         a_fe = np.maximum(fwd["bulk"][:, p.fe_index], 1e-300)
         cons.append(fwd["core"][:, p.fe_index] / a_fe)
     if has_late:
-        cons.append((_v_max(p, fwd["M_s"]) - U[:, K]) / max(p.late_max_fraction, 1e-12))
+        # scaled by the bound, but not below 1e-3: a tiny bound must not turn rounding
+        # in the weights into a violation
+        cons.append((_v_max(p, fwd["M_s"]) - U[:, K]) / max(p.late_max_fraction, 1e-3))
     if cmf_range is not None:
         cons.append(fwd["cmf"] - cmf_range[0])
         cons.append(cmf_range[1] - fwd["cmf"])

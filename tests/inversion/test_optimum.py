@@ -200,9 +200,6 @@ def test_two_basins_solved_to_the_global_one(earth: Problem) -> None:
     assert res.optimality["agreeing"] < res.optimality["starts"]
 
 
-@pytest.mark.xfail(strict=True, reason="issue 10: CI alone with a late bound of 1e-9 stops at "
-                   "chi2 1762.92 (optimal_unverified) while the same problem without a "
-                   "late component reaches 1675.54; reported to the solver's owner")
 def test_tiny_late_bound_is_no_worse_than_no_late(earth: Problem) -> None:
     """A late component bounded by 1e-9 adds a (nearly) free parameter: never worse."""
     p = replace(earth.subset(["CI"]), isotopes=())
