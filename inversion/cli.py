@@ -295,7 +295,7 @@ def _rank(parser: argparse.ArgumentParser):
         import os
 
         from .case import load_case
-        from .fit import screen
+        from .fit import SCREEN_SETTINGS, screen
         from .output import atomic_folder, provenance, write_json
 
         case = load_case(args.case)
@@ -311,7 +311,9 @@ def _rank(parser: argparse.ArgumentParser):
                 "best": table.iloc[0]["components"],
                 "provenance": provenance(tables=[case.condensation_table],
                                          component_names=case.candidate_names + ["CI"],
-                                         extra={"case_file": case.path})})
+                                         extra={"case_file": case.path,
+                                                "solver": {**SCREEN_SETTINGS.record,
+                                                           "cmf_range": case.cmf_range}})})
         cols = ["rank", "components", "status", "chi2", "aic", "bic",
                 "late_accretion_fraction", "core_mass_fraction"]
         show = table[cols].head(args.top).copy()

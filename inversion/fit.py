@@ -66,10 +66,12 @@ class FitSettings:
     cmf_range: tuple[float, float] | None = None
     intervals: bool = True
     joint: JointSettings = field(default_factory=JointSettings)
-    solver: str = ("profile: k-frozen Gauss-Newton with the exact simplex QP (active-set "
-                   "enumeration; cvxpy/CLARABEL above 7 variables) on the volatility grid; "
-                   "polish: Levenberg-Marquardt on all parameters (finite-difference "
-                   "Jacobian through the core fixed point, exact QP steps)")
+    solver: str = ("profile: k-frozen Gauss-Newton with the exact simplex QP (verified "
+                   "primal-dual active-set iterations, enumeration fallback; cvxpy/CLARABEL "
+                   "above 7 variables) on the volatility grid; polish: Levenberg-Marquardt "
+                   "on all parameters (finite-difference Jacobian through the core fixed "
+                   "point, exact QP steps, restoration of infeasible starts, T0 boxed to "
+                   "the smooth pieces of the kinked forms)")
 
     @property
     def record(self) -> dict[str, Any]:
