@@ -32,6 +32,7 @@ from .solver import (
     JointSettings,
     curvature,
     first_order_residual,
+    isotope_prediction,
     isotope_sigma,
     kink_boxes,
     polish,
@@ -622,13 +623,9 @@ def _fit_group(args: tuple[Problem, list[tuple[str, ...]], FitSettings,
 
 
 def _isotope_prediction(p: Problem, w: np.ndarray, v: float) -> dict[str, float]:
-    out = {}
-    for iso in p.isotopes:
-        num = (1 - v) * (w * iso["q_carrier"] * iso["eps"]).sum() + v * iso["q_late"] * iso[
-            "eps_late"]
-        den = (1 - v) * (w * iso["q_carrier"]).sum() + v * iso["q_late"]
-        out[iso["name"]] = float(num / den)
-    return out
+    """Isotope anomalies of the answer (:func:`inversion.solver.isotope_prediction`)."""
+    U = np.concatenate([(1.0 - v) * w, [v]] if p.late_name is not None else [w])[None]
+    return {iso["name"]: float(isotope_prediction(p, iso, U)[0]) for iso in p.isotopes}
 
 
 def _residual_table(p: Problem, fwd: dict[str, np.ndarray], row: int = 0) -> pd.DataFrame:
@@ -662,7 +659,6 @@ def _isotope_reasons_at_weights(p: Problem) -> list[str]:
     from scipy.optimize import minimize
 
     from .isotopes import late_weight_bound, reachable_intervals
-    from .solver import isotope_prediction
 
     K = len(p.components)
     late = p.late_name is not None

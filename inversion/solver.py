@@ -96,8 +96,7 @@ def _v_max(p: Problem, M_s: np.ndarray) -> np.ndarray:
     return lam_max * p.c_late_R / ((1.0 - lam_max) * c_R + lam_max * p.c_late_R)
 
 
-def _model_sigma(p: Problem, U: np.ndarray, ratio: np.ndarray, fi: np.ndarray
-                 ) -> np.ndarray | None:
+def _model_sigma(p: Problem, U: np.ndarray, fi: np.ndarray) -> np.ndarray | None:
     """Model variance [dex^2] of the fitted elements from uncertain end-members, or None.
 
     With each block's ratio uncertain by ``Q_sigma_dex`` (log10, independent), the
@@ -116,7 +115,6 @@ def _model_sigma(p: Problem, U: np.ndarray, ratio: np.ndarray, fi: np.ndarray
     mix = np.einsum("bk,bkn->bn", U[:, :K], Q[..., fi])
     with np.errstate(divide="ignore", invalid="ignore"):
         rel = np.sqrt((terms ** 2).sum(axis=1)) / mix
-    del ratio
     return np.nan_to_num(rel) ** 2
 
 
@@ -161,7 +159,7 @@ def evaluate(p: Problem, U: np.ndarray, TH: np.ndarray, *,
     with np.errstate(divide="ignore", invalid="ignore"):
         model = np.log10(ratio / p.q_ci[None, fi])
     var = np.broadcast_to(p.sigma[None, :] ** 2, model.shape)
-    extra = _model_sigma(p, U, ratio, fi)
+    extra = _model_sigma(p, U, fi)
     if extra is not None:
         var = var + extra
     r = (model - p.y[None, :]) / np.sqrt(var)
@@ -237,29 +235,6 @@ def isotope_prediction(p: Problem, iso: dict, U: np.ndarray) -> np.ndarray:
     return num / np.where(den > 0, den, 1e-300)
 
 
-def _isotope_rows(p: Problem, B: int, U: np.ndarray | None = None
-                  ) -> tuple[np.ndarray, np.ndarray]:
-    """Isotope windows as rows G u <= 0 (B, 2 g, m), the windows widened by the
-    end-members' uncertainties at the weights ``U`` (the current point of the polish;
-    at the answer each window is the one of its own weights)."""
-    K = p.Q.shape[-2]
-    has_late = p.late_name is not None
-    rows = []
-    for iso in p.isotopes:
-        qc = np.broadcast_to(iso["q_carrier"], (B, K))
-        eps = np.broadcast_to(iso["eps"], (B, K))
-        if has_late:
-            qc = np.concatenate([qc, np.full((B, 1), iso["q_late"])], axis=1)
-            eps = np.concatenate([eps, np.full((B, 1), iso["eps_late"])], axis=1)
-        sig = np.full(B, float(iso["sigma"])) if U is None else isotope_sigma(p, iso, U)
-        win = (p.isotope_window_sigma * sig)[:, None]
-        rows.append(qc * (eps - iso["value"] - win))
-        rows.append(-qc * (eps - iso["value"] + win))
-    m = K + has_late
-    G = np.stack(rows, axis=1) if rows else np.zeros((B, 0, m))
-    return G, np.zeros((B, G.shape[1]))
-
-
 def _jacobian(p: Problem, U: np.ndarray, TH: np.ndarray, base: dict[str, np.ndarray],
               settings: JointSettings, cmf_range, upper: np.ndarray | None = None,
               restore: bool = False) -> tuple[np.ndarray, np.ndarray]:
@@ -290,7 +265,7 @@ def _jacobian(p: Problem, U: np.ndarray, TH: np.ndarray, base: dict[str, np.ndar
     return np.swapaxes(Jr, 1, 2), np.swapaxes(Jc, 1, 2)  # (B, nf, n), (B, c, n)
 
 
-def _step(U, TH, r0, Jr, c0, Jc, Giso, lam, free, fix, m, guess=None):
+def _step(U, TH, r0, Jr, c0, Jc, lam, free, fix, m, guess=None):
     """One damped linearised step for every row; returns (U_new, TH_new, predicted)."""
     Ju = Jr[:, :, :m]
     Jt = Jr[:, :, m:] * free[:, None, :]
@@ -318,9 +293,8 @@ def _step(U, TH, r0, Jr, c0, Jc, Giso, lam, free, fix, m, guess=None):
     # c0 + Jc_u du + Jc_t (a0 + A1 du + fix) >= 0
     Jcu = Jc[:, :, :m] + np.einsum("bcj,bjk->bck", Jc[:, :, m:] * free[:, None, :], A1)
     c_off = c0 + np.einsum("bcj,bj->bc", Jc[:, :, m:], a0 * free + fix)
-    G = np.concatenate([Giso, -Jcu], axis=1)
-    h = np.concatenate([np.zeros(Giso.shape[:2]),
-                        c_off - np.einsum("bck,bk->bc", Jcu, U)], axis=1)
+    G = -Jcu
+    h = c_off - np.einsum("bck,bk->bc", Jcu, U)
     if guess is None:
         guess = np.zeros((U.shape[0], m + G.shape[1]), dtype=bool)
     sol = solve_quadratic_batch(H, c, const, G, h, guess=guess)
@@ -331,15 +305,15 @@ def _step(U, TH, r0, Jr, c0, Jc, Giso, lam, free, fix, m, guess=None):
     return U + du, TH + dt, quad, sol.feasible, sol.active
 
 
-def _linearised_step(p, U, TH, base, Jr, Jc, Giso, lam, bounds, m, guess=None):
+def _linearised_step(U, TH, base, Jr, Jc, lam, bounds, m, guess=None):
     """A step with the volatility box handled by holding violators at their bound."""
     lo, hi = bounds
     B, pp = TH.shape
     free = np.ones((B, pp), dtype=bool)
     fix = np.zeros((B, pp))
     for _ in range(pp + 1):
-        Un, Tn, pred, ok, act = _step(U, TH, base["r"], Jr, base["cons"], Jc, Giso, lam,
-                                      free, fix, m, guess)
+        Un, Tn, pred, ok, act = _step(U, TH, base["r"], Jr, base["cons"], Jc, lam, free,
+                                      fix, m, guess)
         out = free & ((Tn < lo) | (Tn > hi))
         if not out.any():
             break
@@ -460,10 +434,9 @@ def polish(p: Problem, U0: np.ndarray, TH0: np.ndarray, *,
         bnd = (bounds[0][idx], bounds[1][idx])
         Jr, Jc = _jacobian(pr, U[idx], TH[idx], bsub, settings, cmf_range, bnd[1],
                            restore)
-        Giso = np.zeros((idx.size, 0, m))
         g_act = None if act_sets is None else act_sets[idx]
-        Un, Tn, _pred, ok, act = _linearised_step(pr, U[idx], TH[idx], bsub, Jr, Jc, Giso,
-                                                  lam[idx], bnd, m, g_act)
+        Un, Tn, _pred, ok, act = _linearised_step(U[idx], TH[idx], bsub, Jr, Jc, lam[idx],
+                                                  bnd, m, g_act)
         if act_sets is None:
             act_sets = np.zeros((B, act.shape[1]), dtype=bool)
         act_sets[idx] = act
@@ -500,9 +473,7 @@ def first_order_residual(p: Problem, U: np.ndarray, TH: np.ndarray, *,
     pr = row_problem(p, np.arange(B))
     base = evaluate(pr, U, TH, cmf_range=cmf_range)
     Jr, Jc = _jacobian(pr, U, TH, base, settings, cmf_range, bounds[1])
-    Giso = np.zeros((B, 0, m))
-    _, _, pred, ok, _ = _linearised_step(pr, U, TH, base, Jr, Jc, Giso, np.full(B, 1e-12),
-                                         bounds, m)
+    _, _, pred, ok, _ = _linearised_step(U, TH, base, Jr, Jc, np.full(B, 1e-12), bounds, m)
     return np.where(ok, np.maximum(base["chi2"] - pred, 0.0), np.nan)
 
 
