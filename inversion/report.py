@@ -43,6 +43,7 @@ REPORT_KINDS: dict[str, tuple[str, ...]] = {
     "compare": ("comparison.csv",),
     "batch": ("summary.json", "run.json"),
     "star": ("planet.json",),
+    "sensitivity": ("sensitivity.csv", "spread.csv"),
 }
 
 #: What the model leaves out; printed in every report.
@@ -293,6 +294,7 @@ def _fit_report(folder: Path) -> Report:
                             lambda: plots.weights_plot(d["weights"],
                                                        mass_fractions=d.get("mass_fractions"),
                                                        basis=ref)))
+    _isotope_figure(rep, d.get("isotope_figure"), staged=d.get("staged_accretion"))
     if (folder / "planet.csv").exists():
         planet = _read_csv(folder / "planet.csv")
         rep.figures.append(("Whole planet", "Mantle oxides, core composition, molar ratios "
@@ -327,6 +329,55 @@ def _fit_report(folder: Path) -> Report:
                 flagged[["element", "tc50", "observed", "model", "sigma", "z", "fitted",
                          "flag"]])))
     return rep
+
+
+def _isotope_figure(rep: Report, data: dict[str, Any] | None, *,
+                    staged: dict[str, Any] | None = None,
+                    posterior: dict[str, dict[str, float]] | None = None) -> None:
+    """Add the isotope figure: each system's observed window and the intervals the
+    hypothesis and its blocks reach (``isotope_figure`` of fit.json,
+    :func:`inversion.isotopes.figure_data`); the early, late, two-stage and one-mixture
+    anomalies of a staged fit; a posterior's 90% interval and median."""
+    from . import plots
+
+    if not (data and data.get("systems")) and not (staged and staged.get("early")):
+        return
+    data = data or {}
+    systems = data.get("systems") or {}
+    observed = {k: (float(v["value"]), float(v["half_width"])) for k, v in systems.items()}
+    ranges = {lab: {k: (float(a), float(b)) for k, (a, b) in row.items()}
+              for lab, row in (data.get("reachable") or {}).items()}
+    predicted = {lab: dict(row) for lab, row in (data.get("predicted") or {}).items()}
+    if posterior:
+        lab = "posterior 90%"
+        ranges[lab] = {k: (v["p5"], v["p95"]) for k, v in posterior.items()}
+        predicted[lab] = {k: v["median"] for k, v in posterior.items()}
+    if staged and staged.get("early"):
+        for key, lab in (("early_alone", "early mixture alone"),
+                         ("late_alone", "late mixture alone"),
+                         ("predicted_staged", "two stages"),
+                         ("predicted_single", "one mixture throughout")):
+            row = {k: float(v) for k, v in (staged.get(key) or {}).items()
+                   if k in observed}
+            if row:
+                ranges[lab] = {k: (v, v) for k, v in row.items()}
+                predicted[lab] = row
+        observed.update({k: (float(v["value"]), 2.0 * float(v["sigma"]))
+                         for k, v in (staged.get("observed") or {}).items()
+                         if k not in observed})
+    windows = "; ".join(f"{k} {v['window']}" for k, v in systems.items())
+    caption = ("Isotope anomalies: the observed value (blue line) and its window (shaded; "
+               f"{windows}), and the interval each hypothesis reaches over all its "
+               "mixtures (green where it meets the window, vermillion where it misses), "
+               "with the late component up to its cap; dots are fitted values.")
+    if staged and staged.get("early"):
+        caption += (" Staged accretion: the anomaly of the early and of the late mixture "
+                    "alone, of the two stages together and of the best single mixture "
+                    "(siderophile systems shaded at +-2 sigma_obs).")
+    title = rep.title
+    rep.figures.append(("Isotope constraints", caption,
+                        lambda: plots.isotope_plot(observed, ranges, predicted=predicted,
+                                                   title=title)))
 
 
 def _truth_of(prov: dict[str, Any]) -> dict[str, Any] | None:
@@ -653,6 +704,7 @@ def _sample_report(folder: Path) -> Report:
                                 "prior densities of the case (a posterior that repeats its "
                                 "prior means the data say little about that parameter).",
                                 lambda: plots.prior_posterior_plot(shown, priors)))
+    _sample_isotope_figure(rep, idata, prov, comps)
     pdraws = _planet_draws(folder)
     if pdraws is not None:
         # the same 90% intervals as the posterior summary
@@ -669,6 +721,48 @@ def _sample_report(folder: Path) -> Report:
                       "explain, and a Student-t likelihood keeps single anomalous elements "
                       "from dominating.")
     return rep
+
+
+def _sample_isotope_figure(rep: Report, idata: Any, prov: dict[str, Any],
+                           comps: list[str]) -> None:
+    """The isotope figure of a posterior: each system's observed value with its window
+    (+-2 posterior-median sigma_eff), the posterior's 90% interval and median of the
+    predicted anomaly and, when the case file can still be read, the interval the
+    hypothesis and each of its blocks reach (:func:`inversion.isotopes.figure_data`)."""
+    post = getattr(idata, "posterior", None)
+    obs = getattr(idata, "observed_data", None)
+    if post is None or obs is None or "eps_pred" not in post.data_vars \
+            or "eps_obs" not in obs.data_vars:
+        return
+    names = [str(n) for n in post["isotopes"].values]
+    pred = np.asarray(post["eps_pred"].values, float).reshape(-1, len(names))
+    sig = (np.asarray(post["eps_sigma"].values, float).reshape(-1, len(names))
+           if "eps_sigma" in post.data_vars else None)
+    values = np.asarray(obs["eps_obs"].values, float)
+    systems, posterior = {}, {}
+    for j, n in enumerate(names):
+        half = 2.0 * float(np.median(sig[:, j])) if sig is not None else float("nan")
+        systems[n] = {"value": float(values[j]), "sigma": half / 2.0, "half_width": half,
+                      "window": "+-2 sigma_eff, posterior median"}
+        lo, med, hi = np.percentile(pred[:, j], [5.0, 50.0, 95.0])
+        posterior[n] = {"p5": float(lo), "median": float(med), "p95": float(hi)}
+    if sig is None:
+        return
+    data: dict[str, Any] = {"systems": systems, "reachable": {}}
+    case_file = prov.get("case_file")
+    if case_file and Path(case_file).is_file() and comps:
+        from .case import load_case
+        from .isotopes import figure_data
+        from .model import compile_problem
+
+        try:
+            p = compile_problem(load_case(case_file))
+            if set(comps) <= set(p.components):
+                data["reachable"] = figure_data(p.subset(comps))["reachable"]
+        except InputError:
+            rep.notes.append(f"isotope figure: the case file {case_file} no longer "
+                             "compiles; the reachable intervals are left out")
+    _isotope_figure(rep, data, posterior=posterior)
 
 
 #: What users call the volatility parameters.
@@ -1175,7 +1269,14 @@ def _compare_report(folder: Path) -> Report:
 _BUILDERS: dict[str, Callable[[Path], Report]] = {
     "fit": _fit_report, "rank": _rank_report, "sample": _sample_report,
     "star": _star_report, "batch": _batch_report, "compare": _compare_report,
+    "sensitivity": lambda folder: _sensitivity_report(folder),
 }
+
+
+def _sensitivity_report(folder: Path) -> Report:
+    from .sensitivity import sensitivity_report
+
+    return sensitivity_report(folder)
 
 
 # --------------------------------------------------------------------------- HTML

@@ -53,8 +53,8 @@ def write_template(kind: str, folder: str | Path = ".", *, force: bool = False) 
     return path
 
 
-@register("report", "turn a result folder (fit, rank, sample, compare, star, batch) into one "
-          "HTML file")
+@register("report", "turn a result folder (fit, rank, sample, compare, star, batch, "
+          "sensitivity) into one HTML file")
 def _report(parser: argparse.ArgumentParser):
     parser.add_argument("folder", help="a result folder written by planetmix")
     parser.add_argument("--out", default=None, help="HTML file (default FOLDER/report.html)")

@@ -21,9 +21,17 @@ offers, each alternative changing one thing:
     elements some candidate lacks left out of the fit instead of imputed.
 
 Each run is the convex fit of all candidates together (as ``planetmix fit``; the curvature
-intervals are skipped to keep it cheap). A conclusion "changes" when it moves by more than
-the thresholds of :data:`CHANGE_THRESHOLDS` (our choice, stated in the output) or, for the
-dominant block and the off-trend elements, when it differs at all.
+intervals are skipped to keep it cheap), followed by the class test of
+:func:`inversion.findings.class_test` (one nested fit on the blocks the run uses; skipped
+with ``--no-class-test``). The conclusions compared are: the best hypothesis (the blocks
+the all-candidates fit gives a weight of at least :data:`HYPOTHESIS_MIN_WEIGHT`; a ranking
+of every subset per run is not made), the weights, T0 and slope, the late-accretion
+fraction, the core mass fraction, the off-trend elements (|z| > 3) and the class test's
+significance and verdict. A conclusion "changes" when it moves by more than the thresholds
+of :data:`CHANGE_THRESHOLDS` (our choice, stated in the output) or, for the best
+hypothesis, the dominant block, the off-trend elements and the class-test verdict, when it
+differs at all. ``planetmix report DIR`` (and the command itself) writes the report page
+``report.html`` of the result folder (:func:`sensitivity_report`).
 """
 
 from __future__ import annotations
@@ -44,14 +52,18 @@ from .cli import EXIT_OK, register
 from .exceptions import InputError
 from .model import Problem, compile_problem
 
-__all__ = ["Variant", "variants", "run_sensitivity", "spread_table", "sensitivity_plot",
-           "CHANGE_THRESHOLDS", "TABLES"]
+__all__ = ["Variant", "variants", "run_sensitivity", "spread_table", "categorical_spread",
+           "sensitivity_plot", "sensitivity_report", "CHANGE_THRESHOLDS", "TABLES",
+           "HYPOTHESIS_MIN_WEIGHT"]
 
 #: What a sensitivity run can vary (the ``--vary`` choices).
 TABLES = ("CI", "BSE", "Tc", "partition", "imputation")
 #: A quantity "changes" when it moves by more than this from the baseline (our choice).
 CHANGE_THRESHOLDS = {"weight": 0.10, "T0": 50.0, "slope_rel": 0.25,
                      "late_accretion_fraction": 0.002, "core_mass_fraction": 0.01}
+#: A block is part of a run's best hypothesis from this weight (reference-element basis; our
+#: choice).
+HYPOTHESIS_MIN_WEIGHT = 0.01
 #: Alternative CI compilation offered by the library.
 ALT_CI = "CI_PO14"
 
@@ -151,7 +163,7 @@ def read_header_name(path: Path) -> str:
     return read_header(path).get("name", path.stem)
 
 
-def _row(v: Variant, p: Problem, r: Any) -> dict[str, Any]:
+def _row(v: Variant, p: Problem, r: Any, *, class_test: bool = False) -> dict[str, Any]:
     row: dict[str, Any] = {"variant": v.name, "table": v.table, "choice": v.choice,
                            "status": r.status, "n_elements": r.n_elements, "chi2": r.chi2}
     # the alternative CI stands in for CI: its weight is reported in CI's column
@@ -160,6 +172,9 @@ def _row(v: Variant, p: Problem, r: Any) -> dict[str, Any]:
     for name, w in weights.items():
         row[f"w_{name}"] = w
     row["dominant"] = max(weights, key=weights.get) if weights else ""
+    row["best_hypothesis"] = " + ".join(
+        n for n in sorted(weights, key=lambda n: -weights[n])
+        if weights[n] >= HYPOTHESIS_MIN_WEIGHT)
     for k, val in r.volatility.items():
         row[k] = val
     row["late_accretion_fraction"] = r.late_accretion_fraction
@@ -167,13 +182,25 @@ def _row(v: Variant, p: Problem, r: Any) -> dict[str, Any]:
     res = r.residuals
     off = res[(res["fitted"]) & (res["flag"].isin(["above model", "below model"]))]
     row["off_trend"] = " ".join(sorted(off["element"]))
+    if class_test:
+        from .findings import class_test as run_class_test
+
+        ct = run_class_test(p, r)
+        row["class_test"] = ct.get("status", "not run")
+        if ct.get("status") == "done":
+            row["class_test_sigma"] = ct["significance_sigma"]
+            row["class_test_difference"] = ct["slope_difference_dex_per_1000K"]
+            row["class_test_differ"] = bool(ct["differ"])
     return row
 
 
 def run_sensitivity(case: Case, *, vary: tuple[str, ...] = TABLES,
-                    settings: Any = None) -> pd.DataFrame:
+                    settings: Any = None, class_test: bool = True) -> pd.DataFrame:
     """Fit the baseline and each alternative; one row per run with its conclusions and a
-    ``changed`` column naming what moved beyond :data:`CHANGE_THRESHOLDS`."""
+    ``changed`` column naming what moved beyond :data:`CHANGE_THRESHOLDS`.
+
+    ``class_test`` False leaves out the class test (one nested fit per run).
+    """
     from .fit import FitSettings, fit_problem
 
     settings = settings or FitSettings(cmf_range=case.cmf_range, intervals=False)
@@ -190,7 +217,7 @@ def run_sensitivity(case: Case, *, vary: tuple[str, ...] = TABLES,
             continue
         if v.transform is not None:
             p = v.transform(p)
-        rows.append(_row(v, p, fit_problem(p, settings)))
+        rows.append(_row(v, p, fit_problem(p, settings), class_test=class_test))
     table = pd.DataFrame(rows)
     if "reason" not in table.columns:
         table["reason"] = ""
@@ -209,6 +236,9 @@ def _changes(base: pd.Series, row: pd.Series) -> str:
         out.append(f"weights (max |dw| {dw:.2f})")
     if row["dominant"] != base["dominant"]:
         out.append(f"dominant block {base['dominant']} -> {row['dominant']}")
+    if row.get("best_hypothesis") != base.get("best_hypothesis"):
+        out.append(f"best hypothesis {base.get('best_hypothesis')} -> "
+                   f"{row.get('best_hypothesis')}")
     if "T0" in base.index and abs(row["T0"] - base["T0"]) > t["T0"]:
         out.append(f"T0 {base['T0']:.0f} -> {row['T0']:.0f} K")
     if "slope" in base.index and base["slope"] > 0 and abs(
@@ -219,16 +249,26 @@ def _changes(base: pd.Series, row: pd.Series) -> str:
             out.append(f"{q} {base[q]:.3g} -> {row[q]:.3g}")
     if row["off_trend"] != base["off_trend"]:
         out.append(f"off-trend [{base['off_trend']}] -> [{row['off_trend']}]")
+    if "class_test_differ" in base.index and _verdict(row) != _verdict(base):
+        out.append(f"class test {_verdict(base)} -> {_verdict(row)}")
     if row["status"] != base["status"]:
         out.append(f"status {base['status']} -> {row['status']}")
     return "; ".join(out)
 
 
+def _verdict(row: pd.Series) -> str:
+    v = row.get("class_test_differ")
+    if v is None or (isinstance(v, float) and not np.isfinite(v)):
+        return "not run"
+    return "classes differ" if bool(v) else "one trend"
+
+
 def spread_table(table: pd.DataFrame) -> pd.DataFrame:
     """Baseline value, minimum, maximum and range of each numeric conclusion over runs."""
     cols = [c for c in table.columns if c.startswith("w_")] + [
-        c for c in ("T0", "slope", "late_accretion_fraction", "core_mass_fraction", "chi2",
-                    "n_elements") if c in table.columns]
+        c for c in ("T0", "slope", "late_accretion_fraction", "core_mass_fraction",
+                    "class_test_sigma", "class_test_difference", "chi2", "n_elements")
+        if c in table.columns]
     table = table[table["status"] != "not applicable"].reset_index(drop=True)
     num = table[cols].apply(pd.to_numeric, errors="coerce")
     return pd.DataFrame({"baseline": num.iloc[0], "min": num.min(), "max": num.max(),
@@ -239,35 +279,194 @@ def spread_table(table: pd.DataFrame) -> pd.DataFrame:
                                     for c in cols]}).rename_axis("quantity")
 
 
+def categorical_spread(table: pd.DataFrame) -> pd.DataFrame:
+    """The conclusions that are words, not numbers, across the runs that ran.
+
+    One row per conclusion (best hypothesis, dominant block, class-test verdict) and per
+    element off the trend in any run: its baseline value, the distinct values met and
+    which runs depart from the baseline.
+    """
+    ran = table[table["status"] != "not applicable"].reset_index(drop=True)
+    rows = []
+    verdicts = ran.apply(_verdict, axis=1) if "class_test_differ" in ran else None
+    for q, col in (("best hypothesis", ran.get("best_hypothesis")),
+                   ("dominant block", ran.get("dominant")),
+                   ("class test", verdicts)):
+        if col is None:
+            continue
+        col = col.fillna("").astype(str)
+        differ = [v for v, c in zip(ran["variant"], col, strict=True) if c != col.iloc[0]]
+        rows.append({"quantity": q, "baseline": col.iloc[0],
+                     "values": " | ".join(dict.fromkeys(col)), "n_runs": len(ran),
+                     "n_differ": len(differ), "differ_in": ", ".join(differ)})
+    off = [set(str(x).split()) for x in ran["off_trend"].fillna("")]
+    for el in sorted(set().union(*off), key=str):
+        differ = [v for v, o in zip(ran["variant"], off, strict=True)
+                  if (el in o) != (el in off[0])]
+        rows.append({"quantity": f"off trend: {el}",
+                     "baseline": "off" if el in off[0] else "on",
+                     "values": f"off in {sum(el in o for o in off)} of {len(ran)} runs",
+                     "n_runs": len(ran), "n_differ": len(differ),
+                     "differ_in": ", ".join(differ)})
+    return pd.DataFrame(rows, columns=["quantity", "baseline", "values", "n_runs",
+                                       "n_differ", "differ_in"])
+
+
+def _numeric_quantities(table: pd.DataFrame) -> list[str]:
+    return [c for c in table.columns if c.startswith("w_")] + [
+        c for c in ("T0", "slope", "late_accretion_fraction", "core_mass_fraction",
+                    "class_test_sigma") if c in table.columns]
+
+
+_LABELS = {"T0": "T0 [K]", "slope": "slope [dex/K]",
+           "late_accretion_fraction": "late accretion (fraction of mantle)",
+           "core_mass_fraction": "core mass fraction",
+           "class_test_sigma": "class test significance [sigma]"}
+
+
 def sensitivity_plot(table: pd.DataFrame, *, title: str | None = None):
-    """One panel per conclusion: its value in each run, the baseline as a line."""
+    """The spread of every conclusion across the runs.
+
+    One panel per numeric conclusion (each block's weight, T0, slope, late-accretion
+    fraction, core mass fraction, class-test significance with its threshold dashed): its
+    value in each run, the baseline as a grey line. Below, one panel of words: each run's
+    best hypothesis (left) and the elements off the trend (filled: off in that run; red
+    edge: differs from the baseline).
+    """
     import matplotlib.pyplot as plt
 
+    from .findings import CLASS_TEST_SIGMA
     from .plots import plot_style
 
-    qs = [c for c in table.columns if c.startswith("w_")] + [
-        c for c in ("T0", "slope", "late_accretion_fraction", "core_mass_fraction")
-        if c in table.columns]
+    table = table.reset_index(drop=True)
+    qs = _numeric_quantities(table)
+    off = [set(str(x).split()) for x in table["off_trend"].fillna("")] if (
+        "off_trend" in table.columns) else [set() for _ in range(len(table))]
+    els = sorted(set().union(*off), key=str)
     with plot_style():
-        n = len(qs)
-        ncol = min(3, n)
-        nrow = int(np.ceil(n / ncol))
-        fig, axes = plt.subplots(nrow, ncol, figsize=(3.4 * ncol, 0.35 * len(table) * nrow + 1.2),
-                                 squeeze=False)
+        ncol = min(3, max(len(qs), 1))
+        nrow = int(np.ceil(len(qs) / ncol))
+        h_row = 0.3 * len(table) + 1.0
+        fig = plt.figure(figsize=(3.6 * ncol + 1.6, h_row * (nrow + 1) + 0.8))
+        gs = fig.add_gridspec(nrow + 1, ncol)
         y = np.arange(len(table))
-        for ax, q in zip(axes.flat, qs, strict=False):
+        for i, q in enumerate(qs):
+            ax = fig.add_subplot(gs[i // ncol, i % ncol])
             vals = pd.to_numeric(table[q], errors="coerce").to_numpy(float)
-            ax.axvline(vals[0], color="0.6", lw=1)
+            if np.isfinite(vals[0]):
+                ax.axvline(vals[0], color="0.6", lw=1)
+            if q == "class_test_sigma":
+                ax.axvline(CLASS_TEST_SIGMA, color="0.3", lw=1, ls="--")
             ax.plot(vals, y, "o", ms=4)
-            ax.set_yticks(y, table["variant"] if ax in axes[:, 0] else [""] * len(y))
-            ax.invert_yaxis()
-            ax.set_title(q.replace("w_", "weight "), fontsize=9)
-        for ax in list(axes.flat)[n:]:
-            ax.set_visible(False)
+            if q.startswith("w_"):
+                ax.set_xlim(-0.05, 1.05)
+            ax.set_yticks(y, table["variant"] if i % ncol == 0 else [""] * len(y))
+            ax.set_ylim(len(table) - 0.5, -0.5)
+            ax.set_title(_LABELS.get(q, q.replace("w_", "weight ")), fontsize=9)
+        ax = fig.add_subplot(gs[nrow, :])
+        hyp = table.get("best_hypothesis", pd.Series([""] * len(table))).fillna("")
+        ax.set_yticks(y, [f"{v}: {h}" for v, h in zip(table["variant"], hyp, strict=True)])
+        ax.set_ylim(len(table) - 0.5, -0.5)
+        for j, el in enumerate(els):
+            for k, o in enumerate(off):
+                changed = (el in o) != (el in off[0])
+                ax.plot(j, k, "s", ms=7, mfc="C0" if el in o else "white",
+                        mec="C3" if changed else "0.5", mew=1.5 if changed else 0.8)
+        ax.set_xticks(range(len(els)), els)
+        ax.set_xlim(-0.7, max(len(els), 1) - 0.3)
+        ax.set_title("best hypothesis (y labels) and elements off the trend (filled: off; "
+                     "red edge: differs from the baseline)", fontsize=9)
         if title:
             fig.suptitle(title, fontsize=10)
         fig.tight_layout()
     return fig
+
+
+def sensitivity_report(folder: str | Path) -> Any:
+    """The report page of a ``planetmix sensitivity`` folder (a :class:`~inversion.report.
+    Report`, rendered by :func:`inversion.report.build_report`).
+
+    Raises
+    ------
+    InputError
+        When the folder lacks ``sensitivity.csv`` or holds no baseline run.
+    """
+    from .report import Report, _fmt, _read_csv, _read_json, _table_html
+
+    folder = Path(folder)
+    table = _read_csv(folder / "sensitivity.csv")
+    meta = _read_json(folder / "summary.json") if (folder / "summary.json").exists() else {}
+    if not len(table) or table["variant"].iloc[0] != "baseline":
+        raise InputError("sensitivity table without a baseline run in its first row",
+                         file=str(folder / "sensitivity.csv"), field="variant")
+    for col in ("reason", "changed", "off_trend", "best_hypothesis", "dominant"):
+        if col in table.columns:
+            table[col] = table[col].fillna("").astype(str)
+    ran = table[table["status"] != "not applicable"].reset_index(drop=True)
+    title = meta.get("title") or f"sensitivity ({folder.name})"
+    rep = Report(title=f"{title}: sensitivity to the reference tables", kind="sensitivity",
+                 folder=str(folder), provenance=meta.get("provenance") or {})
+    base = ran.iloc[0]
+    rep.key_numbers.append(("runs", str(len(table)), f"baseline and {len(table) - 1} "
+                            f"alternatives; {len(table) - len(ran)} not applicable"))
+    rep.key_numbers.append(("alternative tables", ", ".join(
+        dict.fromkeys(table["table"].iloc[1:].astype(str))) or "none", ""))
+    rep.key_numbers.append(("baseline best hypothesis", str(base.get("best_hypothesis", "")),
+                            f"blocks with weight >= {HYPOTHESIS_MIN_WEIGHT} in the fit of "
+                            "all candidates"))
+    num = spread_table(table) if len(ran) else pd.DataFrame()
+    for q, r in num.iterrows():
+        if q in ("chi2", "n_elements"):
+            continue
+        rep.key_numbers.append((_LABELS.get(q, q.replace("w_", "weight of ")),
+                                _fmt(r["baseline"]),
+                                f"range over runs [{_fmt(r['min'])}, {_fmt(r['max'])}] "
+                                f"(min: {r['argmin']}; max: {r['argmax']})"))
+    cat = categorical_spread(table)
+    for _, r in cat.iterrows():
+        if not str(r["quantity"]).startswith("off trend"):
+            rep.key_numbers.append((str(r["quantity"]), str(r["baseline"]),
+                                    f"differs in {r['n_differ']} of {r['n_runs']} runs"
+                                    + (f": {r['differ_in']}" if r["differ_in"] else "")))
+    offs = cat[cat["quantity"].astype(str).str.startswith("off trend")]
+    moved = offs[offs["n_differ"] > 0]
+    rep.key_numbers.append(("off-trend elements (baseline)", str(base.get("off_trend", ""))
+                            or "none", f"{len(moved)} of {len(offs)} elements off the trend "
+                            "in some run change status across runs"))
+    for _, r in table.iterrows():
+        if r["status"] == "not applicable":
+            rep.diagnostics.append((f"not applicable: {r['variant']}", str(r["reason"]),
+                                    "this alternative cannot run on the case"))
+        elif r["variant"] != "baseline":
+            rep.diagnostics.append((f"{r['variant']}", str(r["status"]),
+                                    str(r["changed"]) or "no conclusion changed"))
+    th = meta.get("change_thresholds") or CHANGE_THRESHOLDS
+    rep.notes.append("A conclusion changes when it moves by more than: " + ", ".join(
+        f"{k.replace('_', ' ')} {v}" for k, v in th.items()) + " (slope relative); the best "
+        "hypothesis, dominant block, off-trend elements and class-test verdict when they "
+        "differ at all (thresholds: our choice).")
+    rep.figures.append(("Spread of the conclusions over the tables",
+                        "Each conclusion in each run (one row per run); the grey line is the "
+                        "baseline, the dashed line the class test's threshold. Bottom: each "
+                        "run's best hypothesis and the elements off the trend.",
+                        lambda: sensitivity_plot(ran, title=title)))
+    show = [c for c in ("variant", "status", "n_elements", "chi2", "best_hypothesis")
+            if c in table.columns] + [c for c in table.columns if c.startswith("w_")] + [
+        c for c in ("T0", "slope", "late_accretion_fraction", "core_mass_fraction",
+                    "class_test_sigma", "class_test_difference", "off_trend", "changed")
+        if c in table.columns]
+    rep.tables.append(("Runs (weights on the reference-element basis)",
+                       _table_html(table[show])))
+    if len(num):
+        rep.tables.append(("Spread of the numeric conclusions",
+                           _table_html(num.reset_index())))
+    rep.tables.append(("Spread of the conclusions in words", _table_html(cat)))
+    rep.limits.append("Each run is the convex fit of all candidates together; the best "
+                      "hypothesis is that fit's support, not a ranking of every subset "
+                      "(planetmix rank) per table.")
+    rep.limits.append("Only the alternatives the library offers are tried, one at a time; "
+                      "their combined effect and tables the library lacks are not.")
+    return rep
 
 
 @register("sensitivity", "re-fit a case over the alternative reference tables and report "
@@ -277,6 +476,8 @@ def _sensitivity(parser: argparse.ArgumentParser):
     parser.add_argument("--out", required=True, help="result folder")
     parser.add_argument("--vary", nargs="+", choices=TABLES, default=list(TABLES),
                         help="which tables to vary (default: all offered)")
+    parser.add_argument("--no-class-test", action="store_true",
+                        help="leave out the class test (one nested fit per run)")
 
     def run(args: argparse.Namespace) -> int:
         from .case import load_case
@@ -284,24 +485,33 @@ def _sensitivity(parser: argparse.ArgumentParser):
         from .plots import save_figure
 
         case = load_case(args.case)
-        table = run_sensitivity(case, vary=tuple(args.vary))
+        table = run_sensitivity(case, vary=tuple(args.vary),
+                                class_test=not args.no_class_test)
         spread = spread_table(table)
+        words = categorical_spread(table)
         base_p = compile_problem(case)
         with atomic_folder(args.out) as tmp:
             table.to_csv(tmp / "sensitivity.csv", index=False)
             spread.to_csv(tmp / "spread.csv")
+            words.to_csv(tmp / "spread_words.csv", index=False)
             ran = table[table["status"] != "not applicable"].reset_index(drop=True)
             save_figure(sensitivity_plot(ran, title=case.title), tmp / "sensitivity")
             write_json(tmp / "summary.json", {
                 "what": "sensitivity of the convex fit's conclusions to the reference tables",
+                "title": case.title,
                 "runs": table.to_dict(orient="records"),
                 "spread": spread.reset_index().to_dict(orient="records"),
+                "spread_words": words.to_dict(orient="records"),
+                "hypothesis_min_weight": HYPOTHESIS_MIN_WEIGHT,
                 "change_thresholds": CHANGE_THRESHOLDS,
                 "provenance": case_provenance(case, base_p, tables=[
                     "typedcopy_pyrolite_chondrite_pon", "palmeoneill2014", "lodders2003",
                     "mcdonoughsun1995"], extra={"varied": list(args.vary)}),
             })
-        print(f"{case.title}: {len(table) - 1} alternatives")
+        from .report import build_report
+
+        page = build_report(args.out)
+        print(f"{case.title}: {len(table) - 1} alternatives (report: {page})")
         for _, r in table.iterrows():
             if r["status"] == "not applicable":
                 print(f"  {r['variant']:<24} not applicable: {r['reason']}")
