@@ -32,7 +32,7 @@ Examples
 --------
 >>> import numpy as np
 >>> round(float(peridotite_liquidus(np.array(29.0))), 1)  # Fiquet et al. (2010) fit
-2795.7
+2794.1
 >>> round(float(molar_to_mass(np.array(10.0), 50.0, 55.0)), 4)
 9.0909
 """
