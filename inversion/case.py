@@ -23,15 +23,21 @@ from .options import check_option
 from .volatility import CASE_FORMS
 
 __all__ = ["Case", "Target", "CoreSettings", "load_case", "read_target", "ISOTOPE_CARRIERS",
-           "CONDENSATION_TABLES", "reference_elements"]
+           "STAGED_ISOTOPE_CARRIERS", "CONDENSATION_TABLES", "reference_elements",
+           "AccretionSettings"]
 
 #: Isotope anomaly -> element that carries it (docs/model.md section 6).
 ISOTOPE_CARRIERS: dict[str, str] = {"D17O": "O", "e50Ti": "Ti", "e54Cr": "Cr", "e48Ca": "Ca"}
+#: Anomalies carried by siderophile elements: usable only with ``[accretion] stages = 2``
+#: (inversion/staged.py), where the mantle's share of each stage's carrier is modelled;
+#: one mixture throughout would compare the bulk carrier balance with a mantle that lost
+#: most of its early siderophile inventory to the core.
+STAGED_ISOTOPE_CARRIERS: dict[str, str] = {"e64Ni": "Ni", "e92Mo": "Mo", "e100Ru": "Ru"}
 CONDENSATION_TABLES = {"lodders2003": "tc50_lodders2003", "wood2019": "tc50_wood2019"}
 
 _ALLOWED: dict[str, set[str]] = {
     "": {"title", "target", "building_blocks", "volatility", "core", "late_accretion",
-         "isotopes", "elements", "priors", "sampler", "fit"},
+         "isotopes", "elements", "priors", "sampler", "fit", "accretion"},
     "target": {"table", "reference_element", "planet_mass_kg", "mantle_mass_kg",
                "default_uncertainty_pct", "minimum_uncertainty_dex", "normaliser"},
     "building_blocks": {"candidates", "max_mixture_size"},
@@ -40,6 +46,7 @@ _ALLOWED: dict[str, set[str]] = {
     "late_accretion": {"component", "max_fraction"},
     "elements": {"exclude"},
     "fit": {"isotope_window_sigma", "cmf_range"},
+    "accretion": {"stages", "late_stage_fraction", "core_mass_fraction"},
     "sampler": {"draws", "tune", "chains", "seed", "target_accept", "cores", "init",
                 "smc_draws", "smc_chains", "engine", "jitter", "mass_matrix"},
 }
@@ -68,6 +75,22 @@ class CoreSettings:
 
 
 @dataclass(frozen=True)
+class AccretionSettings:
+    """``[accretion]``: one mixture throughout (``stages = 1``) or two stages.
+
+    ``late_stage_fraction`` is the mass fraction accreted in the second stage;
+    ``core_mass_fraction`` (optional) sets the core/mantle ratio of the siderophile
+    retention (default: the convex fit's); ``isotopes`` holds the siderophile systems
+    (:data:`STAGED_ISOTOPE_CARRIERS`) that only the staged fit uses.
+    """
+
+    stages: int = 1
+    late_stage_fraction: float | None = None
+    core_mass_fraction: float | None = None
+    isotopes: dict[str, tuple[float, float]] = field(default_factory=dict)
+
+
+@dataclass(frozen=True)
 class Case:
     """A parsed, validated case file."""
 
@@ -89,6 +112,7 @@ class Case:
     minimum_uncertainty_dex: float = 0.02
     cmf_range: tuple[float, float] | None = None
     normaliser: components.Component | None = None
+    accretion: AccretionSettings = field(default_factory=AccretionSettings)
 
     @property
     def candidate_names(self) -> list[str]:
@@ -205,13 +229,17 @@ def _resolve_component(item: Any, base: Path, file: str, field: str) -> componen
                      "give the path of a component CSV", file=file, field=field, value=item)
 
 
-def load_case(path: str | Path) -> Case:
+def load_case(path: str | Path, *, staged: bool = False) -> Case:
     """Read and validate a case file.
 
     Parameters
     ----------
     path : str or Path
         The TOML case file. Relative paths inside it resolve against its folder.
+    staged : bool
+        Whether the caller honours ``[accretion] stages = 2`` (``planetmix fit`` and
+        :func:`inversion.staged.fit_case` do); other callers refuse such a case rather
+        than ignore its staged part.
 
     Returns
     -------
@@ -382,10 +410,25 @@ def load_case(path: str | Path) -> Case:
                   positive=True)
     check_in_range(la_max, "late_max_fraction", file=file, field="late_accretion.max_fraction")
 
+    acc = _accretion(raw.get("accretion") or {}, file)
+    if acc.stages == 2 and not staged:
+        raise InputError("two-stage accretion is run by 'planetmix fit' only (the other "
+                         "commands model one mixture throughout); remove [accretion] or "
+                         "set stages = 1 here", file=file, field="accretion.stages",
+                         value=2)
     iso = {}
+    staged_iso = {}
     for name, pair in (raw.get("isotopes") or {}).items():
-        check_option("isotope anomaly", name, ISOTOPE_CARRIERS, file=file,
-                     field=f"isotopes.{name}")
+        if name in STAGED_ISOTOPE_CARRIERS and acc.stages == 1:
+            raise InputError(f"{name} is carried by a siderophile element "
+                             f"({STAGED_ISOTOPE_CARRIERS[name]}) whose mantle inventory "
+                             "records the late stages of accretion, which one mixture "
+                             "throughout cannot model; set [accretion] stages = 2 (with "
+                             "late_stage_fraction) or remove it", file=file,
+                             field=f"isotopes.{name}", value=name)
+        if name not in STAGED_ISOTOPE_CARRIERS:
+            check_option("isotope anomaly", name, ISOTOPE_CARRIERS, file=file,
+                         field=f"isotopes.{name}")
         if (not isinstance(pair, list) or len(pair) != 2
                 or not all(isinstance(x, int | float) and not isinstance(x, bool)
                            for x in pair)):
@@ -399,7 +442,19 @@ def load_case(path: str | Path) -> Case:
             if not lim.contains(float(x)):
                 raise InputError(f"outside {lim.describe()}: {lim.reason}", file=file,
                                  field=f"isotopes.{name}", value=pair)
-        iso[name] = (float(pair[0]), float(pair[1]))
+        (staged_iso if name in STAGED_ISOTOPE_CARRIERS else iso)[name] = (
+            float(pair[0]), float(pair[1]))
+    if staged_iso:
+        from dataclasses import replace
+
+        acc = replace(acc, isotopes=staged_iso)
+    need = 2 * (len(candidates) - 1) + 1
+    if acc.stages == 2 and len(iso) + len(staged_iso) < need:
+        raise InputError(f"two stages of {len(candidates)} building blocks need at least "
+                         f"{need} isotope systems in [isotopes] (the case gives "
+                         f"{len(iso) + len(staged_iso)}); add systems (e.g. e64Ni, e92Mo, "
+                         "e100Ru) or fewer candidates", file=file, field="accretion.stages",
+                         value=2)
 
     excl = (raw.get("elements") or {}).get("exclude", [])
     if not isinstance(excl, list):
@@ -435,8 +490,35 @@ def load_case(path: str | Path) -> Case:
         minimum_uncertainty_dex=min_dex,
         cmf_range=(None if cmf_range is None
                    else (float(cmf_range[0]), float(cmf_range[1]))),
-        normaliser=normaliser,
+        normaliser=normaliser, accretion=acc,
     )
+
+
+def _accretion(table: dict[str, Any], file: str) -> AccretionSettings:
+    """``[accretion]``: ``stages`` 1 or 2; ``late_stage_fraction`` in (0, 1), required
+    with two stages and refused with one; ``core_mass_fraction`` in (0, 1), optional."""
+    stages = table.get("stages", 1)
+    if isinstance(stages, bool) or stages not in (1, 2):
+        raise InputError("give 1 (one mixture throughout) or 2 (early and late mixtures)",
+                         file=file, field="accretion.stages", value=stages)
+    out = {}
+    for key in ("late_stage_fraction", "core_mass_fraction"):
+        if key not in table:
+            continue
+        if stages == 1:
+            raise InputError("only used with [accretion] stages = 2; remove it or set "
+                             "stages = 2", file=file, field=f"accretion.{key}",
+                             value=table[key])
+        v = _num(table[key], file=file, field=f"accretion.{key}")
+        if not 0.0 < v < 1.0:
+            raise InputError("give a mass fraction strictly between 0 and 1", file=file,
+                             field=f"accretion.{key}", value=table[key])
+        out[key] = v
+    if stages == 2 and "late_stage_fraction" not in out:
+        raise InputError("two stages need the mass fraction of the late stage, e.g. "
+                         "late_stage_fraction = 0.2", file=file,
+                         field="accretion.late_stage_fraction")
+    return AccretionSettings(stages=int(stages), **out)
 
 
 def _check_tc_complete(comp: pd.Series, table: str, exclude: list, file: str) -> None:

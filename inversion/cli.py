@@ -176,8 +176,10 @@ def _unit(form: str, name: str) -> str:
     return "" if u == "1" else f" {u}"
 
 
-def _write_fit(out: Path, case, p, result, findings: dict) -> None:
+def _write_fit(out: Path, case, p, result, findings: dict,
+               staged: dict | None = None) -> None:
     from .fit import planet_of
+    from .isotopes import figure_data
     from .output import atomic_folder, case_provenance, write_json
 
     planet = planet_of(p, result) if result.feasible else None
@@ -208,7 +210,12 @@ def _write_fit(out: Path, case, p, result, findings: dict) -> None:
         "isotopes_observed": {k: {"value": v, "sigma": s} for k, (v, s) in
                               case.isotopes.items()},
         "isotopes_predicted": result.isotopes,
+        # observed windows and reachable intervals of the hypothesis and of each block
+        # (the report's isotope figure; inversion.isotopes.figure_data)
+        "isotope_figure": (figure_data(p, np.asarray(result.u) if result.feasible
+                                       and result.u else None) if p.isotopes else None),
         "planet_mass_kg": case.target.planet_mass_kg,
+        **({"staged_accretion": staged} if staged is not None else {}),
         "findings": findings,
         "notes": list(p.notes),
         "normaliser": p.normaliser,
@@ -228,6 +235,44 @@ def _write_fit(out: Path, case, p, result, findings: dict) -> None:
                         meta={"title": case.title})
 
 
+def _staged_fit(case, result) -> dict:
+    """``[accretion] stages = 2``: early and late mixtures from the isotopes
+    (:func:`inversion.staged.fit_case`), with k from ``core_mass_fraction`` or the fit."""
+    from .staged import fit_case
+
+    cmf = case.accretion.core_mass_fraction
+    source = "[accretion] core_mass_fraction"
+    if cmf is None and result.feasible:
+        cmf, source = float(result.core_mass_fraction), "the convex fit"
+    if cmf is None:
+        return {"status": "not run", "reason": "the convex fit is infeasible and "
+                "[accretion] core_mass_fraction is not given: the siderophile retention "
+                "needs the core/mantle mass ratio"}
+    out = fit_case(case, core_mass_fraction=cmf)
+    return {"status": "fitted", "core_mass_fraction_from": source, **out}
+
+
+def _staged_lines(staged: dict | None) -> list[str]:
+    """Printed summary of the staged fit."""
+    if staged is None:
+        return []
+    if staged.get("status") != "fitted":
+        return [f"two stages: not run ({staged.get('reason')})"]
+
+    def mix(d: dict) -> str:
+        return ", ".join(f"{k} {v:.3f}" for k, v in d.items())
+
+    return [f"two stages (late stage {staged['late_stage_fraction']:g} of the mass; "
+            f"core mass fraction {staged['core_mass_fraction']:.3f} from "
+            f"{staged['core_mass_fraction_from']}):",
+            f"  early mixture (mass fractions): {mix(staged['early'])}",
+            f"  late mixture: {mix(staged['late'])}",
+            f"  one mixture throughout: {mix(staged['single'])}",
+            f"  BIC two stages {staged['bic_staged']:.2f}, one mixture "
+            f"{staged['bic_single']:.2f} -> {staged['preferred']} preferred; likelihood "
+            f"ratio p = {staged['lr_pvalue']:.3g}"]
+
+
 @register("fit", "fit a case with all its building blocks (convex inversion)")
 def _fit(parser: argparse.ArgumentParser):
     parser.add_argument("case", help="case file (TOML)")
@@ -239,16 +284,23 @@ def _fit(parser: argparse.ArgumentParser):
         from .fit import FitSettings, fit_problem
         from .model import compile_problem
 
-        case = load_case(args.case)
+        case = load_case(args.case, staged=True)
         p = compile_problem(case)
         from .model import implausible_lines
 
         for line in implausible_lines(p.implausible):
             print("warning: " + line)
+        if case.accretion.stages == 2:
+            from .staged import case_systems
+
+            case_systems(case, core_mantle_ratio=1.0)  # refuse missing values before fitting
         result = fit_problem(p, FitSettings(cmf_range=case.cmf_range))
         f = findings(p, result, planet_mass_kg=case.target.planet_mass_kg)
-        _write_fit(Path(args.out), case, p, result, f)
+        staged = _staged_fit(case, result) if case.accretion.stages == 2 else None
+        _write_fit(Path(args.out), case, p, result, f, staged)
         print(f"{case.title}: {'+'.join(result.components)} -> {result.status}")
+        for line in _staged_lines(staged):
+            print("  " + line)
         if not result.feasible:
             for r in result.reasons:
                 print(f"  infeasible: {r}")

@@ -42,6 +42,7 @@ __all__ = [
     "conservative_sigma",
     "feasibility_report",
     "WINDOWS",
+    "figure_data",
 ]
 
 
@@ -431,3 +432,56 @@ def feasibility_report(p: Problem, *, window: str = "conservative",
         components=tuple(p.components), feasible=not alone and not joint,
         intervals=intervals, windows=windows, half_widths=half, v_max=v_max,
         alone=tuple(alone), joint=tuple(joint), messages=tuple(messages))
+
+
+def figure_data(p: Problem, u: np.ndarray | None = None, *, label: str | None = None,
+                singles: bool = True) -> dict[str, Any]:
+    """What the isotope figure of a report shows, as plain JSON-ready numbers.
+
+    Parameters
+    ----------
+    p : Problem
+        One hypothesis (``p.subset(names)`` or a case's problem with all candidates).
+    u : array_like, optional
+        The fitted R-basis weights (K, or K + 1 with the late component last). With them
+        the window is ``isotope_window_sigma * sigma_eff`` at these weights
+        (:func:`effective_sigma`) and the fitted anomalies are given; without them (an
+        infeasible or unfitted hypothesis) the window uses :func:`conservative_sigma`.
+    label : str, optional
+        Row label of the hypothesis (default: its blocks joined by ``+``).
+    singles : bool
+        Also give one row per block alone (with the late component up to its cap).
+
+    Returns
+    -------
+    dict
+        ``systems``: name -> {``value``, ``sigma``, ``half_width``, ``window``};
+        ``reachable``: row label -> {name -> [lo, hi]} (:func:`reachable_intervals`);
+        ``predicted``: row label -> {name -> fitted anomaly} (only with ``u``).
+    """
+    _check_single(p)
+    label = label or "+".join(p.components)
+    n = float(p.isotope_window_sigma)
+    systems: dict[str, Any] = {}
+    predicted: dict[str, float] = {}
+    for iso in p.isotopes:
+        if u is not None:
+            uu = np.asarray(u, float)
+            half, how = window_halfwidth(iso, uu, n_sigma=n), "at the fitted weights"
+            eps, q, _, _ = _columns(p, iso)
+            m = min(uu.size, eps.size)
+            predicted[iso["name"]] = float((uu[:m] * q[:m]) @ eps[:m] / (uu[:m] @ q[:m]))
+        else:
+            half, how = n * conservative_sigma(p, iso), "largest over the mixtures"
+        systems[iso["name"]] = {"value": float(iso["value"]), "sigma": float(iso["sigma"]),
+                                "half_width": float(half),
+                                "window": f"+-{n:g} sigma_eff, {how}"}
+    reach = {label: {k: [lo, hi] for k, (lo, hi) in reachable_intervals(p).items()}}
+    if singles and len(p.components) > 1:
+        for name in p.components:
+            reach[name] = {k: [lo, hi] for k, (lo, hi)
+                           in reachable_intervals(p.subset([name])).items()}
+    out: dict[str, Any] = {"systems": systems, "reachable": reach}
+    if predicted:
+        out["predicted"] = {label: predicted}
+    return out

@@ -46,7 +46,7 @@ from .volatility import log10_retained  # noqa: E402
 __all__ = ["OKABE_ITO", "CLASS_STYLE", "plot_style", "volatility_diagram", "residuals_plot",
            "weights_plot", "pair_plot", "ranking_plot", "planet_plot", "heat_plot",
            "distribution_plot", "trace_rank_plot", "prior_posterior_plot", "save_figure",
-           "png_bytes", "svg_text"]
+           "png_bytes", "svg_text", "isotope_plot"]
 
 #: The eight colours of Okabe & Ito (2008, "Color Universal Design").
 OKABE_ITO = {
@@ -887,7 +887,9 @@ def isotope_plot(observed: Mapping[str, tuple[float, float]],
         if predicted:
             handles.append(plt.Line2D([], [], color="black", marker="o", ls="",
                                       label="fitted"))
-        fig.legend(handles=handles, loc="outside lower center", ncols=len(handles))
+        # one legend row only where the panels are wide enough to hold it
+        fig.legend(handles=handles, loc="outside lower center",
+                   ncols=len(handles) if len(systems) >= 3 else 1)
         if title:
             fig.suptitle(title, x=0.01, ha="left")
     return fig

@@ -295,6 +295,7 @@ def _fit_report(folder: Path) -> Report:
                                                        mass_fractions=d.get("mass_fractions"),
                                                        basis=ref)))
     _isotope_figure(rep, d.get("isotope_figure"), staged=d.get("staged_accretion"))
+    _staged_section(rep, d.get("staged_accretion"))
     if (folder / "planet.csv").exists():
         planet = _read_csv(folder / "planet.csv")
         rep.figures.append(("Whole planet", "Mantle oxides, core composition, molar ratios "
@@ -331,6 +332,29 @@ def _fit_report(folder: Path) -> Report:
     return rep
 
 
+def _staged_section(rep: Report, st: dict[str, Any] | None) -> None:
+    """The two-stage accretion of a fit (``staged_accretion`` of fit.json): the early,
+    late and single mixtures as a table, the comparison as a diagnostic."""
+    if not st:
+        return
+    if st.get("status") != "fitted":
+        rep.diagnostics.append(("two-stage accretion", "not run", str(st.get("reason"))))
+        return
+    table = pd.DataFrame({"early mixture": st["early"], "late mixture": st["late"],
+                          "one mixture throughout": st["single"]}).rename_axis(
+        "building block (mass fraction)").reset_index()
+    rep.tables.append((f"Two-stage accretion (late stage {_fmt(st['late_stage_fraction'])} "
+                       "of the mass): mixtures read from the isotopes", _table_html(table)))
+    rep.diagnostics.append((
+        "two stages vs one mixture", f"{st['preferred']} preferred",
+        f"BIC two stages {_fmt(st['bic_staged'])}, one mixture {_fmt(st['bic_single'])}; "
+        f"likelihood-ratio p = {_fmt(st['lr_pvalue'])}; siderophile retention of the early "
+        "stage " + ", ".join(f"{k} {_fmt(v)}" for k, v in st["retention_early"].items()
+                             if v < 1) + f" (core mass fraction "
+        f"{_fmt(st['core_mass_fraction'])} from {st.get('core_mass_fraction_from')})"))
+    rep.notes.append(str(st.get("model", "")))
+
+
 def _isotope_figure(rep: Report, data: dict[str, Any] | None, *,
                     staged: dict[str, Any] | None = None,
                     posterior: dict[str, dict[str, float]] | None = None) -> None:
@@ -353,6 +377,9 @@ def _isotope_figure(rep: Report, data: dict[str, Any] | None, *,
         ranges[lab] = {k: (v["p5"], v["p95"]) for k, v in posterior.items()}
         predicted[lab] = {k: v["median"] for k, v in posterior.items()}
     if staged and staged.get("early"):
+        observed.update({k: (float(v["value"]), 2.0 * float(v["sigma"]))
+                         for k, v in (staged.get("observed") or {}).items()
+                         if k not in observed})
         for key, lab in (("early_alone", "early mixture alone"),
                          ("late_alone", "late mixture alone"),
                          ("predicted_staged", "two stages"),
@@ -362,9 +389,6 @@ def _isotope_figure(rep: Report, data: dict[str, Any] | None, *,
             if row:
                 ranges[lab] = {k: (v, v) for k, v in row.items()}
                 predicted[lab] = row
-        observed.update({k: (float(v["value"]), 2.0 * float(v["sigma"]))
-                         for k, v in (staged.get("observed") or {}).items()
-                         if k not in observed})
     windows = "; ".join(f"{k} {v['window']}" for k, v in systems.items())
     caption = ("Isotope anomalies: the observed value (blue line) and its window (shaded; "
                f"{windows}), and the interval each hypothesis reaches over all its "

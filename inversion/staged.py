@@ -13,10 +13,21 @@ equilibration. The mantle's anomaly is the carrier-weighted balance of the two s
             / [(1-f) rho_1e sum_k x1_k c_ke + f rho_2e sum_k x2_k c_ke]
 
 so lithophile anomalies constrain the whole planet's mixture and siderophile ones weight
-the late stage by their partitioning (Dauphas 2017). :func:`fit_staged` finds ``x1`` and
-``x2`` by maximum likelihood (Gaussian, with the end-members' anomaly uncertainties added
-to each observation's variance at the current weights) and compares them with one mixture
-throughout (``x1 = x2``) by BIC and a likelihood-ratio test.
+the late stage by their partitioning (Dauphas 2017).
+
+From a case file (``[accretion] stages = 2``; :func:`case_systems`, :func:`fit_case`):
+the early stage's metal equilibrates with its silicate, so the mantle keeps
+``rho_1e = 1 / (1 + D_e k)`` of the early carrier; the late stage's metal then
+equilibrates with the whole mantle, which scales the early remnant and the late
+delivery by the same factor, so that factor cancels in the anomaly and ``rho_2e = 1``.
+``D_e`` is the case's effective partition coefficient (``[core] D`` or the library's),
+``k = cmf / (1 - cmf)`` the core/mantle mass ratio (``[accretion] core_mass_fraction`` or
+the convex fit's). The late-veneer component of the case is not part of this inference.
+
+:func:`fit_staged` finds ``x1`` and ``x2`` by maximum likelihood (Gaussian, with the
+end-members' anomaly uncertainties added to each observation's variance at the current
+weights) and compares them with one mixture throughout (``x1 = x2``) by BIC and a
+likelihood-ratio test.
 
 References
 ----------
@@ -28,12 +39,14 @@ Kass R. E., Raftery A. E. (1995) Bayes factors. J. Am. Stat. Assoc. 90, 773-795 
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 import pandas as pd
 from scipy import optimize, stats
 
-__all__ = ["IsotopeSystem", "StagedResult", "retention", "stage_prediction", "fit_staged"]
+__all__ = ["IsotopeSystem", "StagedResult", "retention", "stage_prediction", "fit_staged",
+           "case_systems", "fit_case", "min_systems"]
 
 
 @dataclass(frozen=True)
@@ -254,3 +267,123 @@ def fit_staged(systems: list[IsotopeSystem], components: list[str] | tuple[str, 
         preferred="staged" if bic_st < bic_si else "single",
         predicted_staged={s.name: float(v) for s, v in zip(systems, pred_st, strict=True)},
         predicted_single={s.name: float(v) for s, v in zip(systems, pred_si, strict=True)})
+
+
+def min_systems(K: int) -> int:
+    """Isotope systems needed to constrain two mixtures of K blocks: ``2 (K - 1) + 1``."""
+    return 2 * (K - 1) + 1
+
+
+def case_systems(case: Any, *, core_mantle_ratio: float) -> list[IsotopeSystem]:
+    """The isotope systems of a case with ``[accretion] stages = 2``, lithophile and
+    siderophile, with each block's anomaly, 1-sigma and carrier concentration.
+
+    Parameters
+    ----------
+    case : inversion.case.Case
+    core_mantle_ratio : float
+        ``k`` of the siderophile retention ``1 / (1 + D k)`` (early stage; the late
+        stage keeps 1, see the module docstring).
+
+    Returns
+    -------
+    list of IsotopeSystem
+        Lithophile systems (``case.isotopes``) first, then the siderophile ones
+        (``case.accretion.isotopes``).
+
+    Raises
+    ------
+    InputError
+        A block without a value of an anomaly or without its carrier element (one line,
+        naming the case key).
+    """
+    import components
+
+    from .case import ISOTOPE_CARRIERS, STAGED_ISOTOPE_CARRIERS
+    from .exceptions import InputError
+    from .model import default_partition
+
+    table = components.isotopes()
+    D_lib = default_partition()["D"]
+    out = []
+    for name, (value, sigma), siderophile in (
+            [(n, v, False) for n, v in case.isotopes.items()]
+            + [(n, v, True) for n, v in case.accretion.isotopes.items()]):
+        carrier = (STAGED_ISOTOPE_CARRIERS if siderophile else ISOTOPE_CARRIERS)[name]
+        eps, eps_sig, conc = [], [], []
+        for c in case.candidates:
+            rows = table[(table["body"] == c.name) & (table["quantity"] == name)]
+            if name in c.isotopes:
+                e, es = c.isotopes[name]
+            elif not rows.empty:
+                e, es = float(rows["value"].iloc[0]), float(rows["uncertainty"].iloc[0])
+            else:
+                raise InputError(f"no {name} value for building block {c.name} in the "
+                                 "library; remove the constraint or the candidate, or give "
+                                 f"it in a component file as '# {name}: value 1-sigma'",
+                                 file=case.path, field=f"isotopes.{name}", value=c.name)
+            cval = c.composition.get(carrier, float("nan"))
+            if not np.isfinite(cval) or cval <= 0:
+                raise InputError(f"building block {c.name} has no {carrier}, the carrier "
+                                 f"of {name}; give a component file that holds it",
+                                 file=case.path, field=f"isotopes.{name}", value=c.name)
+            eps.append(float(e))
+            eps_sig.append(float(es) if np.isfinite(es) else 0.0)
+            conc.append(float(cval))
+        rho = 1.0
+        if siderophile:
+            D = float(case.core.D.get(carrier, D_lib.get(carrier, 0.0)))
+            rho = retention(D, core_mantle_ratio)
+        out.append(IsotopeSystem(name=name, value=float(value), sigma=float(sigma),
+                                 eps=tuple(eps), eps_sigma=tuple(eps_sig),
+                                 carrier=tuple(conc), rho_early=rho, rho_late=1.0))
+    return out
+
+
+def fit_case(case: Any, *, core_mass_fraction: float, seed: int = 0) -> dict[str, Any]:
+    """The staged fit of a case, as the JSON-ready ``staged_accretion`` block of fit.json.
+
+    Parameters
+    ----------
+    case : inversion.case.Case
+        With ``[accretion] stages = 2``.
+    core_mass_fraction : float
+        Sets ``k = cmf / (1 - cmf)`` of the siderophile retention.
+    seed : int
+        Seed of the optimiser's restarts.
+
+    Returns
+    -------
+    dict
+        ``late_stage_fraction``, ``core_mass_fraction``, ``core_mantle_ratio``,
+        ``retention_early`` (system -> rho), ``observed``, the ``early``, ``late`` and
+        ``single`` mixtures (mass fractions), each stage's anomaly alone
+        (``early_alone``, ``late_alone``), ``predicted_staged``, ``predicted_single``,
+        ``m2ll_*``, ``bic_*``, ``lr_pvalue``, ``preferred`` and ``model``.
+    """
+    k = core_mass_fraction / (1.0 - core_mass_fraction)
+    systems = case_systems(case, core_mantle_ratio=k)
+    res = fit_staged(systems, case.candidate_names,
+                     late_fraction=float(case.accretion.late_stage_fraction), seed=seed)
+    x1 = np.array([res.early[c] for c in res.components])
+    x2 = np.array([res.late[c] for c in res.components])
+    alone1, _ = stage_prediction(systems, x1, x1, 0.5)
+    alone2, _ = stage_prediction(systems, x2, x2, 0.5)
+    return {
+        "model": "two-stage accretion (inversion/staged.py): early mixture then late "
+                 "mixture; siderophile carriers kept 1/(1 + D k) of the early stage, all "
+                 "of the late; Gaussian likelihood with end-member errors; compared with "
+                 "one mixture throughout by BIC and a likelihood-ratio test",
+        "late_stage_fraction": res.late_fraction,
+        "core_mass_fraction": float(core_mass_fraction), "core_mantle_ratio": float(k),
+        "retention_early": {s.name: s.rho_early for s in systems},
+        "observed": {s.name: {"value": s.value, "sigma": s.sigma} for s in systems},
+        "early": res.early, "late": res.late, "single": res.single,
+        "early_alone": {s.name: float(v) for s, v in zip(systems, alone1, strict=True)},
+        "late_alone": {s.name: float(v) for s, v in zip(systems, alone2, strict=True)},
+        "predicted_staged": res.predicted_staged,
+        "predicted_single": res.predicted_single,
+        "m2ll_staged": res.m2ll_staged, "m2ll_single": res.m2ll_single,
+        "bic_staged": res.bic_staged, "bic_single": res.bic_single,
+        "lr_pvalue": res.lr_pvalue, "preferred": res.preferred,
+    }
