@@ -182,17 +182,36 @@ def _leave_one_imputed_out(case, n: int | None = None):
 def test_no_weight_hinges_on_one_imputed_value():
     """The Earth case as given (isotope constraints included): leaving out any one imputed
     element moves the EH weight by no more than its stated 1-sigma (the fit's interval)."""
-    base, sd, moves = _leave_one_imputed_out(load_case(EARTH), n=6)
-    assert "Bi" in moves
+    case = load_case(EARTH)
+    # Bi is excluded by the case (a volatile chalcophile whose EH and ordinary-chondrite
+    # values are all imputed; see the slow tests below and the case's README)
+    assert "Bi" in case.exclude
+    base, sd, moves = _leave_one_imputed_out(case, n=6)
+    assert "Bi" not in moves
     worst = max(moves, key=moves.get)
     assert moves[worst] <= max(sd, 1e-3), (worst, moves[worst], sd)
 
 
 @pytest.mark.slow
-@pytest.mark.xfail(strict=True, reason="known: without the isotope constraints the EH "
-                   "weight hinges on EH's imputed Bi (0.90 -> 0.56, 1.5 sigma; measured "
-                   "for issue 12)")
 def test_no_weight_hinges_on_one_imputed_value_without_isotopes():
+    """Without the isotope constraints (the chemistry alone decides the EH weight of CV +
+    EH): no single imputed element moves it by more than its 1-sigma. Measured 2026-12-02:
+    EH 0.44 +- 0.15, the largest move 0.057 (F), 60 elements."""
     base, sd, moves = _leave_one_imputed_out(replace(load_case(EARTH), isotopes={}))
     worst = max(moves, key=moves.get)
     assert moves[worst] <= sd, (worst, moves[worst], sd)
+
+
+@pytest.mark.slow
+def test_why_the_earth_case_excludes_bi():
+    """With Bi fitted (the case's exclusion lifted) and no isotope constraints, the imputed
+    Bi of EH alone moves the EH weight of CV + EH by more than its 1-sigma. Measured
+    2026-12-02: EH 0.90 +- 0.23 -> 0.44 without Bi (move 0.46)."""
+    case = load_case(EARTH)
+    case = replace(case, isotopes={}, exclude=tuple(e for e in case.exclude if e != "Bi"))
+    p = compile_problem(case).subset(["CV", "EH"])
+    j = list(p.elements).index("Bi")
+    assert j in p.fit_index and p.imputed[1, j] and not p.imputed[0, j]
+    base, sd, moves = _leave_one_imputed_out(case)
+    assert max(moves, key=moves.get) == "Bi"
+    assert moves["Bi"] > sd, (moves["Bi"], sd)
