@@ -5,8 +5,9 @@ the two READMEs' isotope sections.
 Published readings compared with (from memory): the Earth is isotopically closest to the
 enstatite chondrites in every system (Javoy 1995, Geophys. Res. Lett. 22, 2219; Dauphas
 2017, Nature 541, 521); Mars lies between the ordinary and the enstatite chondrites
-(Sanloup et al. 1999, PEPI 112, 43: 45 % EH + 55 % H from oxygen). The numbers asserted
-are planetmix's own, measured with the library's recalled group values.
+(Sanloup et al. 1999, PEPI 112, 43: 45 % EH + 55 % H from oxygen; Brasser et al. 2018,
+GRL 45, 5908, abstract read: 68 % enstatite + 32 % ordinary chondrite by mass). The other
+numbers asserted are planetmix's own, measured with the library's recalled group values.
 """
 
 from __future__ import annotations
@@ -92,9 +93,13 @@ def test_earth_four_systems_ranking():
 def test_mars_three_systems_ranking():
     """README: with Delta17O the best Mars is L 0.32 + EH 0.68, H + EH at ΔBIC 5.3, and
     no hypothesis without EH within ΔBIC 10."""
-    ranking = screen(load_case(ROOT / "mars" / "case_isotopes.toml")).table
+    result = screen(load_case(ROOT / "mars" / "case_isotopes.toml"))
+    ranking = result.table
     ok = ranking[ranking["status"] != "infeasible"]
     assert ok.iloc[0]["components"] == "L+EH"
+    # Brasser et al. (2018, GRL 45, 5908; abstract read): 68 % EC + 32 % OC by mass
+    l_eh = next(f for f in result.fits if f.components == ("L", "EH"))
+    assert l_eh.mass_fractions["EH"] == pytest.approx(0.68, abs=0.01)
     best = ok["bic"].min()
     h_eh = ok[ok["components"] == "H+EH"]["bic"].iloc[0]
     assert h_eh - best == pytest.approx(5.3, abs=0.2)
