@@ -8,7 +8,7 @@ needed: for each element ``X`` of a body, with reference element ``R`` and norma
 
 against the 50% condensation temperature of ``X`` (docs/model.md, section 1). This is the
 quantity the engine fits (:func:`inversion.model.compile_problem` computes the same ratio
-with the CI normaliser).
+with the case's normaliser, CI unless ``[target] normaliser`` names another).
 
 Figure conventions: temperature falls to the right on a logarithmic axis; geochemical
 classes by colour and marker (the Okabe & Ito 2008 colour-blind-safe colours, each class
@@ -221,6 +221,8 @@ class FitTrend:
         The body the fit describes (the result's title).
     model : DataFrame
         ``element``, ``tc50`` [K], ``model`` [dex] (the fit's value for each element).
+    normaliser : str
+        The normalising composition of the fit's abundances (fit.json ``normaliser``).
     """
 
     form: str
@@ -229,6 +231,7 @@ class FitTrend:
     condensation_table: str
     label: str
     model: pd.DataFrame
+    normaliser: str = "CI"
 
 
 def read_fit_trend(folder: str | Path) -> FitTrend:
@@ -259,7 +262,8 @@ def read_fit_trend(folder: str | Path) -> FitTrend:
                     reference=str(prov.get("reference_element", "Mg")),
                     condensation_table=str(prov.get("condensation_table", "lodders2003")),
                     label=str(d.get("title") or folder.name),
-                    model=resid[["element", "tc50", "model"]].copy())
+                    model=resid[["element", "tc50", "model"]].copy(),
+                    normaliser=str(d.get("normaliser") or prov.get("normaliser") or "CI"))
 
 
 def _tc_label(table: str) -> str:
@@ -574,9 +578,10 @@ def _diagram(parser: argparse.ArgumentParser):
         norm = resolve_composition(args.normaliser)
         fit = read_fit_trend(args.fit) if args.fit else None
         if fit is not None:
-            if norm.name != "CI" or fit.reference != args.reference:
-                raise InputError(f"the fit is normalised to CI and {fit.reference}; draw it "
-                                 f"with --normaliser CI --reference {fit.reference}",
+            if norm.name != fit.normaliser or fit.reference != args.reference:
+                raise InputError(f"the fit is normalised to {fit.normaliser} and "
+                                 f"{fit.reference}; draw it with --normaliser "
+                                 f"{fit.normaliser} --reference {fit.reference}",
                                  file=args.fit, field="--fit")
         pts = diagram_table(tables, reference=args.reference, normaliser=norm,
                             condensation_table=args.condensation_table)

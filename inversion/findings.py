@@ -7,7 +7,10 @@
   with a separate slope for the chalcophile and siderophile elements (form
   ``kinked-split``, the same building blocks, core and late accretion), with the slope
   difference, its 1-sigma from the nested fit's Gauss-Newton covariance, the statistic
-  and its p-value (chi2 with one degree of freedom under the null);
+  and its p-value (chi2 with one degree of freedom under the null; scaled by the reduced
+  chi2 and referred to F when the misfit exceeds the stated uncertainties); from two
+  sampled posteriors, the posterior of the difference and the LOO comparison
+  (:func:`class_test_posterior`, not yet called by the sampler);
 - the highly siderophile excess as a late-accretion mass;
 - the elements that sit off the fitted model (|z| > 3: residual after volatility, core
   and late accretion), with size, direction and geochemical class;
@@ -34,8 +37,8 @@ from .fit import FitResult, FitSettings, fit_problem
 from .model import Problem
 from .volatility import SPLIT_FORM, get_form, log10_retained
 
-__all__ = ["findings", "weighted_slope", "class_test", "OUTLIER_Z", "CLASS_TEST_SIGMA",
-           "ONSET_TOLERANCE_DEX"]
+__all__ = ["findings", "weighted_slope", "class_test", "class_test_posterior", "OUTLIER_Z",
+           "CLASS_TEST_SIGMA", "ONSET_TOLERANCE_DEX", "CIRCULARITY"]
 
 OUTLIER_Z = 3.0
 #: Significance [sigma, two-sided Normal equivalent] at which the classes are said to differ.
@@ -44,6 +47,18 @@ CLASS_TEST_SIGMA = 3.0
 ONSET_TOLERANCE_DEX = 0.01
 #: Building blocks with a smaller weight are left out of the nested (split) fit.
 _SUPPORT_WEIGHT = 1e-6
+#: The class test scales LR by the reduced chi2 when the nested fit's goodness-of-fit
+#: p-value (chi2 with n - p degrees of freedom) falls below this.
+MISFIT_P = 0.05
+#: The nested fit also starts from the common fit with slope_offset moved by this [dex/K].
+_OFFSET_START = 5e-4
+#: When the partition coefficients are calibrated on the Earth with one volatility trend,
+#: the class test of the Earth (and of any body fitted with those D) is partly circular.
+CIRCULARITY = ("the default partition coefficients are calibrated on the Earth (McDonough "
+               "2003 core over McDonough & Sun 1995 mantle), which assumes the Earth's "
+               "siderophile depletion is core formation on top of one volatility trend: for "
+               "the Earth, and for bodies fitted with these D, the test is then partly "
+               "circular")
 
 
 def class_test(p: Problem, result: FitResult, settings: FitSettings | None = None
@@ -53,8 +68,20 @@ def class_test(p: Problem, result: FitResult, settings: FitSettings | None = Non
     The nested model ``kinked-split`` adds ``slope_offset`` to the slope of the
     chalcophile and siderophile elements; it is fitted on the building blocks of
     ``result`` with non-zero weight (a fit on fewer blocks can only fit worse, so the
-    statistic is conservative). ``LR = chi2_common - chi2_split`` follows chi2(1) under
-    the null; the significance is the Normal quantile of its p-value (sqrt(LR)).
+    statistic is conservative), started from the common fit itself (``slope_offset`` 0,
+    so the nested optimum is never worse than the common one) and from the common fit
+    with the offset moved by +-:data:`_OFFSET_START` besides the fit's own profile starts
+    (the misfit is not convex in ``slope_offset``).
+
+    ``LR = chi2_common - chi2_split`` follows chi2(1) under the null when the stated
+    variances are right. When the nested fit's misfit rejects them (goodness-of-fit
+    p-value below :data:`MISFIT_P`: the model is not exact, e.g. partition coefficients
+    off their true values), LR is scaled by the reduced chi2 ``s2 = chi2_split / (n - p)``
+    and referred to F(1, n - p), and the
+    uncertainty of the difference is inflated by ``sqrt(s2)`` (the quasi-likelihood form
+    of the test, common practice; without it, scatter the common trend cannot absorb
+    is read as a class difference). The significance is the two-sided Normal quantile of
+    the p-value.
 
     Parameters
     ----------
@@ -70,8 +97,9 @@ def class_test(p: Problem, result: FitResult, settings: FitSettings | None = Non
     dict
         JSON-ready: ``status`` (``done`` or ``not run``), ``slope_difference_dex_per_1000K``
         (chalcophile+siderophile minus lithophile), ``uncertainty`` (1-sigma),
-        ``uncertainty_method``, ``lr_statistic``, ``p_value``, ``significance_sigma``,
-        ``threshold_sigma``, ``differ`` and ``statement``.
+        ``uncertainty_method``, ``lr_statistic``, ``scatter_scale`` (``s2``),
+        ``p_value``, ``significance_sigma``, ``threshold_sigma``, ``differ`` and
+        ``statement``.
     """
     if p.volatility_form != "kinked" or not result.feasible:
         return {"status": "not run",
@@ -84,17 +112,38 @@ def class_test(p: Problem, result: FitResult, settings: FitSettings | None = Non
     n_met, n_lit = int((metal & depleted).sum()), int((~metal & depleted).sum())
     support = [c for c in result.components if result.weights.get(c, 0.0) > _SUPPORT_WEIGHT]
     ps = replace(p, volatility_form=SPLIT_FORM).subset(support)
-    r2 = fit_problem(ps, settings or FitSettings(cmf_range=result.settings.cmf_range))
+    starts = []
+    if result.u:
+        u = np.asarray(result.u, float)
+        K = len(result.components)
+        u_sub = tuple(u[[result.components.index(c) for c in support]].tolist()
+                      + u[K:].tolist())
+        starts = [replace(result, components=tuple(support), u=u_sub,
+                          volatility={"T0": result.volatility["T0"],
+                                      "slope": result.volatility["slope"],
+                                      "slope_offset": off})
+                  for off in (0.0, -_OFFSET_START, _OFFSET_START)]
+    r2 = fit_problem(ps, settings or FitSettings(cmf_range=result.settings.cmf_range),
+                     starts=starts)
     d = 1000.0 * r2.volatility["slope_offset"]
     lr = max(0.0, result.chi2 - r2.chi2)
-    pval = float(stats.chi2.sf(lr, 1))
-    sig = math.sqrt(lr)
+    dof = max(r2.n_elements - r2.n_params, 1)
+    # the stated variances are trusted unless the nested fit's misfit rejects them
+    fit_p = float(stats.chi2.sf(r2.chi2, dof))
+    s2 = r2.chi2 / dof if fit_p < MISFIT_P else 1.0
+    if s2 > 1.0:
+        pval = float(stats.f.sf(lr / s2, 1, dof))
+    else:
+        pval = float(stats.chi2.sf(lr, 1))
+    sig = float(stats.norm.isf(pval / 2.0)) if pval > 0 else math.sqrt(lr / s2)
     q = r2.intervals.get("quantities", {}).get("volatility:slope_offset", {})
-    sd = 1000.0 * float(q.get("sd", float("nan")))
+    sd = 1000.0 * float(q.get("sd", float("nan"))) * math.sqrt(s2)
     method = "Gauss-Newton covariance of the nested fit (Laplace, delta chi2 = 1)"
     if not (math.isfinite(sd) and sd > 0):
-        sd = abs(d) / sig if sig > 0 else float("nan")
+        sd = abs(d) / math.sqrt(lr / s2) if lr > 0 else float("nan")
         method = "profile chi2 curvature: |difference| / sqrt(LR)"
+    if s2 > 1.0:
+        method += f", inflated by sqrt(reduced chi2) = {math.sqrt(s2):.2f}"
     differ = sig >= CLASS_TEST_SIGMA
     slope = 1000.0 * result.volatility["slope"]
     statement = (f"classes differ by {d:+.2f} +- {sd:.2f} dex per 1000 K (chalcophile and "
@@ -103,17 +152,72 @@ def class_test(p: Problem, result: FitResult, settings: FitSettings | None = Non
                  f"{d:+.2f} +- {sd:.2f} dex per 1000 K, {sig:.1f} sigma)")
     return {"status": "done", "common_slope_dex_per_1000K": slope,
             "slope_difference_dex_per_1000K": d, "uncertainty": sd,
-            "uncertainty_method": method, "lr_statistic": lr, "p_value": pval,
-            "significance_sigma": sig, "threshold_sigma": CLASS_TEST_SIGMA,
+            "uncertainty_method": method, "lr_statistic": lr, "scatter_scale": s2,
+            "misfit_p_value": fit_p,
+            "reference_distribution": (f"F(1, {dof}) of LR / {s2:.3g}" if s2 > 1.0
+                                       else "chi2(1)"),
+            "p_value": pval, "significance_sigma": sig, "threshold_sigma": CLASS_TEST_SIGMA,
             "differ": bool(differ), "chi2_common": result.chi2, "chi2_split": r2.chi2,
             "split_components": support,
             "n_depleted": {"lithophile": n_lit, "chalcophile_siderophile": n_met},
-            "circularity": "the default partition coefficients are calibrated on the Earth "
-                           "(McDonough 2003 core over McDonough & Sun 1995 mantle), which "
-                           "assumes the Earth's siderophile depletion is core formation on "
-                           "top of one volatility trend: for the Earth, and for bodies "
-                           "fitted with these D, the test is partly circular",
+            "circularity": CIRCULARITY,
             "statement": statement}
+
+
+def class_test_posterior(common: Any, split: Any, *, offset_name: str = "slope_offset",
+                         var_name: str | None = None) -> dict[str, Any]:
+    """The Bayesian class test from two sampled posteriors (not yet wired to the sampler).
+
+    Parameters
+    ----------
+    common, split : arviz.InferenceData
+        Posteriors of the common-trend model (``kinked``) and of the class-split model
+        (``kinked-split``) of the same observations, each with a ``log_likelihood`` group
+        (pointwise, one value per element).
+    offset_name : str
+        The split model's posterior variable of the slope difference [dex/K].
+    var_name : str, optional
+        The log-likelihood variable, when a group holds more than one.
+
+    Returns
+    -------
+    dict
+        JSON-ready: ``slope_difference_dex_per_1000K`` (posterior ``mean``, ``sd``, ``p5``,
+        ``p95`` and ``prob_positive``); ``loo`` with each model's ``elpd_loo`` and the
+        difference ``elpd_split_minus_common`` with its standard error ``dse`` (from the
+        pointwise differences), ``pareto_k_max`` of each; ``prefers`` (``split`` when the
+        difference exceeds 2 ``dse``, ``common`` when below -2 ``dse``, else
+        ``neither``) and ``statement``.
+    """
+    import arviz as az
+
+    if offset_name not in split.posterior:
+        raise ValueError(f"the split posterior has no variable {offset_name!r}")
+    draws = 1000.0 * np.asarray(split.posterior[offset_name], float).ravel()
+    lo, hi = np.percentile(draws, [5.0, 95.0])
+    post = {"mean": float(draws.mean()), "sd": float(draws.std(ddof=1)), "p5": float(lo),
+            "p95": float(hi), "prob_positive": float((draws > 0).mean())}
+    loos = {k: az.loo(d, pointwise=True, var_name=var_name)
+            for k, d in (("common", common), ("split", split))}
+    pw = {k: np.asarray(v.loo_i, float).ravel() for k, v in loos.items()}
+    if pw["common"].size != pw["split"].size:
+        raise ValueError("the two posteriors have different numbers of observations")
+    diff = pw["split"] - pw["common"]
+    elpd = float(diff.sum())
+    dse = float(math.sqrt(diff.size * diff.var(ddof=1))) if diff.size > 1 else float("nan")
+    prefers = ("split" if elpd > 2 * dse else "common" if elpd < -2 * dse else "neither")
+    words = {"split": "the class-split trend predicts better", "common": "the common trend "
+             "predicts better", "neither": "neither model predicts better"}[prefers]
+    statement = (f"posterior slope difference {post['mean']:+.2f} +- {post['sd']:.2f} dex per "
+                 f"1000 K (90% {post['p5']:+.2f} to {post['p95']:+.2f}); LOO: {words} "
+                 f"(elpd difference {elpd:+.1f} +- {dse:.1f})")
+    return {"slope_difference_dex_per_1000K": post,
+            "loo": {"elpd_loo": {k: float(v.elpd_loo) for k, v in loos.items()},
+                    "elpd_split_minus_common": elpd, "dse": dse,
+                    "pareto_k_max": {k: float(np.nanmax(np.asarray(v.pareto_k)))
+                                     for k, v in loos.items()}},
+            "prefers": prefers, "statement": statement,
+            "status": "computed from given posteriors; not yet wired to planetmix sample"}
 
 
 def _onset(p: Problem, result: FitResult) -> dict[str, Any]:
@@ -236,7 +340,12 @@ def summary_lines(f: dict[str, Any]) -> list[str]:
             extra = f", {la['mass_kg']:.3g} kg" if "mass_kg" in la else ""
             lines.append(f"late accretion: {100 * la['fraction_of_mantle']:.3g}% of the "
                          f"mantle ({100 * la['fraction_of_planet']:.3g}% of the planet{extra})")
-    for o in f.get("off_trend", []):
-        lines.append(f"off trend: {o['element']} ({o['geochemical_class']}) {o['direction']} by "
-                     f"{o['offset_dex']:+.2f} dex (z = {o['z']:+.1f})")
+    off = f.get("off_trend", [])
+    if off:
+        lines.append(f"off trend (|z| > {OUTLIER_Z:g}; {off[0]['basis']}):")
+    for o in off:
+        where = "above" if o["direction"] == "above model" else "below"
+        lines.append(f"  {o['element']}, {o['geochemical_class'].replace('_', ' ')}, lies "
+                     f"{abs(o['offset_dex']):.2f} dex {where} the model (z = {o['z']:+.1f}"
+                     f"{'' if o['fitted'] else '; not fitted'})")
     return lines

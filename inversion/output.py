@@ -227,19 +227,21 @@ def case_provenance(case: Any, p: Any, *, tables: list[str] | None = None,
     """Provenance of a result computed from a case file and its compiled problem.
 
     Records the case and target files, the reference element, the condensation table,
-    the iron split, the partition coefficients in use and the building blocks, on top of
-    :func:`provenance`; ``tables`` and ``extra`` add what the method itself used.
+    the normaliser of the abundances (``normaliser``), the iron split, the partition
+    coefficients in use and the building blocks, on top of :func:`provenance`;
+    ``tables`` and ``extra`` add what the method itself used.
     """
     core = ({"mantle_FeO_wt": case.core.mantle_FeO_wt}
             if case.core.mantle_FeO_wt is not None else {"dIW": case.core.dIW})
     info = {"case_file": case.path, "target_table": case.target.path,
             "reference_element": p.reference, "condensation_table": p.condensation_table,
-            "iron_split": core,
+            "normaliser": getattr(p, "normaliser", "CI"), "iron_split": core,
             "partition_coefficients": dict(zip(p.elements, map(float, p.D), strict=True)),
             "uncertainty_defaulted": list(case.target.uncertainty_defaulted)}
     info.update(extra or {})
     return provenance(
         tables=[p.condensation_table, "mcdonough2003", "mcdonoughsun1995", "walker2009",
                 *(tables or [])],
-        component_names=list(p.components) + ([p.late_name] if p.late_name else []) + ["CI"],
+        component_names=list(p.components) + ([p.late_name] if p.late_name else [])
+        + list(dict.fromkeys(["CI", getattr(p, "normaliser", "CI")])),
         extra=info)

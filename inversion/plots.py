@@ -10,7 +10,8 @@ marker shape so that the figures read in grey scale as well.
 
 Figures
 -------
-- :func:`volatility_diagram`: log10 of the CI- and reference-normalised abundance against
+- :func:`volatility_diagram`: log10 of the normaliser- (CI unless named) and
+  reference-normalised abundance against
   the 50% condensation temperature (hot on the left), coloured by geochemical class, with
   cosmochemical classes as labelled bands, uncertainty bars, the fitted pattern (and its
   credible band when draws exist) and the flagged outliers labelled.
@@ -125,13 +126,15 @@ def volatility_diagram(
     tc_table: str = "lodders2003",
     title: str | None = None,
     interval_label: str = "90% credible interval",
+    normaliser: str = "CI",
 ) -> Figure:
     """The volatility diagram (docs/model.md section 1).
 
     Parameters
     ----------
     residuals : DataFrame
-        Columns ``element``, ``tc50`` [K], ``observed`` and ``model`` (log10 of the CI- and
+        Columns ``element``, ``tc50`` [K], ``observed`` and ``model`` (log10 of the
+        normaliser- and
         reference-normalised abundance, dex), ``sigma`` [dex], ``fitted`` (bool), ``flag``
         (text; non-empty and not ``not observed`` marks an outlier). Optional ``model_lo``
         and ``model_hi`` (dex) give a credible interval of the model per element.
@@ -147,6 +150,9 @@ def volatility_diagram(
     title : str, optional
     interval_label : str
         Legend text of the model's interval.
+    normaliser : str
+        Name of the normalising composition of ``observed`` and ``model`` (the y-axis
+        label; the fit's ``normaliser``, CI unless the case names another).
 
     Returns
     -------
@@ -240,8 +246,9 @@ def volatility_diagram(
         ax.set_xlim(x_hi, x_lo)
         ax.set_xlabel(_tc_label(tc_table) + "; hot on the left")
         r = r"\mathrm{" + reference + "}"
+        n = r"\mathrm{" + normaliser.replace("_", r"\_").replace(" ", r"\ ") + "}"
         ax.set_ylabel(rf"$\log_{{10}}\,[(\mathrm{{X}}/{r})_{{\mathrm{{sample}}}}\,/\,"
-                      rf"(\mathrm{{X}}/{r})_{{\mathrm{{CI}}}}]$")
+                      rf"(\mathrm{{X}}/{r})_{{{n}}}]$")
         if title:
             ax.set_title(title, loc="left", fontsize=9)
         handles, labels = ax.get_legend_handles_labels()

@@ -203,6 +203,7 @@ def _fit_report(folder: Path) -> Report:
     resid = _read_csv(folder / "residuals.csv")
     prov = d.get("provenance") or {}
     ref = prov.get("reference_element", "Mg")
+    norm = str(d.get("normaliser") or prov.get("normaliser") or "CI")
     rep = Report(title=d.get("title", folder.name), kind="fit", folder=str(folder),
                  provenance=prov)
     status = d.get("status", "?")
@@ -279,13 +280,13 @@ def _fit_report(folder: Path) -> Report:
     if len(resid):
         ctab = prov.get("condensation_table", "lodders2003")
         rep.figures.append(("Volatility diagram", "Observed (symbols, 1-sigma bars) and "
-                            "modelled (black ticks) abundances, CI- and "
+                            f"modelled (black ticks) abundances, {norm}- and "
                             f"{ref}-normalised, against the 50% condensation temperature; "
                             "the blue line is the fitted volatility trend through the "
                             "lithophile model points.",
                             lambda: plots.volatility_diagram(resid, reference=ref,
                                                              volatility=vol, tc_table=ctab,
-                                                             title=title)))
+                                                             title=title, normaliser=norm)))
         rep.figures.append(("Residuals by element", "z = (observed - model)/sigma, elements "
                             "ordered by condensation temperature.",
                             lambda: plots.residuals_plot(resid, title=title)))
@@ -474,21 +475,22 @@ def _findings_lines(f: dict[str, Any]) -> list[str]:
     out = []
     rl = f.get("refractory_lithophile_level")
     if rl:
-        out.append(f"Refractory lithophile elements sit at {_fmt(rl['factor'], 3)} x CI "
+        out.append(f"Refractory lithophile elements sit at {_fmt(rl['factor'], 3)} x "
+                   f"{rl.get('normaliser', 'CI')} "
                    f"(log10 {_fmt(rl['log10_relative_to_CI'], 3)} ± "
                    f"{_fmt(rl['uncertainty_dex'], 2)} dex; {rl.get('basis', '')}).")
-    vs = f.get("volatility_slopes") or {}
-    for name in ("lithophile", "chalcophile_siderophile"):
-        s = vs.get(name)
-        if s:
-            out.append(f"Volatility slope of the {name.replace('_', '/')} moderately and "
-                       f"highly volatile elements: {_fmt(s['slope_dex_per_1000K'], 3)} ± "
-                       f"{_fmt(s['uncertainty'], 2)} dex per 1000 K (n = {s['n']}).")
-    diff = vs.get("difference")
-    if diff:
-        out.append(f"Difference of the two slopes: {_fmt(diff['value'], 3)} ± "
-                   f"{_fmt(diff['uncertainty'], 2)} ({_fmt(diff['significance_sigma'], 2)} "
-                   "sigma).")
+    ci = f.get("class_independence") or {}
+    if ci.get("status") == "done":
+        out.append(f"Volatility and geochemical class: {ci['statement']} (likelihood ratio "
+                   f"{_fmt(ci['lr_statistic'], 3)}, p = {_fmt(ci['p_value'], 3)}; threshold "
+                   f"{_fmt(ci['threshold_sigma'], 2)} sigma).")
+        if ci.get("circularity"):
+            out.append(f"Note on the class test: {ci['circularity']}.")
+    elif ci.get("status"):
+        out.append(f"Class test not run: {ci.get('reason', '')}.")
+    onset = f.get("volatility_onset") or {}
+    if onset.get("warning"):
+        out.append(f"Warning: {onset['warning']}.")
     la = f.get("late_accretion")
     if la:
         out.append(f"Late accretion ({la.get('component')}): "
@@ -497,8 +499,11 @@ def _findings_lines(f: dict[str, Any]) -> list[str]:
                       f"({_fmt(la.get('mass_kg'))} kg)" if la.get("fraction_of_planet")
                       is not None else "") + ".")
     for o in f.get("off_trend") or []:
-        out.append(f"{o['element']} lies {o['direction']} by {_fmt(o['offset_dex'], 2)} dex "
-                   f"(z = {_fmt(o['z'], 2)}{'' if o.get('fitted') else '; not fitted'}).")
+        cls = f" ({o['geochemical_class'].replace('_', ' ')})" if o.get("geochemical_class") \
+            else ""
+        out.append(f"{o['element']}{cls} lies {o['direction']} by {_fmt(o['offset_dex'], 2)} "
+                   f"dex (z = {_fmt(o['z'], 2)}{'' if o.get('fitted') else '; not fitted'}; "
+                   f"{o.get('basis', 'residual of the fitted model')}).")
     return out
 
 
@@ -623,6 +628,7 @@ def _sample_report(folder: Path) -> Report:
     meta = _read_json(folder / "sample.json")
     prov = meta.get("provenance") or {}
     ref = prov.get("reference_element", meta.get("reference_element", "Mg"))
+    norm = str(prov.get("normaliser") or meta.get("normaliser") or "CI")
     rep = Report(title=meta.get("title", folder.name), kind="sample", folder=str(folder),
                  provenance=prov)
     title = rep.title
@@ -685,12 +691,14 @@ def _sample_report(folder: Path) -> Report:
             vol = {"form": form, **{n: float(np.median(draws[n])) for n in names}}
     if resid is not None and len(resid):
         ctab = prov.get("condensation_table", "lodders2003")
-        rep.figures.append(("Volatility diagram", "Observed abundances (symbols) with the "
+        rep.figures.append(("Volatility diagram", f"Observed abundances ({norm}- and "
+                            f"{ref}-normalised; symbols) with the "
                             "posterior model (black ticks: medians; grey bars: 90% "
                             "credible intervals) and the volatility trend with its 90% band.",
                             lambda: plots.volatility_diagram(
                                 resid, reference=ref, volatility=vol if form else None,
-                                volatility_draws=vol_draws, tc_table=ctab, title=title)))
+                                volatility_draws=vol_draws, tc_table=ctab, title=title,
+                                normaliser=norm)))
         if "z" in resid.columns:
             rep.figures.append(("Residuals by element", "Posterior-predictive z-scores: "
                                 "(observed - median model) / predictive spread.",

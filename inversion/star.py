@@ -55,7 +55,7 @@ from .handoff import PlanetDraws, planet_draws
 from .model import Problem, _core_split, default_partition
 from .options import check_option
 from .planet import assemble
-from .volatility import FORMS, get_form, log10_retained
+from .volatility import CASE_FORMS, get_form, log10_retained
 
 __all__ = ["STAR_ELEMENTS", "CAUTION", "EARTH_PATTERN_LABEL", "EARTH_MANTLE_FEO_WT",
            "EARTH_EXCLUDE", "Pattern", "StarSettings", "StarInput", "StarModel",
@@ -149,7 +149,7 @@ def earth_calibrated_pattern(form: str = "kinked",
     from .fit import fit_problem
     from .model import compile_problem
 
-    check_option("volatility form", form, FORMS)
+    check_option("volatility form", form, CASE_FORMS)
     check_option("condensation table", condensation_table, CONDENSATION_TABLES)
     bse = components.load("BSE_MS95")
     ci = components.load("CI")
@@ -208,7 +208,7 @@ def read_pattern(path: str | Path) -> Pattern:
     if not isinstance(vol, dict) or "form" not in vol:
         raise InputError("no 'volatility' object with a 'form'; give a fit.json or "
                          "sample.json result", file=file, field="volatility")
-    form = check_option("volatility form", vol["form"], FORMS, file=file,
+    form = check_option("volatility form", vol["form"], CASE_FORMS, file=file,
                         field="volatility.form")
     params = []
     for name in get_form(form).params:

@@ -14,6 +14,7 @@ from inversion.exceptions import InputError
 from inversion.findings import class_test, findings
 from inversion.fit import FitSettings, fit_problem
 from inversion.model import forward
+from inversion.solver import isotope_prediction
 from inversion.volatility import SPLIT_FORM, log10_retained
 
 ROOT = Path(__file__).resolve().parents[2]
@@ -23,21 +24,41 @@ EARTH = ROOT / "case_studies" / "earth" / "case.toml"
 COMMON = FitSettings(intervals=False)
 
 
-def synthetic_body(p, w, vol, rng, *, offset=0.0, d_scatter_dex=0.0, sigma_dex=None, lam=0.003):
-    """A body made with one volatility trend (``offset`` = 0) or class-split slopes, true D
-    scattered by ``d_scatter_dex`` around the fitted ones, Normal noise ``sigma_dex`` (the
-    problem's own sigma when None); returns the problem with those observations."""
+def synthetic_body(p, w, vol, rng, *, offset=0.0, d_scatter_dex=0.0, sigma_dex=None, lam=0.003,
+                   blocks="exact"):
+    """A body made with one volatility trend (``offset`` = 0) or class-split slopes.
+
+    True D are scattered by ``d_scatter_dex`` (log-normal) around the fitted ones; the
+    elements get Normal noise ``sigma_dex`` (the problem's own sigma when None); the
+    isotope observations are those of the true mixture plus noise at their stated sigma
+    (keeping the Earth's or the demo's own values would contradict the true weights and
+    force the fit into the isotope window). ``blocks``: ``"exact"`` makes the body from
+    the library's mean blocks and fits it with them known exactly (``Q_sigma_dex`` None);
+    ``"scattered"`` draws each block's ratios from their stated end-member uncertainty
+    (``Q_sigma_dex``) and fits with that uncertainty in the variance, as a real body
+    made of real chondrites would be fitted. Returns the problem with those observations.
+    """
     D = p.D * 10.0 ** (rng.normal(0.0, d_scatter_dex, p.D.size) * (p.D > 0))
     pt = replace(p, volatility_form=SPLIT_FORM)
-    mu = forward(pt, np.asarray(w)[None], np.array([[vol[0], vol[1], offset]]), lam, D=D
-                 )["log10N"][0]
+    if blocks == "scattered":
+        pt = replace(pt, Q=p.Q * 10.0 ** (rng.normal(0.0, 1.0, p.Q.shape) * p.Q_sigma_dex))
+    elif blocks != "exact":
+        raise ValueError(f"blocks must be 'exact' or 'scattered', not {blocks!r}")
+    f = forward(pt, np.asarray(w)[None], np.array([[vol[0], vol[1], offset]]), lam, D=D)
+    mu = f["log10N"][0]
+    v = float(f["v"][0])
+    w = np.asarray(w, float)
+    U = (np.concatenate([(1.0 - v) * w, [v]]) if p.late_name is not None else w)[None]
+    iso = tuple({**d, "value": float(isotope_prediction(p, d, U)[0]
+                                     + rng.normal(0.0, d["sigma"]))} for d in p.isotopes)
     fi = p.fit_index
     sig = p.sigma if sigma_dex is None else np.full(fi.size, sigma_dex)
     y_all = p.y_all.copy()
     s_all = p.sigma_all.copy()
     y_all[fi] = mu[fi] + rng.normal(0.0, sig)
     s_all[fi] = sig
-    return replace(p, y=y_all[fi], sigma=s_all[fi], y_all=y_all, sigma_all=s_all)
+    out = replace(p, y=y_all[fi], sigma=s_all[fi], y_all=y_all, sigma_all=s_all, isotopes=iso)
+    return replace(out, Q_sigma_dex=None) if blocks == "exact" else out
 
 
 def run_class_test(p):
@@ -206,3 +227,117 @@ def test_findings_report_class_and_onset_on_the_demo():
     # the reference element depleted: an onset far above Mg's Tc is flagged
     hot = replace(r, volatility={"T0": 1790.0, "slope": 0.003})
     assert findings(p, hot, run_class_test=False)["volatility_onset"]["above_reference_tc"]
+
+
+@pytest.fixture(scope="module")
+def cm_fit(tmp_path_factory):
+    """The demo case normalised to CM, and its convex fit (no intervals)."""
+    case = load_case(_case(tmp_path_factory.mktemp("cm"), normaliser="CM"))
+    p = compile_problem(case)
+    return case, p, fit_problem(p, COMMON)
+
+
+def test_non_ci_normaliser_on_labels_findings_and_provenance(tmp_path, cm_fit):
+    """The normaliser of the case reaches the provenance block, the diagram's y label,
+    the report's caption and findings, and a diagram overlay drawn on another normaliser
+    is refused (naming the fit's)."""
+    import matplotlib.pyplot as plt
+
+    from inversion import report
+    from inversion.cli import _write_fit, main
+    from inversion.output import case_provenance
+
+    case, p, r = cm_fit
+    prov = case_provenance(case, p)
+    assert prov["normaliser"] == "CM" and "CM" in prov["components"]
+    f = findings(p, r, run_class_test=False)
+    assert f["refractory_lithophile_level"]["normaliser"] == "CM"
+    out = tmp_path / "fit"
+    _write_fit(out, case, p, r, f)
+    rep = report._fit_report(out)
+    (cap, make), = [(c, m) for t, c, m in rep.figures if t == "Volatility diagram"]
+    assert "CM- and Mg-normalised" in cap
+    fig = make()
+    assert r"\mathrm{CM}" in fig.axes[0].get_ylabel()
+    assert r"\mathrm{CI}" not in fig.axes[0].get_ylabel()
+    plt.close(fig)
+    assert any(" x CM " in line for line in rep.findings)
+    assert main(["diagram", "CI", "--fit", str(out), "--out", str(tmp_path / "d.svg")]) == 2
+
+
+def test_report_reads_the_class_test_entry_and_offers_case_forms_to_star_files(tmp_path,
+                                                                                cm_fit):
+    """report.py prints the class test's statement and circularity note (the findings
+    entry ``class_independence``), the onset warning and the class of off-trend
+    elements; a pattern file naming the nested-only split form is refused."""
+    import json
+
+    from inversion.report import _findings_lines
+    from inversion.star import read_pattern
+
+    _, p, r = cm_fit
+    hot = replace(r, volatility={"T0": 1790.0, "slope": 0.003})
+    f = findings(p, hot, run_class_test=False)
+    # the report's words for an off-trend entry as findings() writes it
+    f["off_trend"] = [{"element": "Zn", "z": 4.2, "offset_dex": 0.31, "fitted": True,
+                       "direction": "above model", "geochemical_class": "chalcophile",
+                       "basis": "residual after volatility, core formation and late "
+                                "accretion"}]
+    f["class_independence"] = {"status": "done", "statement": "consistent with one trend",
+                               "lr_statistic": 0.5, "p_value": 0.48, "threshold_sigma": 3.0,
+                               "circularity": "partly circular"}
+    lines = _findings_lines(f)
+    assert any("consistent with one trend" in x and "likelihood ratio" in x for x in lines)
+    assert any("partly circular" in x for x in lines)
+    assert any(x.startswith("Warning: the volatility onset lies above") for x in lines)
+    assert any(x.startswith("Zn (chalcophile) lies above model by 0.31 dex (z = 4.2; "
+                            "residual after volatility") for x in lines)
+    path = tmp_path / "fit.json"
+    path.write_text(json.dumps({"volatility": {"form": SPLIT_FORM, "T0": 1300.0,
+                                               "slope": 0.003, "slope_offset": 0.0}}))
+    with pytest.raises(InputError, match="volatility form") as e:
+        read_pattern(path)
+    offered = str(e.value).split("(got")[0]
+    assert "'kinked'" in offered and SPLIT_FORM not in offered
+
+
+def _regression_posterior(X, y, s, rng, names, chains=4, draws=250):
+    """Exact posterior draws of a linear model y ~ N(X beta, s) under a flat prior, with
+    the pointwise log-likelihood, as an InferenceData."""
+    import arviz as az
+
+    cov = s**2 * np.linalg.inv(X.T @ X)
+    beta = np.linalg.solve(X.T @ X, X.T @ y)
+    b = rng.multivariate_normal(beta, cov, size=(chains, draws))
+    mu = b @ X.T
+    ll = -0.5 * ((y - mu) / s) ** 2 - np.log(s * np.sqrt(2 * np.pi))
+    return az.from_dict(posterior={n: b[..., j] for j, n in enumerate(names)},
+                        log_likelihood={"y": ll}), b
+
+
+@pytest.mark.filterwarnings("ignore:Estimated shape parameter of Pareto")
+@pytest.mark.parametrize("offset", [0.0, 0.002])
+def test_class_test_posterior_from_synthetic_inference_data(offset):
+    """Simulated truth: abundances below a pivot fall with one slope or with an extra
+    slope for the metal class. The posterior summary is that of the draws, and LOO
+    prefers the split model only when the truth has a difference."""
+    from inversion.findings import class_test_posterior
+
+    rng = np.random.default_rng(4)
+    n = 60
+    x = rng.uniform(-600.0, 0.0, n)  # Tc - T0 [K]
+    m = rng.random(n) < 0.5
+    s = 0.05
+    y = 0.002 * x + offset * x * m + rng.normal(0, s, n)
+    common, _ = _regression_posterior(np.column_stack([x]), y, s, rng, ["slope"])
+    split, b = _regression_posterior(np.column_stack([x, x * m]), y, s, rng,
+                                     ["slope", "slope_offset"])
+    c = class_test_posterior(common, split)
+    d = c["slope_difference_dex_per_1000K"]
+    assert d["mean"] == pytest.approx(1000 * b[..., 1].mean(), rel=1e-12)
+    assert d["p5"] < 1000 * offset < d["p95"] or abs(d["mean"] - 1000 * offset) < 3 * d["sd"]
+    if offset:
+        assert c["prefers"] == "split" and c["loo"]["elpd_split_minus_common"] > 0
+    else:
+        assert c["prefers"] != "split"
+    assert "not yet wired" in c["status"]
