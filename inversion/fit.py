@@ -67,12 +67,16 @@ class FitSettings:
     cmf_range: tuple[float, float] | None = None
     intervals: bool = True
     joint: JointSettings = field(default_factory=JointSettings)
-    solver: str = ("profile: k-frozen Gauss-Newton with the exact simplex QP (verified "
-                   "primal-dual active-set iterations, enumeration fallback; cvxpy/CLARABEL "
-                   "above 7 variables) on the volatility grid; polish: Levenberg-Marquardt "
-                   "on all parameters (finite-difference Jacobian through the core fixed "
-                   "point, exact QP steps, restoration of infeasible starts, T0 boxed to "
-                   "the smooth pieces of the kinked forms)")
+    solver: str = ("profile: k-frozen Gauss-Newton with the exact simplex QP (primal "
+                   "active-set method from a feasible vertex, edge midpoint or centre, a "
+                   "warm primal-dual start where a guess exists, enumeration of the active "
+                   "sets where neither verifies; cvxpy/CLARABEL above 7 variables) on the "
+                   "volatility grid; polish: Levenberg-Marquardt on all parameters "
+                   "(finite-difference Jacobian through the core fixed point, exact QP "
+                   "steps, restoration of infeasible starts); kinked forms: 10 iterations "
+                   "on the whole box, then the answers within 20% of their hypothesis' "
+                   "best on the smooth piece of T0 they lie in, moving to the next piece "
+                   "while they end on its edge")
 
     @property
     def record(self) -> dict[str, Any]:
@@ -334,6 +338,78 @@ def _distinct_starts(grid: np.ndarray, chi: np.ndarray, n: int, form: str,
     return out
 
 
+#: Iterations of the first polish stage for the kinked forms (the second stage, on the
+#: smooth pieces of the misfit, converges from there).
+STAGE1_ITERATIONS = 10
+#: Answers within this relative distance of their hypothesis' best after the first stage
+#: go on to the smooth-piece stage; the others keep the first stage's value.
+STAGE2_NEAR = 0.2
+#: Rounds of the smooth-piece stage: an answer that ends on an inner edge of its boxes
+#: is polished again on the pieces around that edge.
+STAGE2_ROUNDS = 6
+#: Smooth pieces on each side of an answer's own piece in the second stage (0: its own
+#: piece, and both pieces when it sits on a corner).
+STAGE2_REACH = 0
+
+
+def _smooth_piece_stages(p: Problem, ps: Problem, rows: np.ndarray, n_hyp: int,
+                         pol: dict[str, np.ndarray], box_lo: np.ndarray,
+                         box_hi: np.ndarray, settings: FitSettings) -> None:
+    """Second stage of the kinked forms, in place: every answer near its hypothesis' best
+    is polished again on the smooth pieces of the misfit around it (boxes of T0 between
+    consecutive condensation temperatures, :func:`inversion.solver.kink_boxes`), so a
+    corner optimum is reached exactly, as a bound of a smooth piece. An answer that ends
+    on an inner edge of the boxes it was given (the optimum may lie beyond) is polished
+    again on the pieces around that edge, up to :data:`STAGE2_ROUNDS` rounds; one still
+    moving after the last round is certified on the form's whole box."""
+    form = get_form(p.volatility_form)
+    j_t0 = form.params.index("T0")
+    B = rows.size
+    hyp_best = np.full(n_hyp, np.inf)
+    np.minimum.at(hyp_best, rows, pol["chi2"])
+    near = np.isfinite(pol["chi2"]) & (pol["chi2"] <= hyp_best[rows] * (1.0 + STAGE2_NEAR)
+                                       + 1e-6)
+    todo = np.flatnonzero(near)
+    for _ in range(STAGE2_ROUNDS):
+        if todo.size == 0:
+            break
+        src, lo2, hi2 = [], [], []
+        for i in todo:
+            for lo, hi in kink_boxes(ps, pol["TH"][i], reach=STAGE2_REACH):
+                src.append(i)
+                lo2.append(lo)
+                hi2.append(hi)
+        src_a = np.array(src)
+        lo2a, hi2a = np.array(lo2), np.array(hi2)
+        pol2 = polish(row_problem(ps, src_a), pol["U"][src_a],
+                      np.clip(pol["TH"][src_a], lo2a, hi2a), settings=settings.joint,
+                      cmf_range=settings.cmf_range, bounds=(lo2a, hi2a))
+        # the union of the boxes each answer was given: its outer T0 edges
+        outer_lo = np.full(B, np.inf)
+        outer_hi = np.full(B, -np.inf)
+        np.minimum.at(outer_lo, src_a, lo2a[:, j_t0])
+        np.maximum.at(outer_hi, src_a, hi2a[:, j_t0])
+        moved = np.zeros(B, dtype=bool)
+        for q, i in enumerate(src_a):
+            if pol2["chi2"][q] <= pol["chi2"][i]:
+                moved[i] |= pol2["chi2"][q] < pol["chi2"][i]
+                pol["chi2"][i] = pol2["chi2"][q]
+                pol["U"][i] = pol2["U"][q]
+                pol["TH"][i] = pol2["TH"][q]
+                box_lo[i], box_hi[i] = lo2a[q], hi2a[q]
+            pol["iterations"][i] += pol2["iterations"][q]
+        t0 = pol["TH"][:, j_t0]
+        span = form.upper[j_t0] - form.lower[j_t0]
+        eps = 1e-6 * span
+        on_edge = (((np.abs(t0 - outer_lo) <= eps) & (outer_lo > form.lower[j_t0] + eps))
+                   | ((np.abs(t0 - outer_hi) <= eps) & (outer_hi < form.upper[j_t0] - eps)))
+        todo = np.flatnonzero(on_edge & moved)
+    # answers still walking after the last round: certify them on the form's whole box
+    # (a bound of a box they were given is no constraint of the problem)
+    box_lo[todo] = np.array(form.lower, float)
+    box_hi[todo] = np.array(form.upper, float)
+
+
 @dataclass(frozen=True)
 class _Start:
     """A starting point of the joint polish and where it came from."""
@@ -383,41 +459,20 @@ def _solve_group(p: Problem, subsets: list[tuple[str, ...]], settings: FitSettin
     ps = row_problem(p.stacked(subsets, 1), rows)
     U0 = np.array([s.u for st in starts for s in st])
     T0 = np.array([s.theta for st in starts for s in st])
-    pol = polish(ps, U0, T0, settings=settings.joint, cmf_range=settings.cmf_range)
     form = get_form(p.volatility_form)
+    kinked = "T0" in form.params
+    # the misfit of a kinked form is only piecewise smooth in T0: there the first stage
+    # only brings each start near its basin (the iterations that crawl along a kink are
+    # left to the second stage, which converges on the smooth pieces)
+    joint1 = (replace(settings.joint, max_iterations=min(settings.joint.max_iterations,
+                                                          STAGE1_ITERATIONS))
+              if kinked else settings.joint)
+    pol = polish(ps, U0, T0, settings=joint1, cmf_range=settings.cmf_range)
     B = rows.size
     box_lo = np.broadcast_to(np.array(form.lower, float), (B, len(form.params))).copy()
     box_hi = np.broadcast_to(np.array(form.upper, float), (B, len(form.params))).copy()
-    if "T0" in form.params:
-        # second stage: the misfit is only piecewise smooth in the kink of the volatility
-        # form; polish every answer again on the smooth pieces around it, so that a
-        # corner optimum is reached exactly (as a bound of a smooth piece)
-        src, lo2, hi2 = [], [], []
-        # only answers near their hypothesis' best (within 1%) can decide its optimum or
-        # its agreement count; the others are left as the first stage found them
-        hyp_best = np.full(len(subsets), np.inf)
-        np.minimum.at(hyp_best, rows, pol["chi2"])
-        near = pol["chi2"] <= hyp_best[rows] * (1.0 + 1e-2) + 1e-6
-        for i in range(B):
-            if not (np.isfinite(pol["chi2"][i]) and near[i]):
-                continue
-            for lo, hi in kink_boxes(ps, pol["TH"][i]):
-                src.append(i)
-                lo2.append(lo)
-                hi2.append(hi)
-        if src:
-            src_a = np.array(src)
-            lo2a, hi2a = np.array(lo2), np.array(hi2)
-            pol2 = polish(row_problem(ps, src_a), pol["U"][src_a],
-                          np.clip(pol["TH"][src_a], lo2a, hi2a), settings=settings.joint,
-                          cmf_range=settings.cmf_range, bounds=(lo2a, hi2a))
-            for q, i in enumerate(src_a):
-                if pol2["chi2"][q] <= pol["chi2"][i]:
-                    pol["chi2"][i] = pol2["chi2"][q]
-                    pol["U"][i] = pol2["U"][q]
-                    pol["TH"][i] = pol2["TH"][q]
-                    box_lo[i], box_hi[i] = lo2a[q], hi2a[q]
-                pol["iterations"][i] += pol2["iterations"][q]
+    if kinked:
+        _smooth_piece_stages(p, ps, rows, len(subsets), pol, box_lo, box_hi, settings)
     out: list[dict[str, Any]] = []
     best_rows = []
     for h in range(len(subsets)):

@@ -5,14 +5,32 @@ The sub-problem (docs/model.md section 9) is, for each of B problems,
 
     minimise ||A u - b||^2  subject to  sum(u) = 1,  u >= 0,  G u <= h.
 
-:func:`solve_batch` solves it exactly by active-set enumeration: the optimum of a convex
-quadratic program is the solution of the equality-constrained problem on its own active
-set, so solving the KKT system for every admissible active set and keeping the best
-feasible candidate returns the global optimum. With a handful of variables (building
-blocks plus the late component) this is a few thousand tiny linear systems, solved
-together in one batched LAPACK call, which is far faster than calling a general QP solver
-thousands of times. :func:`solve_cvxpy` solves the same problem with cvxpy (compiled
-once with Parameters); it serves larger mixtures and checks the exact solver in tests.
+:func:`solve_quadratic_batch` (and :func:`solve_batch`, for a design matrix) solve it with
+a primal active-set method, every row of the batch with its own working set, one batched
+LAPACK call per iteration:
+
+1. with a guessed active set (the joint solver passes the previous step's), a few
+   primal-dual active-set iterations: solve the KKT system on the guessed set, add the
+   most violated inequality or drop the most negative multiplier; a row whose KKT
+   conditions hold is done (a warm guess usually verifies at once);
+2. every other row: a primal active-set method from a feasible point (the feasible vertex
+   or the centre of the simplex with the lowest objective). Each iteration minimises on
+   the working set; if the minimiser is reached and every multiplier is >= 0 the row is
+   optimal, else the most negative multiplier's constraint leaves the set; otherwise the
+   step goes as far as feasibility allows and the blocking constraint enters. The iterate
+   stays feasible and the objective never increases, so the method does not cycle on
+   non-degenerate problems;
+3. rows that neither stage verifies (no feasible vertex or centre, or degenerate problems
+   that run out of iterations) are solved by enumeration of the active sets: the optimum
+   of a convex QP solves the equality-constrained problem on its own active set, so the
+   best feasible KKT solution over all admissible sets is the global optimum.
+
+Every answer of stages 1 and 2 carries a verified KKT certificate (primal feasibility
+within :data:`_FEAS_TOL`, multipliers of the active inequalities >= 0 within a relative
+1e-10, stationarity by the KKT solve); stage 3 is exact by exhaustion. ``QPSolution.
+method`` says which stage answered each row. :func:`solve_cvxpy` solves the same problem
+with cvxpy (compiled once with Parameters); it serves larger mixtures and checks the exact
+solver in tests.
 """
 
 from __future__ import annotations
@@ -25,25 +43,36 @@ import numpy as np
 from .exceptions import SolverError
 
 __all__ = ["solve_batch", "solve_quadratic_batch", "solve_cvxpy", "QPSolution",
-           "MAX_ENUMERATED_VARIABLES"]
+           "MAX_ENUMERATED_VARIABLES", "METHOD_WARM", "METHOD_PRIMAL", "METHOD_ENUMERATION",
+           "METHOD_NONE"]
 
 #: Above this many variables, :func:`solve_batch` is not used (enumeration grows as 2^m).
 MAX_ENUMERATED_VARIABLES = 7
 _FEAS_TOL = 1e-9
 
 
-class QPSolution:
-    """Solutions of a batch: ``u`` (B, m), ``objective`` (B,), ``feasible`` (B,) bool."""
+#: ``QPSolution.method`` codes: which stage answered a row.
+METHOD_WARM, METHOD_PRIMAL, METHOD_ENUMERATION, METHOD_NONE = 1, 2, 3, 0
 
-    __slots__ = ("u", "objective", "feasible", "active")
+
+class QPSolution:
+    """Solutions of a batch: ``u`` (B, m), ``objective`` (B,), ``feasible`` (B,) bool,
+    ``active`` (B, m + g) the active inequalities (``u >= 0`` rows first) and ``method``
+    (B,) int: :data:`METHOD_WARM` or :data:`METHOD_PRIMAL` (verified KKT point),
+    :data:`METHOD_ENUMERATION` (exhaustive), :data:`METHOD_NONE` (infeasible or
+    unsolved)."""
+
+    __slots__ = ("u", "objective", "feasible", "active", "method")
 
     def __init__(self, u: np.ndarray, objective: np.ndarray, feasible: np.ndarray,
-                 active: np.ndarray | None = None) -> None:
+                 active: np.ndarray | None = None, method: np.ndarray | None = None
+                 ) -> None:
         self.u = u
         self.objective = objective
         self.feasible = feasible
-        #: (B, m + g) bool: the active inequalities (``u >= 0`` rows first) at the answer
         self.active = active
+        self.method = (np.where(feasible, METHOD_ENUMERATION, METHOD_NONE)
+                       if method is None else method)
 
 
 @lru_cache(maxsize=64)
@@ -86,11 +115,7 @@ def solve_batch(A: np.ndarray, b: np.ndarray, G: np.ndarray | None = None,
     H = np.einsum("bni,bnj->bij", A, A)
     c = np.einsum("bni,bn->bi", A, b)
     const = np.einsum("bn,bn->b", b, b)
-    m = A.shape[2]
-    g = 0 if G is None else np.shape(G)[1]
-    # active-set iterations from the bare simplex, enumeration where they do not verify
-    return solve_quadratic_batch(H, c, const, G, h,
-                                 guess=np.zeros((A.shape[0], m + g), dtype=bool))
+    return solve_quadratic_batch(H, c, const, G, h)
 
 
 def _kkt_fixed(H: np.ndarray, c: np.ndarray, Gall: np.ndarray, hall: np.ndarray,
@@ -122,11 +147,24 @@ def _kkt_fixed(H: np.ndarray, c: np.ndarray, Gall: np.ndarray, hall: np.ndarray,
     return sol[:, :m], sol[:, m + 1:]
 
 
-def _active_set_iterations(H, c, Gall, hall, act, hscale, max_iter: int = 40):
+def _primal_tol(hall: np.ndarray) -> np.ndarray:
+    return _FEAS_TOL * (1.0 + np.abs(hall).max(axis=1))
+
+
+def _dual_ok(mu: np.ndarray, act: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Whether every active multiplier is >= 0 (relative 1e-10), and the most negative."""
+    mneg = np.where(act, mu, np.inf)
+    least = np.argmin(mneg, axis=1)
+    mmin = mneg[np.arange(mu.shape[0]), least]
+    return ~(mmin < -1e-10 * (1.0 + np.abs(mu).max(axis=1))), least
+
+
+def _active_set_iterations(H, c, Gall, hall, act, hscale, max_iter: int = 12):
     """Primal-dual active-set iterations from ``act``: add the most violated inequality,
     drop the most negative multiplier, until the KKT conditions hold (exact optimum of
     the convex problem) or ``max_iter`` is reached. Returns u, active sets and the mask
-    of rows whose KKT conditions were verified."""
+    of rows whose KKT conditions were verified. Fast from a good guess, but it can cycle
+    from a poor one: those rows go on to :func:`_primal_active_set`."""
     B = H.shape[0]
     act = act.copy()
     done = np.zeros(B, dtype=bool)
@@ -141,11 +179,8 @@ def _active_set_iterations(H, c, Gall, hall, act, hscale, max_iter: int = 40):
         viol = np.where(act[todo], -np.inf, slack)
         worst = np.argmax(viol, axis=1)
         vmax = viol[np.arange(todo.size), worst]
-        mneg = np.where(act[todo], mu, np.inf)
-        least = np.argmin(mneg, axis=1)
-        mmin = mneg[np.arange(todo.size), least]
-        primal_ok = ~(vmax > _FEAS_TOL * (1.0 + np.abs(hall[todo]).max(axis=1)))
-        dual_ok = ~(mmin < -1e-10 * (1.0 + np.abs(mu).max(axis=1)))
+        primal_ok = ~(vmax > _primal_tol(hall[todo]))
+        dual_ok, least = _dual_ok(mu, act[todo])
         fin = np.all(np.isfinite(uu), axis=1)
         ok = primal_ok & dual_ok & fin & (np.abs(uu.sum(axis=1) - 1.0) < 1e-7)
         u[todo[ok]] = uu[ok]
@@ -154,11 +189,90 @@ def _active_set_iterations(H, c, Gall, hall, act, hscale, max_iter: int = 40):
         drop = primal_ok & ~dual_ok & fin
         act[todo[add], worst[add]] = True
         act[todo[drop], least[drop]] = False
-        stuck = ~fin
-        done[todo[stuck]] = False
-        if stuck.all():
+        if not fin.any():
             break
     return u, act, done
+
+
+def _feasible_start(H, c, Gall, hall):
+    """A feasible point per row: of the vertices of the simplex, the midpoints of its
+    edges and its centre, the feasible one with the lowest objective, with its working
+    set (the ``u >= 0`` rows at zero). Returns u (B, m), working sets (B, g) and the mask
+    of rows that have one."""
+    B, m, _ = H.shape
+    cand = _start_points(m)  # (S, m)
+    slack = np.einsum("bgm,jm->bjg", Gall, cand) - hall[:, None, :]
+    feas = np.all(slack <= _primal_tol(hall)[:, None, None], axis=2)  # (B, S)
+    obj = np.einsum("ji,bik,jk->bj", cand, H, cand) - 2 * np.einsum("ji,bi->bj", cand, c)
+    obj = np.where(feas, obj, np.inf)
+    j = np.argmin(obj, axis=1)
+    has = feas[np.arange(B), j]
+    u = cand[j]
+    W = np.zeros(Gall.shape[:2], dtype=bool)
+    W[:, :m] = (u == 0.0) & has[:, None]
+    return u, W, has
+
+
+@lru_cache(maxsize=16)
+def _start_points_cached(m: int) -> bytes:
+    pts = [np.eye(m)[j] for j in range(m)]
+    for j, k in combinations(range(m), 2):
+        x = np.zeros(m)
+        x[[j, k]] = 0.5
+        pts.append(x)
+    pts.append(np.full(m, 1.0 / m))
+    return np.array(pts).tobytes()
+
+
+def _start_points(m: int) -> np.ndarray:
+    return np.frombuffer(_start_points_cached(m)).reshape(-1, m)
+
+
+def _primal_active_set(H, c, Gall, hall, u, W, hscale, max_iter: int):
+    """Primal active-set iterations from the feasible points ``u`` with working sets
+    ``W`` (linearly independent rows, satisfied with equality at ``u``). Returns u, the
+    working sets and the mask of rows that reached a verified KKT point."""
+    B, m, _ = H.shape
+    u = u.copy()
+    W = W.copy()
+    done = np.zeros(B, dtype=bool)
+    live = np.ones(B, dtype=bool)
+    for _ in range(max_iter):
+        todo = np.flatnonzero(live & ~done)
+        if todo.size == 0:
+            break
+        Ht, ct, Gt, ht, Wt, ut = H[todo], c[todo], Gall[todo], hall[todo], W[todo], u[todo]
+        us, mu = _kkt_fixed(Ht, ct, Gt, ht, Wt, hscale[todo])
+        fin = np.all(np.isfinite(us), axis=1)
+        live[todo[~fin]] = False
+        p = np.where(fin[:, None], us - ut, 0.0)
+        # the step's decrease of the objective u'Hu - 2c'u (exact for a quadratic)
+        q_now = np.einsum("bi,bij,bj->b", ut, Ht, ut) - 2 * np.einsum("bi,bi->b", ut, ct)
+        q_new = np.einsum("bi,bij,bj->b", us, Ht, us) - 2 * np.einsum("bi,bi->b", us, ct)
+        us_slack = np.einsum("bgm,bm->bg", Gt, us) - ht
+        us_feas = np.all(us_slack <= _primal_tol(ht)[:, None], axis=1)
+        flat = (np.abs(p).max(axis=1) <= 1e-12) | (
+            (q_now - q_new <= 1e-13 * (hscale[todo] + np.abs(q_now))) & us_feas)
+        stationary = fin & flat
+        dual_ok, least = _dual_ok(mu, Wt)
+        opt = stationary & dual_ok & us_feas
+        u[todo[opt]] = us[opt]
+        done[todo[opt]] = True
+        drop = stationary & ~opt & us_feas
+        W[todo[drop], least[drop]] = False
+        # a step: as far towards the working-set minimiser as feasibility allows
+        move = fin & ~(stationary & us_feas)
+        Ap = np.einsum("bgm,bm->bg", Gt, p)
+        room = np.maximum(ht - np.einsum("bgm,bm->bg", Gt, ut), 0.0)
+        block = (~Wt) & (Ap > 1e-14)
+        ratio = np.where(block, room / np.where(block, Ap, 1.0), np.inf)
+        k = np.argmin(ratio, axis=1)
+        alpha = np.minimum(1.0, ratio[np.arange(todo.size), k])
+        step = move[:, None] * alpha[:, None] * p
+        u[todo] = ut + step
+        add = move & (alpha < 1.0)
+        W[todo[add], k[add]] = True
+    return u, W, done
 
 
 def solve_quadratic_batch(H: np.ndarray, c: np.ndarray, const: np.ndarray,
@@ -166,16 +280,16 @@ def solve_quadratic_batch(H: np.ndarray, c: np.ndarray, const: np.ndarray,
                           guess: np.ndarray | None = None) -> QPSolution:
     """Exact minimisation of ``u' H u - 2 c' u + const`` on the simplex with ``G u <= h``.
 
-    The same active-set enumeration as :func:`solve_batch`, for a quadratic form given
-    directly (``H`` symmetric positive semi-definite, shape (B, m, m); ``c`` (B, m);
-    ``const`` (B,)). The joint solver of :mod:`inversion.solver` uses it for its
-    linearised steps, whose quadratic form is not built from a plain design matrix.
+    ``H`` symmetric positive semi-definite, shape (B, m, m); ``c`` (B, m); ``const`` (B,).
+    The joint solver of :mod:`inversion.solver` uses it for its linearised steps, whose
+    quadratic form is not built from a plain design matrix.
 
     ``guess`` (B, m + g) bool, an active set per row (for instance the one of the
-    previous step), starts primal-dual active-set iterations; a row whose KKT
-    conditions (primal and dual feasibility) are verified has its exact optimum (the
-    problem is convex). Rows that are not verified, and every row without a guess, are
-    solved by enumeration (up to :data:`MAX_ENUMERATED_VARIABLES` variables).
+    previous step), starts a few primal-dual active-set iterations; the rows they do not
+    verify, and every row without a guess, go to the primal active-set method from a
+    feasible vertex or the centre, and what that does not verify to enumeration (up to
+    :data:`MAX_ENUMERATED_VARIABLES` variables; above, such rows are returned
+    infeasible). See the module notes.
     """
     H = np.asarray(H, dtype=float)
     c = np.asarray(c, dtype=float)
@@ -184,6 +298,8 @@ def solve_quadratic_batch(H: np.ndarray, c: np.ndarray, const: np.ndarray,
     if G is None:
         G = np.zeros((B, 0, m))
         h = np.zeros((B, 0))
+    G = np.asarray(G, dtype=float)
+    h = np.asarray(h, dtype=float)
     # all inequality rows: -u <= 0, then G u <= h; normalise rows for a scale-free tolerance
     Gall = np.concatenate([np.broadcast_to(-np.eye(m), (B, m, m)), G], axis=1)
     hall = np.concatenate([np.zeros((B, m)), h], axis=1)
@@ -194,25 +310,38 @@ def solve_quadratic_batch(H: np.ndarray, c: np.ndarray, const: np.ndarray,
     n_ineq = Gall.shape[1]
     hscale = np.trace(H, axis1=1, axis2=2) / m + 1e-300
     ridge = 1e-12 * hscale
+    H_plain = H
     H = H + ridge[:, None, None] * np.eye(m)
-    H_plain = H - ridge[:, None, None] * np.eye(m)
+    u = np.full((B, m), np.nan)
     active = np.zeros((B, n_ineq), dtype=bool)
-    verified_u = np.full((B, m), np.nan)
-    verified = np.zeros(B, dtype=bool)
+    method = np.zeros(B, dtype=int)
     if guess is not None:
-        verified_u, active, verified = _active_set_iterations(
-            H, c, Gall, hall, np.asarray(guess, bool), hscale)
-        if verified.all() or m > MAX_ENUMERATED_VARIABLES:
-            return _finish(verified_u, verified, H_plain, c, const, active)
-        rest = np.flatnonzero(~verified)
-        sub = solve_quadratic_batch(H_plain[rest], c[rest], const[rest], G[rest], h[rest])
-        verified_u[rest] = sub.u
-        active[rest] = sub.active
-        verified[rest] = sub.feasible
-        return _finish(verified_u, verified, H_plain, c, const, active)
-    if m > MAX_ENUMERATED_VARIABLES:
-        raise SolverError(f"{m} variables is too many for enumeration; use solve_cvxpy")
+        uw, aw, ok = _active_set_iterations(H, c, Gall, hall, np.asarray(guess, bool),
+                                            hscale)
+        u[ok], active[ok], method[ok] = uw[ok], aw[ok], METHOD_WARM
+    rest = np.flatnonzero(method == 0)
+    if rest.size:
+        u0, W0, has = _feasible_start(H[rest], c[rest], Gall[rest], hall[rest])
+        sub = rest[has]
+        if sub.size:
+            up, Wp, ok = _primal_active_set(H[sub], c[sub], Gall[sub], hall[sub], u0[has],
+                                            W0[has], hscale[sub], 4 * (m + n_ineq) + 10)
+            u[sub[ok]], active[sub[ok]], method[sub[ok]] = up[ok], Wp[ok], METHOD_PRIMAL
+    rest = np.flatnonzero(method == 0)
+    if rest.size and m <= MAX_ENUMERATED_VARIABLES:
+        ue, fe = _enumerate(H[rest], c[rest], const[rest], Gall[rest], hall[rest],
+                            hscale[rest])
+        u[rest[fe]], method[rest[fe]] = ue[fe], METHOD_ENUMERATION
+        slack = np.einsum("bgm,bm->bg", Gall[rest], np.nan_to_num(ue)) - hall[rest]
+        active[rest] = fe[:, None] & (np.abs(slack) < 1e-7)
+    return _finish(u, method > 0, H_plain, c, const, active, method)
 
+
+def _enumerate(H, c, const, Gall, hall, hscale):
+    """The best feasible KKT solution over every admissible active set (global optimum
+    of the convex problem). Returns u (B, m) and the feasible mask."""
+    B, m, _ = H.shape
+    n_ineq = Gall.shape[1]
     best_obj = np.full(B, np.inf)
     best_u = np.full((B, m), np.nan)
     sets = _active_sets(n_ineq, m - 1)
@@ -267,20 +396,17 @@ def solve_quadratic_batch(H: np.ndarray, c: np.ndarray, const: np.ndarray,
         better = cand < best_obj
         best_obj = np.where(better, cand, best_obj)
         best_u[better] = u[np.arange(B), j][better]
-    feasible = np.isfinite(best_obj)
-    slack = np.einsum("bgm,bm->bg", Gall, np.nan_to_num(best_u)) - hall
-    active = feasible[:, None] & (np.abs(slack) < 1e-7)
-    return _finish(best_u, feasible, H_plain, c, const, active)
+    return best_u, np.isfinite(best_obj)
 
 
 def _finish(u: np.ndarray, feasible: np.ndarray, H: np.ndarray, c: np.ndarray,
-            const: np.ndarray, active: np.ndarray) -> QPSolution:
+            const: np.ndarray, active: np.ndarray, method: np.ndarray) -> QPSolution:
     u = np.where(feasible[:, None], np.clip(u, 0.0, None), np.nan)
     u = u / np.where(feasible, u.sum(axis=1), 1.0)[:, None]
     uu = np.nan_to_num(u)
     obj = np.einsum("bi,bij,bj->b", uu, H, uu) - 2 * np.einsum("bi,bi->b", uu, c) + const
     obj = np.where(feasible, obj, np.inf)
-    return QPSolution(u, obj, feasible, active)
+    return QPSolution(u, obj, feasible, active, np.where(feasible, method, METHOD_NONE))
 
 
 class _CvxpyProblem:
