@@ -1,0 +1,410 @@
+"""Metal/silicate partitioning at (P, T, dIW) and the core split (inversion/partitioning.py).
+
+Reference values are named beside each check: values read in a publication or a typed copy
+of it, published statements read in abstracts, or "from memory" where recalled.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from scipy.optimize import brentq, minimize_scalar
+
+import components
+from inversion import partitioning as pt
+from inversion.exceptions import InputError
+
+EARTH_ELEMENTS = ["Mg", "Si", "Fe", "Ni", "Co", "Al", "Ca", "Ti", "Cr", "V", "Mn", "Na", "S",
+                  "W", "Nb"]
+
+
+def _chondritic_bulk(els: list[str], volatile_from: dict[str, float]) -> np.ndarray:
+    """Bulk masses per unit Mg: CI chondrite ratios (Lodders 2003) for every element but
+    those given (moderately volatile elements, set to the planet's own ratio)."""
+    ci = components.load("CI").composition
+    a = np.array([ci[e] / ci["Mg"] for e in els])
+    for e, v in volatile_from.items():
+        a[els.index(e)] = v
+    return a
+
+
+@pytest.fixture(scope="module")
+def earth():
+    bse = components.load("BSE_MS95").composition
+    # Na and Mn from the McDonough & Sun (1995) mantle (volatile-depleted, lithophile
+    # enough to stay there); S from the bulk Earth of McDonough (2003): 0.635 wt% S,
+    # 15.4 wt% Mg (from memory)
+    a = _chondritic_bulk(EARTH_ELEMENTS, {"Na": bse["Na"] / bse["Mg"],
+                                          "Mn": bse["Mn"] / bse["Mg"],
+                                          "S": 0.00635 / 0.154})
+    return a, pt.compile_chemistry(EARTH_ELEMENTS)
+
+
+def _solve(a, chem, P, dIW, T=None):
+    T = pt.peridotite_liquidus(P) if T is None else T
+    return pt.solve_single_stage(a, P, T, dIW, chem)
+
+
+def _dIW_for_FeO(a, chem, P, feo, T=None):
+    """dIW at which the mantle holds the given FeO mass fraction."""
+    return brentq(lambda d: float(_solve(a, chem, P, d, T)["mantle_FeO_wt"]) - feo,
+                  -4.0, -0.5, xtol=1e-7)
+
+
+# ------------------------------------------------------------------- the regressions
+
+def _logD(source: str, el: str, P: float, T: float, dIW: float) -> float:
+    chem = pt.compile_chemistry(["Fe", el], choice={el: source})
+    x = np.zeros(2)
+    return float(pt.log10_D_molar(chem, np.array(P), np.array(T), np.array(dIW), x)[1])
+
+
+# (source, element, a, b, c, n) as read in the typed copies named in
+# components/data/sources/partitioning.csv; worked by hand below at 40 GPa, 3000 K,
+# dIW = -2: no worked value of the publications could be read, so each check is the
+# published equation evaluated by hand from the read coefficients.
+READ_COEFFICIENTS = [
+    ("fischer2015", "Ni", 0.46, 2700.0, -61.0, 2),
+    ("fischer2015", "Co", 0.36, 1500.0, -33.0, 2),
+    ("fischer2015", "V", -0.3, -5400.0, 0.0, 3),
+    ("fischer2015", "Cr", 0.0, -2900.0, 9.0, 2),
+    ("fischer2015", "Si", 1.3, -13500.0, 0.0, 4),
+    ("siebert2012", "Ni", 1.06, 1553.0, -98.0, 2),
+    ("siebert2012", "Co", 0.13, 2057.0, -57.0, 2),
+    ("rubie2015", "V", -0.48, -5063.0, 0.0, 3),
+    ("rubie2015", "Cr", -0.17, -2730.0, 0.0, 2),
+    ("mann2009", "Nb", 2.66, -14032.0, -199.0, 5),
+    ("mann2009", "Ta", 0.84, -13806.0, -101.0, 5),
+    ("cottrell2009", "W", -0.35, 1209.0, -114.0, 4),
+]
+# Hand computation: log10 D = a + b/3000 + 40 c/3000 + n/2 (dIW = -2 gives -(n/4) dIW
+# = n/2), e.g. Fischer Ni: 0.46 + 0.9 - 0.81333 + 1 = 1.54667.
+HAND = {("fischer2015", "Ni"): 1.546667, ("fischer2015", "Co"): 1.42,
+        ("fischer2015", "V"): -0.6, ("fischer2015", "Cr"): 0.153333,
+        ("fischer2015", "Si"): -1.2, ("siebert2012", "Ni"): 1.271,
+        ("siebert2012", "Co"): 1.055667, ("rubie2015", "V"): -0.667667,
+        ("rubie2015", "Cr"): -0.08, ("mann2009", "Nb"): -2.170667,
+        ("mann2009", "Ta"): -2.608667, ("cottrell2009", "W"): 0.533}
+
+
+@pytest.mark.parametrize("source,el,a,b,c,n", READ_COEFFICIENTS)
+def test_regression_rows_match_the_read_coefficients(source, el, a, b, c, n):
+    row = pt.load_regressions().set_index(["element", "source"]).loc[(el, source)]
+    assert (row["a"], row["b"], row["c"], row["valence"]) == (a, b, c, n)
+    assert _logD(source, el, 40.0, 3000.0, -2.0) == pytest.approx(HAND[(source, el)],
+                                                                  abs=1e-5)
+
+
+def test_published_trends():
+    """Signs of the temperature and pressure effects stated in the abstracts (read):
+    Corgne et al. (2008, GCA 72, 574): Ni less siderophile with rising T; Cr, Si, Ta, Nb
+    more siderophile with rising T; Ni, Nb, Ta less siderophile with rising P.
+    Siebert et al. (2012, EPSL 321, 189): D(Ni), D(Co) fall with rising P.
+    Cottrell et al. (2009, EPSL 281, 275): D(W) falls slightly with rising T and falls
+    with P above ~3-4 GPa. Evaluated at 5 GPa, inside the range of those experiments
+    (at fixed P the T effect goes with b + c P, so it may change sign at high P)."""
+    def slope(src, el, dP=0.0, dT=0.0):
+        return _logD(src, el, 5.0 + dP, 2500.0 + dT, -2.0) - _logD(src, el, 5.0, 2500.0, -2.0)
+
+    for src, el in [("fischer2015", "Ni"), ("siebert2012", "Ni")]:
+        assert slope(src, el, dT=100) < 0
+        assert slope(src, el, dP=5) < 0
+    for src in ("fischer2015", "siebert2012"):
+        assert slope(src, "Co", dP=5) < 0
+    for src, el in [("fischer2015", "Cr"), ("rubie2015", "Cr"), ("fischer2015", "Si"),
+                    ("mann2009", "Ta"), ("mann2009", "Nb")]:
+        assert slope(src, el, dT=100) > 0
+    for el in ("Nb", "Ta"):
+        assert slope("mann2009", el, dP=5) < 0
+    assert slope("cottrell2009", "W", dT=100) < 0
+    assert slope("cottrell2009", "W", dP=5) < 0
+
+
+def test_redox_term_follows_valence():
+    # -(n/4) dIW: one log unit more reduced raises log10 D by n/4 (Ni 2+: 0.5, W 4+: 1.0)
+    for src, el, n in [("fischer2015", "Ni", 2), ("cottrell2009", "W", 4),
+                       ("mann2009", "Nb", 5)]:
+        d = _logD(src, el, 30.0, 3000.0, -3.0) - _logD(src, el, 30.0, 3000.0, -2.0)
+        assert d == pytest.approx(n / 4.0, abs=1e-12)
+
+
+def test_every_row_has_a_source_and_provenance():
+    reg = pt.load_regressions()
+    known = components.sources().index
+    assert set(reg["provenance"]) <= {"publication", "typed_copy", "recalled"}
+    for keys in reg["source"]:
+        assert all(k in known for k in keys.split(";"))
+    covered = set(reg["element"])
+    assert {"Ni", "Co", "W", "V", "Cr", "Si", "Nb", "O", "S"} <= covered
+
+
+# ------------------------------------------------------------------- conversions
+
+def test_molar_and_mass_D_by_hand():
+    """Metal Fe 0.9, Ni 0.1 (mole); silicate (single-cation oxides) MgO 0.50, SiO2 0.45,
+    NiO 0.05. By hand: Mbar_met = 0.9*55.845 + 0.1*58.6934 = 56.12984 g/mol;
+    Mbar_sil = 0.5*40.304 + 0.45*60.083 + 0.05*74.6924 = 50.92282 g/mol. Mass fractions
+    of Ni: metal 5.86934/56.12984 = 0.104566, silicate 2.93467/50.92282 = 0.057630;
+    D_mass = 1.81444, D_mol = 0.1/0.05 = 2."""
+    w = components.atomic_weight
+    Mbar_met = 0.9 * w("Fe") + 0.1 * w("Ni")
+    Mbar_sil = (0.5 * (w("Mg") + w("O")) + 0.45 * (w("Si") + 2 * w("O"))
+                + 0.05 * (w("Ni") + w("O")))
+    assert Mbar_met == pytest.approx(56.12984, abs=2e-3)
+    assert Mbar_sil == pytest.approx(50.92282, abs=2e-3)
+    c_met = 0.1 * w("Ni") / Mbar_met
+    c_sil = 0.05 * w("Ni") / Mbar_sil
+    assert c_met / c_sil == pytest.approx(1.81444, rel=1e-4)
+    assert float(pt.molar_to_mass(2.0, Mbar_sil, Mbar_met)) == pytest.approx(c_met / c_sil,
+                                                                            rel=1e-12)
+    assert float(pt.mass_to_molar(c_met / c_sil, Mbar_sil, Mbar_met)) == pytest.approx(2.0)
+
+
+def test_liquidus_and_cmb_scaling():
+    # Fiquet et al. (2010): 1940 K at zero pressure, 1940 * 2^(1/1.9) = 2794.1 K at 29 GPa
+    # (worked by hand from the recalled fit)
+    assert float(pt.peridotite_liquidus(0.0)) == pytest.approx(1940.0)
+    assert float(pt.peridotite_liquidus(29.0)) == pytest.approx(2794.08, abs=0.05)
+    # constant-density scaling: 1/8 of the mass has 1/4 of the pressure
+    assert float(pt.cmb_pressure(0.125, 136.0)) == pytest.approx(34.0)
+
+
+def test_interaction_model_is_gibbs_duhem_consistent_to_first_order():
+    chem = pt.compile_chemistry(["Fe", "Si", "S", "Ni"])
+    eps = np.array([[12.4, 5.0], [5.0, -5.7]])  # an invented symmetric table
+    chem = pt.CoreChemistry(**{**chem.__dict__, "eps_light": eps,
+                               "eps": np.array([[0.0, 0.0], eps[0], eps[1], [1.0, -2.0]])})
+    T = np.array(1873.0)
+
+    def residual(x0):
+        x = np.array([x0, 0.5 * x0])
+        dx = 1e-7 * np.array([1.0, 0.3])
+        lg1, lfe1 = pt.ln_gamma(x + dx, T, chem)
+        lg0, lfe0 = pt.ln_gamma(x - dx, T, chem)
+        solute = x[0] * (lg1[1] - lg0[1]) + x[1] * (lg1[2] - lg0[2])
+        solvent = (1 - x.sum()) * (lfe1 - lfe0)
+        return abs(solute + solvent) / abs(solute)
+
+    # the Gibbs-Duhem defect of the first-order model is of the order of the solute
+    # fraction: it vanishes in the dilute limit (a sign error in ln gamma_Fe gives ~2)
+    assert residual(1e-3) < 3e-3
+    assert residual(1e-4) < 3e-4
+
+
+# ------------------------------------------------------------------- the core split
+
+def test_split_conserves_mass_and_is_a_fixed_point(earth):
+    a, chem = earth
+    out = _solve(a, chem, 50.0, -2.2)
+    assert bool(out["converged"])
+    np.testing.assert_allclose(out["mantle"] + out["core"], a, rtol=1e-12)
+    s = out["state"]
+    g = pt.split_step(s, a, np.array(50.0), pt.peridotite_liquidus(50.0), np.array(-2.2),
+                      chem)
+    np.testing.assert_allclose(g, s, rtol=1e-11)
+    assert out["core_wt"].sum() + out["core_O_wt"] == pytest.approx(1.0, rel=1e-12)
+    # the redox split of iron: x_FeO / x_Fe = 10^(dIW/2) on the single-cation basis
+    m, c = out["mantle"], out["core"]
+    aw = chem.atomic_weight
+    x_feo = (m[2] / aw[2]) / (m / aw).sum()
+    x_fe = (c[2] / aw[2]) / ((c / aw).sum() + out["core_O"] / pt.M_O)
+    assert 2 * np.log10(x_feo / x_fe) == pytest.approx(-2.2, abs=1e-9)
+
+
+def test_earth_single_stage_fit_of_ni_and_co(earth):
+    """Single-stage fit of Ni and Co of the McDonough & Sun (1995) mantle (Ni 1960, Co 105
+    ug/g, +-10% 1-sigma, from memory) from a chondritic bulk, at the peridotite liquidus
+    (Fiquet et al. 2010) and the dIW that leaves the mantle's 8.05 wt% FeO (McDonough &
+    Sun 1995): the best pressure lies in the range of published single-stage solutions,
+    from ~28 GPa (Li & Agee 1996, Nature 381, 686; from memory) to ~50-60 GPa (Siebert
+    et al. 2012: Ni and Co reach the mantle's values at ~50 GPa, too low above 60 GPa;
+    abstract read), dIW near -2, and Ni and Co are reproduced within 1-sigma."""
+    a, chem = earth
+    obs = {3: 1960e-6, 4: 105e-6}
+    sig = np.log10(1.1)
+    cache = {}
+
+    def state(P):
+        if P not in cache:
+            d = _dIW_for_FeO(a, chem, P, 0.0805)
+            cache[P] = (d, _solve(a, chem, P, d))
+        return cache[P]
+
+    def chi2(P):
+        _, o = state(P)
+        return sum((np.log10(o["mantle"][i] / o["M_s"] / v) / sig) ** 2
+                   for i, v in obs.items())
+
+    best = minimize_scalar(chi2, bounds=(15.0, 90.0), method="bounded",
+                           options={"xatol": 0.1})
+    P = float(best.x)
+    d, o = state(P)
+    assert 25.0 <= P <= 65.0
+    assert -2.6 <= d <= -1.6
+    for i, v in obs.items():
+        assert abs(np.log10(o["mantle"][i] / o["M_s"] / v)) < sig
+    # the core that comes with it: CMF near the Earth's 0.325 (common practice) and S
+    # near the 1.9 wt% of McDonough (2003, from memory)
+    assert 0.25 <= float(o["cmf"]) <= 0.36
+    assert 0.015 <= float(o["core_wt"][EARTH_ELEMENTS.index("S")]) <= 0.025
+
+
+@pytest.fixture(scope="module")
+def mars():
+    # Mars bulk: CI ratios (Lodders 2003) for refractory and main-component elements;
+    # Mn and Na from the mantle of Wanke & Dreibus (1988); S at 0.4 x CI, the share of
+    # the volatile-rich component in their two-component Mars (from memory)
+    els = ["Mg", "Si", "Fe", "Ni", "Co", "Al", "Ca", "Ti", "Cr", "V", "Mn", "Na", "S"]
+    f = components.oxide_to_element_factor
+    mg = 0.302 * f("Mg", 1, 1)
+    ci = components.load("CI").composition
+    a = _chondritic_bulk(els, {"Mn": 0.0046 * f("Mn", 1, 1) / mg,
+                               "Na": 0.0050 * f("Na", 2, 1) / mg,
+                               "S": 0.4 * ci["S"] / ci["Mg"]})
+    return els, a, pt.compile_chemistry(els)
+
+
+def test_mars_core_is_sulfur_rich_and_its_mass_seismic(mars):
+    """Mars at 14 GPa on the liquidus, dIW set by the 17.9 wt% FeO mantle of Wanke &
+    Dreibus (1988): the core holds 10-17 wt% S (Lodders & Fegley 1997 10.6 wt%; Wanke &
+    Dreibus 1988 14.2 wt%; both from memory) and the CMF lies within 0.20-0.27 (seismic
+    core radius 1830 +- 40 km, Stahler et al. 2021, Science 373, 443; CMF range from
+    memory)."""
+    els, a, chem = mars
+    d = _dIW_for_FeO(a, chem, 14.0, 0.179)
+    o = _solve(a, chem, 14.0, d)
+    assert 0.10 <= float(o["core_wt"][els.index("S")]) <= 0.17
+    assert 0.20 <= float(o["cmf"]) <= 0.27
+
+
+@pytest.mark.xfail(strict=True, reason="Ni and Co of the Wanke & Dreibus mantle are fitted "
+                   "at 5-7 GPa on the Fiquet liquidus, below the published 10-20 GPa; the "
+                   "S-rich metal's activity terms are not in the model (docs/partitioning.md)")
+def test_mars_equilibration_pressure(mars):
+    """Published single-stage Mars: ~14 +- 3 GPa (Righter & Chabot 2011, MAPS 46, 157;
+    Rai & van Westrenen 2013, JGR Planets 118, 1195; both from memory)."""
+    els, a, chem = mars
+
+    def ni(P):
+        d = _dIW_for_FeO(a, chem, P, 0.179)
+        o = _solve(a, chem, P, d)
+        return np.log10(o["mantle"][els.index("Ni")] / o["M_s"] / 400e-6)
+
+    P = brentq(ni, 1.0, 40.0, xtol=0.05)
+    assert 10.0 <= P <= 20.0
+
+
+# ------------------------------------------------------------------- continuous accretion
+
+def test_one_step_accretion_is_the_single_stage_split(earth):
+    a, chem = earth
+    acc = pt.continuous_accretion(a, chem, n_steps=1, P_cmb_final=136.0, depth_fraction=0.4,
+                                  dIW_start=-2.2, inner_steps=400)
+    one = _solve(a, chem, 0.4 * 136.0, -2.2)
+    np.testing.assert_allclose(acc["mantle"], one["mantle"], rtol=1e-9)
+    assert float(acc["cmf"]) == pytest.approx(float(one["cmf"]), rel=1e-9)
+
+
+def test_accretion_conserves_mass_and_follows_its_path(earth):
+    a, chem = earth
+    acc = pt.continuous_accretion(a, chem, n_steps=5, P_cmb_final=136.0, depth_fraction=0.5,
+                                  dIW_start=-3.0, dIW_end=-2.0, inner_steps=150)
+    np.testing.assert_allclose(acc["mantle"] + acc["core"], a, rtol=1e-10)
+    assert acc["dIW"][0] == -3.0 and acc["dIW"][-1] == -2.0
+    assert float(acc["P"][-1]) == pytest.approx(68.0)
+    assert float(acc["T"][0]) == pytest.approx(float(pt.peridotite_liquidus(
+        0.5 * 136.0 * 0.2 ** (2 / 3))))
+    assert np.all(np.diff(np.array(acc["P"], float)) > 0)
+
+
+# ------------------------------------------------------------------- numpy and JAX
+
+@pytest.fixture(scope="module")
+def jnp():
+    jax = pytest.importorskip("jax")
+    jax.config.update("jax_enable_x64", True)
+    import jax.numpy as jnp
+    return jnp
+
+
+def test_numpy_and_jax_give_the_same_numbers(earth, jnp):
+    a, chem = earth
+    P, T, d = 45.0, 3200.0, -2.1
+    s = _solve(a, chem, P, d, T)["state"] * 1.01
+    g_np = pt.split_step(s, a, np.array(P), np.array(T), np.array(d), chem)
+    g_jx = pt.split_step(jnp.asarray(s), jnp.asarray(a), jnp.asarray(P), jnp.asarray(T),
+                         jnp.asarray(d), chem, xp=jnp)
+    np.testing.assert_allclose(np.asarray(g_jx), g_np, rtol=1e-10)
+    o_np = pt.single_stage_unrolled(a, P, T, d, chem, n_steps=15)
+    o_jx = pt.single_stage_unrolled(jnp.asarray(a), P, T, d, chem, n_steps=15, xp=jnp)
+    for key in ("mantle", "core", "cmf", "core_O_wt", "D"):
+        np.testing.assert_allclose(np.asarray(o_jx[key]), o_np[key], rtol=1e-10)
+    acc_np = pt.continuous_accretion(a, chem, n_steps=2, P_cmb_final=136.0, inner_steps=8)
+    acc_jx = pt.continuous_accretion(jnp.asarray(a), chem, n_steps=2, P_cmb_final=136.0,
+                                     inner_steps=8, xp=jnp)
+    np.testing.assert_allclose(np.asarray(acc_jx["mantle"]), acc_np["mantle"], rtol=1e-10)
+
+
+def test_jax_gradient_matches_central_differences(earth, jnp):
+    """The implicit-function gradient built from the one step G (jax.jacfwd of
+    split_step at the numpy fixed point, jax.grad of split_outputs) equals central
+    differences of the converged numpy solver: the recipe the JAX model wraps."""
+    import jax
+
+    a, chem = earth
+    theta = np.array([45.0, 3200.0, -2.1])
+    s = _solve(a, chem, theta[0], theta[2], theta[1])["state"]
+
+    def G(state, t):
+        return pt.split_step(state, jnp.asarray(a), t[0], t[1], t[2], chem, xp=jnp)
+
+    def f(state, t):
+        o = pt.split_outputs(state, jnp.asarray(a), t[0], t[1], t[2], chem, xp=jnp)
+        return jnp.log10(o["mantle"][3] / o["M_s"])
+
+    sj, tj = jnp.asarray(s), jnp.asarray(theta)
+    J_s, J_t = jax.jacfwd(G, argnums=(0, 1))(sj, tj)
+    ds = np.linalg.solve(np.eye(5) - np.asarray(J_s), np.asarray(J_t))
+    f_s, f_t = jax.grad(f, argnums=(0, 1))(sj, tj)
+    grad = np.asarray(f_s) @ ds + np.asarray(f_t)
+    h = np.array([1e-3, 1e-2, 1e-4])
+    fd = []
+    for i in range(3):
+        e = np.zeros(3)
+        e[i] = h[i]
+        up = pt.solve_single_stage(a, *(theta + e), chem)
+        dn = pt.solve_single_stage(a, *(theta - e), chem)
+        fd.append((np.log10(up["mantle"][3] / up["M_s"])
+                   - np.log10(dn["mantle"][3] / dn["M_s"])) / (2 * h[i]))
+    np.testing.assert_allclose(grad, fd, rtol=1e-6)
+    # and jax.grad through the unrolled iteration (started at the fixed point, so the
+    # steps carry only the derivative) converges to the same gradient
+    def unrolled(t):
+        o = pt.single_stage_unrolled(jnp.asarray(a), t[0], t[1], t[2], chem, n_steps=12,
+                                     xp=jnp, state0=sj)
+        return jnp.log10(o["mantle"][3] / o["M_s"])
+
+    np.testing.assert_allclose(np.asarray(jax.grad(unrolled)(tj)), fd, rtol=1e-3)
+
+
+# ------------------------------------------------------------------- input errors
+
+def test_bad_choices_are_refused():
+    with pytest.raises(InputError, match="no Ni regression from source nobody"):
+        pt.compile_chemistry(["Fe", "Ni"], choice={"Ni": "nobody"})
+    with pytest.raises(InputError, match="activity model"):
+        pt.compile_chemistry(["Fe", "Ni"], activity="perfect")
+    with pytest.raises(InputError, match="no Fe"):
+        pt.compile_chemistry(["Ni"])
+
+
+def test_bad_table_rows_are_refused(tmp_path):
+    src = (pt.DATA / "metal_silicate_regressions.csv").read_text()
+    bad = tmp_path / "bad.csv"
+    bad.write_text(src.replace("fischer2015,typed_copy", "fischer2015,guessed", 1))
+    with pytest.raises(InputError, match="provenance") as err:
+        pt.load_regressions(bad)
+    assert err.value.row == 2
+    bad.write_text(src.replace(",exchange,", ",linear,", 1))
+    with pytest.raises(InputError, match="form must be"):
+        pt.load_regressions(bad)
