@@ -157,6 +157,7 @@ class CoreChemistry:
     ln_gamma0 : (n,) ln gamma0 at 1873 K; eps : (n, 2) eps_i^j for j = (Si, S).
     eps_light : (2, 2) eps among (Si, S).
     oxygen : (a, b, c) of the FeO dissolution fit, or None (no O in the core).
+    oxygen_gamma : 1.0 where the O fit gets the solvent's activity term (epsilon).
     fe, si, s : indices of Fe, Si, S (-1 where absent).
     sources : (element, source key) of each regression used.
     activity : the activity model.
@@ -176,6 +177,7 @@ class CoreChemistry:
     eps: np.ndarray
     eps_light: np.ndarray
     oxygen: tuple[float, float, float] | None
+    oxygen_gamma: float
     fe: int
     si: int
     s: int
@@ -232,6 +234,7 @@ def compile_chemistry(elements: list[str] | tuple[str, ...], *,
     Dfix = np.array([float((D_fixed or {}).get(e, 0.0)) for e in els])
     used = []
     ox = None
+    ox_gamma = 0.0
     for e, src in pick.items():
         if src == "none":
             continue
@@ -244,6 +247,7 @@ def compile_chemistry(elements: list[str] | tuple[str, ...], *,
         if r["form"] == "oxygen":
             if oxygen:
                 ox = (float(r["a"]), float(r["b"]), float(r["c"]))
+                ox_gamma = 1.0 if (activity == "epsilon" and r["activity"] == "epsilon") else 0.0
                 used.append((e, src))
             continue
         if e not in els:
@@ -276,7 +280,7 @@ def compile_chemistry(elements: list[str] | tuple[str, ...], *,
         elements=els, atomic_weight=props.loc[list(els), "atomic_weight"].to_numpy(float),
         oxide_factor=props.loc[list(els), "oxide_factor"].to_numpy(float), kind=kind,
         a=a, b=b, c=c, valence=val, use_gamma=use_g, D_fixed=Dfix, ln_gamma0=lng0,
-        eps=eps, eps_light=eps_light, oxygen=ox, fe=fe,
+        eps=eps, eps_light=eps_light, oxygen=ox, oxygen_gamma=ox_gamma, fe=fe,
         si=els.index("Si") if "Si" in els else -1, s=els.index("S") if "S" in els else -1,
         sources=tuple(used), activity=activity)
 
@@ -363,17 +367,23 @@ def mass_D(chem: CoreChemistry, P: Any, T: Any, dIW: Any, state: Any, xp: Any = 
                     xp.where(chem.kind == 2, const, chem.D_fixed + 0.0 * molar))
 
 
-def oxygen_in_metal(chem: CoreChemistry, P: Any, T: Any, dIW: Any, xp: Any = np) -> Any:
-    """Mole fraction of O in the metal, ``x_O = K_O 10^(dIW/2)``, capped below 0.5.
+def oxygen_in_metal(chem: CoreChemistry, P: Any, T: Any, dIW: Any, x_light: Any = None,
+                    xp: Any = np) -> Any:
+    """Mole fraction of O in the metal, ``x_O = K_O 10^(dIW/2)``, capped at 0.5.
 
     ``K_O = x_Fe x_O / x_FeO`` (FeO (sil) = Fe (met) + O (met)); with
-    ``x_FeO / x_Fe = 10^(dIW/2)``. Zero when the chemistry has no oxygen fit.
+    ``x_FeO / x_Fe = 10^(dIW/2)``. With the epsilon activity model, divided by gamma_Fe
+    of the metal of composition ``x_light`` (..., 2) (gamma_O = 1: no O parameters).
+    Zero when the chemistry has no oxygen fit.
     """
     if chem.oxygen is None:
         return 0.0 * xp.asarray(dIW)
     a, b, c = chem.oxygen
-    x = 10.0 ** (log10_exchange(a, b, c, P, T, xp) + 0.5 * xp.asarray(dIW))
-    return xp.minimum(x, 0.5)
+    log_x = log10_exchange(a, b, c, P, T, xp) + 0.5 * xp.asarray(dIW)
+    if x_light is not None:
+        _, ln_g_fe = ln_gamma(x_light, xp.asarray(T), chem, xp)
+        log_x = log_x - chem.oxygen_gamma * ln_g_fe / _LN10
+    return xp.minimum(10.0 ** log_x, 0.5)
 
 
 def peridotite_liquidus(P: Any, xp: Any = np) -> Any:
@@ -415,7 +425,7 @@ def _balance(state: Any, a: Any, P: Any, T: Any, dIW: Any, chem: CoreChemistry,
     M_s = xp.sum(m * chem.oxide_factor, axis=-1)
     n_sil = xp.sum(m / aw, axis=-1)
     n_met0 = xp.sum(core / aw, axis=-1)
-    x_O = oxygen_in_metal(chem, P, T, dIW, xp)
+    x_O = oxygen_in_metal(chem, P, T, dIW, state[..., 3:5], xp)
     n_O = x_O / (1.0 - x_O) * n_met0
     M_c = xp.sum(core, axis=-1) + n_O * M_O
     n_met = n_met0 + n_O

@@ -423,3 +423,20 @@ def test_bad_table_rows_are_refused(tmp_path):
     bad.write_text(src.replace(",exchange,", ",linear,", 1))
     with pytest.raises(InputError, match="form must be"):
         pt.load_regressions(bad)
+
+
+def test_epsilon_activity_term_by_hand():
+    """activity="epsilon" adds -log10 gamma_Si + 2 log10 gamma_Fe to Si (a fit of
+    activities, Fischer et al. 2015). By hand at 1873 K, x_Si = 0.1: ln gamma_Si = -6.65
+    + 12.4 * 0.1 = -5.41 (steelmaking values: gamma0 recalled, eps_Si^Si read in Huang
+    et al. 2020 Table 1); ln gamma_Fe = -0.5 * 12.4 * 0.01 = -0.062; the shift is
+    (5.41 - 0.124) / ln 10 = 2.29569."""
+    args = (np.array(40.0), np.array(1873.0), np.array(-2.0), np.array([0.1, 0.0]))
+    ideal = pt.compile_chemistry(["Fe", "Si"])
+    eps = pt.compile_chemistry(["Fe", "Si"], activity="epsilon")
+    shift = pt.log10_D_molar(eps, *args)[1] - pt.log10_D_molar(ideal, *args)[1]
+    assert float(shift) == pytest.approx(2.29569, abs=1e-5)
+    # the O fit divides by gamma_Fe: log10 x_O rises by 0.062 / ln 10
+    x_i = pt.oxygen_in_metal(ideal, *args)
+    x_e = pt.oxygen_in_metal(eps, *args)
+    assert float(np.log10(x_e / x_i)) == pytest.approx(0.062 / np.log(10.0), rel=1e-9)
