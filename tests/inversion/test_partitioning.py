@@ -278,7 +278,7 @@ def test_mars_core_is_sulfur_rich_and_its_mass_seismic(mars):
 
 
 @pytest.mark.xfail(strict=True, reason="Ni and Co of the Wanke & Dreibus mantle are fitted "
-                   "at 5-7 GPa on the Fiquet liquidus, below the published 10-20 GPa; the "
+                   "at 6.8-7.3 GPa on the Fiquet liquidus, below the published 10-20 GPa; the "
                    "S-rich metal's activity terms are not in the model (docs/partitioning.md)")
 def test_mars_equilibration_pressure(mars):
     """Published single-stage Mars: ~14 +- 3 GPa (Righter & Chabot 2011, MAPS 46, 157;
