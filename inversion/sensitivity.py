@@ -378,7 +378,8 @@ def sensitivity_plot(table: pd.DataFrame, *, title: str | None = None):
                      "red edge: differs from the baseline)", fontsize=9)
         if title:
             fig.suptitle(title, fontsize=10)
-        fig.tight_layout()
+        # leave room for the title above the first row of panels
+        fig.tight_layout(rect=(0, 0, 1, 1 - 0.35 / fig.get_figheight()) if title else None)
     return fig
 
 
