@@ -56,7 +56,8 @@ __all__ = [
     "load_interactions", "compile_chemistry", "log10_exchange", "log10_D_molar",
     "mass_D", "molar_to_mass", "mass_to_molar", "ln_gamma", "oxygen_in_metal",
     "peridotite_liquidus", "cmb_pressure", "initial_state", "split_step", "split_outputs",
-    "solve_single_stage", "single_stage_unrolled", "continuous_accretion", "STATE_FIELDS",
+    "solve_single_stage", "single_stage_unrolled", "split_step_feo", "solve_for_mantle_FeO",
+    "continuous_accretion", "STATE_FIELDS",
 ]
 
 DATA = components.DATA_DIR / "partitioning"
@@ -533,6 +534,60 @@ def solve_single_stage(a: np.ndarray, P: Any, T: Any, dIW: Any, chem: CoreChemis
     out = split_outputs(s, a, P, T, dIW, chem)
     out["iterations"] = iterations
     out["converged"] = done
+    return out
+
+
+def split_step_feo(state: Any, a: Any, P: Any, T: Any, feo: Any, chem: CoreChemistry,
+                   xp: Any = np) -> Any:
+    """Step of the split with the mantle's FeO fixed and dIW an unknown.
+
+    Parameters
+    ----------
+    state : array (..., 6)
+        The five components of :func:`split_step` and dIW.
+    feo : array (...)
+        Target FeO mass fraction of the mantle (kg/kg).
+
+    Returns
+    -------
+    array (..., 6)
+        :func:`split_step` at the state's dIW, and ``dIW + 2 log10(feo / FeO(state))``:
+        the mantle's FeO goes nearly as 10^(dIW/2), so the fixed point (FeO = feo) is
+        reached by the same damped iteration.
+    """
+    dIW = state[..., 5]
+    r = _balance(state[..., :5], a, P, T, dIW, chem, xp)
+    fe = chem.one_hot(chem.fe)
+    now = xp.sum(r["mantle"] * fe, axis=-1) * chem.oxide_factor[chem.fe] / r["M_s"]
+    return xp.stack([r["M_c"] / r["M_s"], r["M_s"] / r["n_sil"], r["M_c"] / r["n_met"],
+                     r["x_Si"], r["x_S"], dIW + 2.0 * xp.log10(feo / now)], axis=-1)
+
+
+def solve_for_mantle_FeO(a: np.ndarray, P: Any, T: Any, feo: Any, chem: CoreChemistry, *,
+                         dIW0: float = -2.0, tol: float = 1e-12, max_iter: int = 4000,
+                         damping: float = 0.5) -> dict[str, Any]:
+    """Single-stage split at (P, T) with the mantle's FeO mass fraction fixed; dIW is
+    solved for (numpy). Returns :func:`split_outputs` plus ``dIW``, ``iterations`` and
+    ``converged``."""
+    a = np.asarray(a, float)
+    batch = a.shape[:-1]
+    P = np.broadcast_to(np.asarray(P, float), batch)
+    T = np.broadcast_to(np.asarray(T, float), batch)
+    feo = np.broadcast_to(np.asarray(feo, float), batch)
+    s = np.concatenate([initial_state(a), np.full(batch + (1,), float(dIW0))], axis=-1)
+    iterations = 0
+    done = np.zeros(batch, dtype=bool)
+    while iterations < max_iter:
+        iterations += 1
+        new = split_step_feo(s, a, P, T, feo, chem)
+        change = np.max(np.abs(new - s) / (np.abs(s) + 1e-12), axis=-1)
+        s = np.concatenate([_relax(s[..., :5], new[..., :5], damping),
+                            s[..., 5:] + damping * (new[..., 5:] - s[..., 5:])], axis=-1)
+        done = change <= tol
+        if np.all(done):
+            break
+    out = split_outputs(s[..., :5], a, P, T, s[..., 5], chem)
+    out.update(dIW=s[..., 5], iterations=iterations, converged=done)
     return out
 
 

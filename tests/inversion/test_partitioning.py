@@ -211,6 +211,17 @@ def test_split_conserves_mass_and_is_a_fixed_point(earth):
     assert 2 * np.log10(x_feo / x_fe) == pytest.approx(-2.2, abs=1e-9)
 
 
+def test_fixed_feo_split_finds_the_dIW_of_a_root_search(earth):
+    """solve_for_mantle_FeO (dIW an unknown of the fixed point) against an independent
+    root search of dIW with the fixed-dIW solver."""
+    a, chem = earth
+    for P in (20.0, 54.0):
+        o = pt.solve_for_mantle_FeO(a, P, pt.peridotite_liquidus(P), 0.0805, chem)
+        assert bool(o["converged"])
+        assert float(o["mantle_FeO_wt"]) == pytest.approx(0.0805, rel=1e-9)
+        assert float(o["dIW"]) == pytest.approx(_dIW_for_FeO(a, chem, P, 0.0805), abs=1e-6)
+
+
 def test_earth_single_stage_fit_of_ni_and_co(earth):
     """Single-stage fit of Ni and Co of the McDonough & Sun (1995) mantle (Ni 1960, Co 105
     ug/g, +-10% 1-sigma, from memory) from a chondritic bulk, at the peridotite liquidus
@@ -226,8 +237,8 @@ def test_earth_single_stage_fit_of_ni_and_co(earth):
 
     def state(P):
         if P not in cache:
-            d = _dIW_for_FeO(a, chem, P, 0.0805)
-            cache[P] = (d, _solve(a, chem, P, d))
+            o = pt.solve_for_mantle_FeO(a, P, pt.peridotite_liquidus(P), 0.0805, chem)
+            cache[P] = (float(o["dIW"]), o)
         return cache[P]
 
     def chi2(P):
@@ -271,8 +282,7 @@ def test_mars_core_is_sulfur_rich_and_its_mass_seismic(mars):
     core radius 1830 +- 40 km, Stahler et al. 2021, Science 373, 443; CMF range from
     memory)."""
     els, a, chem = mars
-    d = _dIW_for_FeO(a, chem, 14.0, 0.179)
-    o = _solve(a, chem, 14.0, d)
+    o = pt.solve_for_mantle_FeO(a, 14.0, pt.peridotite_liquidus(14.0), 0.179, chem)
     assert 0.10 <= float(o["core_wt"][els.index("S")]) <= 0.17
     assert 0.20 <= float(o["cmf"]) <= 0.27
 
@@ -286,8 +296,7 @@ def test_mars_equilibration_pressure(mars):
     els, a, chem = mars
 
     def ni(P):
-        d = _dIW_for_FeO(a, chem, P, 0.179)
-        o = _solve(a, chem, P, d)
+        o = pt.solve_for_mantle_FeO(a, P, pt.peridotite_liquidus(P), 0.179, chem)
         return np.log10(o["mantle"][els.index("Ni")] / o["M_s"] / 400e-6)
 
     P = brentq(ni, 1.0, 40.0, xtol=0.05)
