@@ -107,51 +107,74 @@ def test_class_test_null_and_power_few_replicates():
 
 
 @pytest.mark.slow
+@pytest.mark.parametrize("blocks", ["exact", "scattered"])
 @pytest.mark.parametrize("kind", ["demo", "earth"])
-def test_class_test_false_positive_rate_50_null_bodies(kind):
-    """Issue 11 check: FPR at 3 sigma <= 5% on 50 one-trend bodies with D scattered."""
+def test_class_test_false_positive_rate_50_null_bodies(kind, blocks):
+    """Issue 11 check: FPR at 3 sigma <= 5% on 50 one-trend bodies with D scattered by
+    0.3 dex (measured 2026-12-02: 0.00 demo-like and Earth-like with exact blocks; 0.02
+    and 0.00 with scattered blocks)."""
     rng = np.random.default_rng(2026 if kind == "demo" else 2027)
     if kind == "demo":
         p, w, vol, sig = demo_problem(), [0.55, 0.45], (1300.0, 0.003), None
     else:
         p, w, vol, sig = earth_problem(), [0.5, 0.5], (1380.0, 0.0022), np.log10(1.15)
     hits = sum(run_class_test(synthetic_body(p, w, vol, rng, d_scatter_dex=0.3,
-                                             sigma_dex=sig))["differ"] for _ in range(50))
+                                             sigma_dex=sig, blocks=blocks))["differ"]
+               for _ in range(50))
     assert hits / 50 <= 0.05
 
 
-@pytest.mark.slow
-@pytest.mark.xfail(strict=True, reason="measured 2026-12-02: detected 0 of 30 at 3 sigma "
-                   "(median recovered +0.21, stated 1-sigma 0.15 dex per 1000 K at 15% noise); "
-                   "the check of issue 11 is not met by this set-up")
-def test_class_test_power_30_earth_like_bodies():
-    """Issue 11 check: 0.3 dex per 1000 K detected in >= 80% of 30 Earth-like bodies,
-    recovered within its stated 1-sigma in >= 90%... of a Normal error that is 68%, so the
-    check reads 'within its stated uncertainty' as the 95% interval (1.96 sigma)."""
+def _power_bodies(blocks):
+    """The class tests of 30 Earth-like bodies (15% noise) with a true difference of
+    +0.3 dex per 1000 K."""
     rng = np.random.default_rng(2028)
     p = earth_problem()
-    det = cover = 0
-    for _ in range(30):
-        c = run_class_test(synthetic_body(p, [0.5, 0.5], (1380.0, 0.0022), rng,
-                                          offset=0.0003, sigma_dex=np.log10(1.15)))
-        det += c["differ"]
-        cover += abs(c["slope_difference_dex_per_1000K"] - 0.3) <= 1.96 * c["uncertainty"]
-    assert det >= 24 and cover >= 27
+    return [run_class_test(synthetic_body(p, [0.5, 0.5], (1380.0, 0.0022), rng,
+                                          offset=0.0003, sigma_dex=np.log10(1.15),
+                                          blocks=blocks)) for _ in range(30)]
 
 
 @pytest.mark.slow
-@pytest.mark.xfail(strict=True, reason="measured 2026-12-02: the Earth case reads 'classes "
-                   "differ by -0.86 +- 0.19 dex per 1000 K at 4.2 sigma' (CM + H)")
+@pytest.mark.parametrize("blocks", ["exact", "scattered"])
+def test_class_test_recovers_the_difference_within_its_stated_uncertainty(blocks):
+    """Issue 11 check: the recovered difference lies within its stated uncertainty of the
+    truth in >= 90% of 30 bodies; of a Normal error 68% lie within 1 sigma, so the check
+    reads the stated uncertainty as the 95% interval (1.96 sigma). Measured 2026-12-02:
+    100% (exact blocks, median +0.283 +- 0.076) and 93% (scattered, +0.285 +- 0.145)."""
+    cs = _power_bodies(blocks)
+    cover = sum(abs(c["slope_difference_dex_per_1000K"] - 0.3) <= 1.96 * c["uncertainty"]
+                for c in cs)
+    assert cover >= 27
+    assert abs(np.median([c["slope_difference_dex_per_1000K"] for c in cs]) - 0.3) < 0.05
+
+
+@pytest.mark.slow
+@pytest.mark.xfail(strict=True, reason="measured 2026-12-02: detected 23 of 30 (77%) at "
+                   "3 sigma with the blocks known exactly (stated 1-sigma 0.076 dex per "
+                   "1000 K at 15% noise: 0.3 is 4.0 sigma, 84% expected); 6 of 30 with the "
+                   "library's end-member uncertainties (1-sigma 0.145)")
+def test_class_test_power_30_earth_like_bodies():
+    """Issue 11 check: 0.3 dex per 1000 K detected in >= 80% of 30 Earth-like bodies."""
+    assert sum(c["differ"] for c in _power_bodies("exact")) >= 24
+
+
+@pytest.mark.slow
 def test_bse_mcdonough_sun_1995_one_trend():
-    """The usual reading of the bulk silicate Earth (McDonough & Sun 1995, Chem. Geol. 120,
-    223, from memory; the same assumption underlies McDonough 2003's core model): after
-    core formation, the moderately volatile elements follow one depletion trend whatever
-    their class. With Earth-calibrated D the test is partly circular and should agree."""
+    """The usual reading of the bulk silicate Earth: after core formation the moderately
+    volatile elements follow one depletion trend whatever their class (McDonough & Sun
+    1995, Chem. Geol. 120, 223, from memory; McDonough's core model derives the core from
+    "a volatility curve for the Earth, based on the Primitive Mantle's lithophile element
+    abundances", McDonough 2001, The composition of the Earth, in Teisseyre & Majewski
+    (eds.), Earthquake Thermodynamics and Phase Transformations in the Earth's Interior).
+    With those Earth-calibrated D the test is partly circular and should agree: measured
+    2026-12-02 on the Earth case (CV 0.065 + EH 0.935), difference -0.09 +- 0.17 dex per
+    1000 K, 0.5 sigma."""
     from inversion.findings import CLASS_TEST_SIGMA
 
     p = compile_problem(load_case(EARTH))
     c = class_test(p, fit_problem(p))
     assert c["significance_sigma"] < CLASS_TEST_SIGMA, c["statement"]
+    assert abs(c["slope_difference_dex_per_1000K"]) < 2 * c["uncertainty"], c["statement"]
 
 
 def _case(tmp_path, **target):
