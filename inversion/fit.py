@@ -66,7 +66,10 @@ class FitSettings:
     kkt_tolerance: float = 1e-4
     cmf_range: tuple[float, float] | None = None
     intervals: bool = True
-    joint: JointSettings = field(default_factory=JointSettings)
+    #: the polish stops a start when two accepted steps in a row lower chi2 by less than
+    #: 1e-9 relative (far below the agreement tolerance and the 1e-3 of the reference
+    #: checks; a stricter stop only adds iterations that crawl along a flat valley)
+    joint: JointSettings = field(default_factory=lambda: JointSettings(tolerance=1e-9))
     solver: str = ("profile: k-frozen Gauss-Newton with the exact simplex QP (primal "
                    "active-set method from a feasible vertex, edge midpoint or centre, a "
                    "warm primal-dual start where a guess exists, enumeration of the active "
@@ -74,9 +77,9 @@ class FitSettings:
                    "volatility grid; polish: Levenberg-Marquardt on all parameters "
                    "(finite-difference Jacobian through the core fixed point, exact QP "
                    "steps, restoration of infeasible starts); kinked forms: 10 iterations "
-                   "on the whole box, then the answers within 20% of their hypothesis' "
-                   "best on the smooth piece of T0 they lie in, moving to the next piece "
-                   "while they end on its edge")
+                   "on the whole box, then the best four answers of each hypothesis "
+                   "within 20% of its best on the smooth piece of T0 they lie in, moving "
+                   "to the next piece while they end on its edge")
 
     @property
     def record(self) -> dict[str, Any]:
@@ -344,6 +347,8 @@ STAGE1_ITERATIONS = 10
 #: Answers within this relative distance of their hypothesis' best after the first stage
 #: go on to the smooth-piece stage; the others keep the first stage's value.
 STAGE2_NEAR = 0.2
+#: At most this many answers per hypothesis (its best) go on to the smooth-piece stage.
+STAGE2_STARTS = 4
 #: Rounds of the smooth-piece stage: an answer that ends on an inner edge of its boxes
 #: is polished again on the pieces around that edge.
 STAGE2_ROUNDS = 6
@@ -369,6 +374,12 @@ def _smooth_piece_stages(p: Problem, ps: Problem, rows: np.ndarray, n_hyp: int,
     np.minimum.at(hyp_best, rows, pol["chi2"])
     near = np.isfinite(pol["chi2"]) & (pol["chi2"] <= hyp_best[rows] * (1.0 + STAGE2_NEAR)
                                        + 1e-6)
+    # at most STAGE2_STARTS answers per hypothesis, the best first
+    order = np.lexsort((pol["chi2"], rows))
+    rank = np.empty(B, dtype=int)
+    first = np.searchsorted(rows[order], rows[order], side="left")
+    rank[order] = np.arange(B) - first
+    near &= rank < STAGE2_STARTS
     todo = np.flatnonzero(near)
     for _ in range(STAGE2_ROUNDS):
         if todo.size == 0:
@@ -848,8 +859,14 @@ def _solve_nested(p: Problem, max_size: int, settings: FitSettings, *, workers: 
         for r in range(1, max_size + 1):
             subs = list(itertools.combinations(names, r))
             extra = [_subset_starts(p, s, solved) for s in subs]
-            jobs = [(p, subs[i:i + chunk], settings, extra[i:i + chunk])
-                    for i in range(0, len(subs), chunk)]
+            # equal shares, a multiple of the workers (no worker idles at the end)
+            n_jobs = max(1, math.ceil(len(subs) / chunk))
+            if ex is not None:
+                n_jobs = workers * max(1, math.ceil(n_jobs / workers))
+                n_jobs = min(n_jobs, len(subs))
+            cuts = np.linspace(0, len(subs), n_jobs + 1).round().astype(int)
+            jobs = [(p, subs[a:b], settings, extra[a:b])
+                    for a, b in zip(cuts[:-1], cuts[1:], strict=True) if b > a]
             results = ex.map(_fit_group, jobs) if ex is not None else map(_fit_group, jobs)
             for res in results:
                 for f in res:

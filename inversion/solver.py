@@ -107,14 +107,15 @@ def _model_sigma(p: Problem, U: np.ndarray, fi: np.ndarray) -> np.ndarray | None
     if q_sig is None:
         return None
     K = p.Q.shape[-2]
-    Q = p.Q if p.Q.ndim == 3 else p.Q[None]
-    S = np.asarray(q_sig) if np.ndim(q_sig) == 3 else np.asarray(q_sig)[None]
     # building blocks enter the final silicate through the volatility and core factors,
     # which scale each block's term alike; their relative sizes are those of u_k Q_ki
-    terms = U[:, :K, None] * Q[..., fi] * S[..., fi]  # (B, K, nf) in ratio x dex
-    mix = np.einsum("bk,bkn->bn", U[:, :K], Q[..., fi])
+    Qf = p.Q[..., fi]
+    QS2 = (Qf * np.asarray(q_sig)[..., fi]) ** 2  # (B, K, nf) or (K, nf), (ratio x dex)^2
+    UK = U[:, :K]
+    mix = np.einsum("bk,kn->bn" if Qf.ndim == 2 else "bk,bkn->bn", UK, Qf)
+    var = np.einsum("bk,kn->bn" if QS2.ndim == 2 else "bk,bkn->bn", UK * UK, QS2)
     with np.errstate(divide="ignore", invalid="ignore"):
-        rel = np.sqrt((terms ** 2).sum(axis=1)) / mix
+        rel = np.sqrt(var) / mix
     return np.nan_to_num(rel) ** 2
 
 
