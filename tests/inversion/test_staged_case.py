@@ -177,3 +177,21 @@ def test_sample_report_draws_the_isotope_posterior(tmp_path):
     panels = [ax for ax in fig.axes if ax.get_visible()]
     assert [ax.get_title(loc="left") for ax in panels] == ["e54Cr", "e50Ti"]
     assert [t.get_text() for t in panels[0].get_yticklabels()] == ["posterior 90%"]
+
+
+def test_staged_fit_needs_a_core_size(body):
+    """An infeasible convex fit and no [accretion] core_mass_fraction: the staged fit is
+    not run, and fit.json says why; with the key it runs whatever the convex fit."""
+    from types import SimpleNamespace
+
+    from inversion.cli import _staged_fit, _staged_lines
+
+    d, systems = body
+    obs = _observed(systems, X_EARLY, X_LATE, seed=1)
+    infeasible = SimpleNamespace(feasible=False, core_mass_fraction=float("nan"))
+    no_cmf = f"[accretion]\nstages = 2\nlate_stage_fraction = {F_LATE}\n"
+    st = _staged_fit(load_case(_case(d, obs, accretion=no_cmf), staged=True), infeasible)
+    assert st["status"] == "not run" and "core_mass_fraction" in st["reason"]
+    assert _staged_lines(st) == [f"two stages: not run ({st['reason']})"]
+    st = _staged_fit(load_case(_case(d, obs), staged=True), infeasible)
+    assert st["status"] == "fitted" and st["core_mass_fraction"] == CMF
