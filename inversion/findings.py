@@ -325,8 +325,10 @@ def summary_lines(f: dict[str, Any]) -> list[str]:
                      f"({r['log10_relative_to_CI']:+.3f} +- {r['uncertainty_dex']:.3f} dex)")
     c = f.get("class_independence", {})
     if c.get("status") == "done":
+        scaled = (f", scaled by the reduced chi2 {c['scatter_scale']:.2f} of a misfit beyond "
+                  f"the stated errors" if c.get("scatter_scale", 1.0) > 1.0 else "")
         lines.append(f"volatility and class: {c['statement']} (likelihood ratio "
-                     f"{c['lr_statistic']:.2f}, p = {c['p_value']:.3g}; threshold "
+                     f"{c['lr_statistic']:.2f}{scaled}, p = {c['p_value']:.3g}; threshold "
                      f"{c['threshold_sigma']:.0f} sigma)")
         lines.append("  note: " + c["circularity"])
     o = f.get("volatility_onset", {})

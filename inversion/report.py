@@ -204,6 +204,7 @@ def _fit_report(folder: Path) -> Report:
     prov = d.get("provenance") or {}
     ref = prov.get("reference_element", "Mg")
     norm = str(d.get("normaliser") or prov.get("normaliser") or "CI")
+    norm = str(d.get("normaliser") or prov.get("normaliser") or "CI")
     rep = Report(title=d.get("title", folder.name), kind="fit", folder=str(folder),
                  provenance=prov)
     status = d.get("status", "?")
@@ -482,8 +483,10 @@ def _findings_lines(f: dict[str, Any]) -> list[str]:
     ci = f.get("class_independence") or {}
     if ci.get("status") == "done":
         out.append(f"Volatility and geochemical class: {ci['statement']} (likelihood ratio "
-                   f"{_fmt(ci['lr_statistic'], 3)}, p = {_fmt(ci['p_value'], 3)}; threshold "
-                   f"{_fmt(ci['threshold_sigma'], 2)} sigma).")
+                   f"{_fmt(ci['lr_statistic'], 3)} against "
+                   f"{ci.get('reference_distribution', 'chi2(1)')}, p = "
+                   f"{_fmt(ci['p_value'], 3)}; threshold {_fmt(ci['threshold_sigma'], 2)} "
+                   "sigma).")
         if ci.get("circularity"):
             out.append(f"Note on the class test: {ci['circularity']}.")
     elif ci.get("status"):
@@ -628,6 +631,7 @@ def _sample_report(folder: Path) -> Report:
     meta = _read_json(folder / "sample.json")
     prov = meta.get("provenance") or {}
     ref = prov.get("reference_element", meta.get("reference_element", "Mg"))
+    norm = str(prov.get("normaliser") or meta.get("normaliser") or "CI")
     norm = str(prov.get("normaliser") or meta.get("normaliser") or "CI")
     rep = Report(title=meta.get("title", folder.name), kind="sample", folder=str(folder),
                  provenance=prov)
