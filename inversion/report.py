@@ -204,7 +204,6 @@ def _fit_report(folder: Path) -> Report:
     prov = d.get("provenance") or {}
     ref = prov.get("reference_element", "Mg")
     norm = str(d.get("normaliser") or prov.get("normaliser") or "CI")
-    norm = str(d.get("normaliser") or prov.get("normaliser") or "CI")
     rep = Report(title=d.get("title", folder.name), kind="fit", folder=str(folder),
                  provenance=prov)
     status = d.get("status", "?")
@@ -631,7 +630,6 @@ def _sample_report(folder: Path) -> Report:
     meta = _read_json(folder / "sample.json")
     prov = meta.get("provenance") or {}
     ref = prov.get("reference_element", meta.get("reference_element", "Mg"))
-    norm = str(prov.get("normaliser") or meta.get("normaliser") or "CI")
     norm = str(prov.get("normaliser") or meta.get("normaliser") or "CI")
     rep = Report(title=meta.get("title", folder.name), kind="sample", folder=str(folder),
                  provenance=prov)
