@@ -1,10 +1,12 @@
 """Bayesian inversion with PyMC (docs/model.md sections 8-9): priors, model, sampling, gate.
 
-The model is the pytensor twin of :func:`inversion.model.forward`: R-basis weights of
-the building blocks on the simplex, the chosen volatility form, core formation by an
-unrolled fixed point of the core-to-mantle mass ratio, late accretion, isotope mass
-balance, and a Student-t likelihood with a model-scatter term on the fitted elements.
-:func:`sample` runs NUTS from the convex optimum (nutpie on the numba-compiled log density
+The physics is the single forward model of :mod:`inversion.kernel`, run on JAX
+(:mod:`inversion.jaxmodel`) as one operation of the PyMC model: R-basis weights of the
+building blocks on the simplex, the chosen volatility form, core formation (the fixed
+point of the core-to-mantle mass ratio, with its implicit-function gradient), late
+accretion, isotope mass balance; PyMC holds the priors and a Student-t likelihood with a
+model-scatter term on the fitted elements.
+:func:`sample` runs NUTS from the convex optimum (nutpie on the JAX-compiled log density
 by default, PyMC's own NUTS on request), applies the diagnostics gate and returns a
 :class:`SampleResult`; the posterior draws of the whole planet come from the
 numpy forward model, vectorised over draws (:func:`planet_draws`).
@@ -46,15 +48,16 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from . import kernel
 from .exceptions import InputError
 from .model import Problem, forward
 from .options import check_option
 from .volatility import get_form
 
 __all__ = ["SamplerSettings", "Diagnostics", "SampleResult", "PRIOR_DISTRIBUTIONS",
-           "GATE_RHAT_MAX", "GATE_ESS_BULK_MIN", "GATE_DIVERGENCES_MAX", "CORE_UNROLL",
+           "GATE_RHAT_MAX", "GATE_ESS_BULK_MIN", "GATE_DIVERGENCES_MAX",
            "STUDENT_NU", "default_priors", "check_priors", "check_sampler_settings",
-           "build_model", "end_member_sigma_dex", "pt_log10_retained", "model_log10N",
+           "build_model", "end_member_sigma_dex",
            "sample", "diagnose",
            "summary_table", "planet_draws", "posterior_planet", "outliers", "posterior_arrays",
            "main_parameters", "compare_runs"]
@@ -63,12 +66,6 @@ __all__ = ["SamplerSettings", "Diagnostics", "SampleResult", "PRIOR_DISTRIBUTION
 GATE_RHAT_MAX = 1.01
 GATE_ESS_BULK_MIN = 400.0
 GATE_DIVERGENCES_MAX = 0
-#: Plain unrolled iterations of the core split, when asked for (``iterations=``): the
-#: mantle-FeO split converges to ~1e-14 in 15 steps; the redox (dIW) split, whose D_Fe
-#: moves with the mean molar masses, needs ~25 for 1e-9. The default is the implicit
-#: (one-Newton-step) form, which matches the numpy model to ~1e-12 with a far smaller
-#: graph (a 15-step unrolled graph took ~30 s to compile on a 2-core machine).
-CORE_UNROLL = 15
 #: Degrees of freedom of the Student-t likelihood (docs/model.md section 8).
 STUDENT_NU = 4.0
 #: Observed variable names in the model.
@@ -241,10 +238,9 @@ class SamplerSettings:
     which pass the gate on the library's cases (bulk ESS >= 400 needs about 100
     effective draws per chain). ``mass_matrix`` (nutpie only) is one of
     :data:`MASS_MATRICES`. ``engine`` chooses the NUTS implementation:
-    ``"nutpie"`` (default; the log density and its gradient compiled with numba and
-    sampled by nutpie's compiled NUTS, chains in threads) or ``"pymc"`` (PyMC's own
-    NUTS in Python over the C-compiled log density, chains in processes; ~25x slower
-    per draw, kept for cross-checks and for machines without numba).
+    ``"nutpie"`` (default; the log density and its gradient compiled with JAX and
+    sampled by nutpie's NUTS, chains in threads) or ``"pymc"`` (PyMC's own NUTS in
+    Python, chains in processes; slower per draw, kept for cross-checks).
     """
 
     draws: int = 1000
@@ -326,247 +322,25 @@ def check_sampler_settings(table: dict[str, Any] | None, *, file: str | None = N
     return SamplerSettings(**vals)
 
 
-# --------------------------------------------------------------------------- pytensor twin
-def pt_log10_retained(form: str, params: list[Any], tc: np.ndarray):
-    """pytensor twin of :func:`inversion.volatility.log10_retained` for one parameter set.
+# --------------------------------------------------------------------------- the model
+def _jax_predictions(p: Problem, part: list[int]):
+    """The JAX predictions of :func:`inversion.jaxmodel.predictions` as one pytensor
+    operation (``wrap_jax``): its value and its gradient (by ``jax.vjp``) come from the
+    single forward model of :mod:`inversion.kernel`."""
+    from pytensor.link.jax.ops import wrap_jax
 
-    Parameters
-    ----------
-    form : str
-    params : list of scalar tensors, in the order of ``FORMS[form].params``
-    tc : ndarray, shape (n,) [K]
+    from .jaxmodel import predictions
 
-    Returns
-    -------
-    TensorVariable, shape (n,)
-    """
-    import pytensor.tensor as pt
-
-    tc = pt.as_tensor_variable(np.asarray(tc, float))
-    if form == "kinked":
-        return pt.minimum(0.0, params[1] * (tc - params[0]))
-    if form == "power":
-        return pt.minimum(0.0, params[0] * pt.log10(tc) + params[1])
-    if form == "logistic":
-        z = (tc - params[0]) / params[1]
-        return -pt.softplus(-z) / np.log(10.0)
-    if form == "kinked-floor":
-        return pt.maximum(params[2], pt.minimum(0.0, params[1] * (tc - params[0])))
-    get_form(form)
-    raise AssertionError("unreachable")
-
-
-class _XP:
-    """Array-namespace shim: the same core-step code runs on numpy and on pytensor."""
-
-    def __init__(self, symbolic: bool):
-        self.symbolic = symbolic
-        if symbolic:
-            import pytensor.tensor as pt
-
-            self.m = pt
-        else:
-            self.m = np
-
-    def sum(self, x):
-        return self.m.sum(x)
-
-    def maximum(self, x, y):
-        return self.m.maximum(x, y)
-
-    def where(self, c, x, y):
-        return self.m.switch(c, x, y) if self.symbolic else np.where(c, x, y)
-
-
-def _core_step(xp: _XP, p: Problem, a, D, s: list[Any]) -> tuple[list[Any], dict[str, Any]]:
-    """One step of the core fixed point (:func:`inversion.model._core_split`).
-
-    ``s`` is the state: ``[k]`` (mantle-FeO split) or ``[k, D_Fe]`` (redox split). Returns
-    the next state and the reservoirs computed from ``s``.
-    """
-    fe = p.fe_index
-    f = p.oxide_factor
-    is_fe = np.zeros(len(p.elements))
-    is_fe[fe] = 1.0
-    k = s[0]
-    if p.mantle_Fe is not None:
-        m = a / (1.0 + D * k) * (1.0 - is_fe)
-        M_s = xp.sum(m * f) / (1.0 - f[fe] * p.mantle_Fe)
-        m = m + is_fe * p.mantle_Fe * M_s
-        core = a - m
-        M_c = xp.sum(core)
-        return [xp.maximum(M_c, 0.0) / M_s], {"mantle": m, "core": core, "M_s": M_s,
-                                              "M_c": M_c}
-    aw = p.atomic_weight
-    Dk = D * (1.0 - is_fe) + is_fe * s[1]
-    m = a / (1.0 + Dk * k)
-    M_s = xp.sum(m * f)
-    core = a - m
-    M_c = xp.sum(core)
-    mol_sil = xp.sum(m / (aw * p.cations))
-    mol_met = xp.sum(xp.maximum(core, 0.0) / aw)
-    mbar_met = xp.where(mol_met > 0, M_c / xp.maximum(mol_met, 1e-300), aw[fe])
-    D_fe = 10 ** (-p.dIW / 2.0) * (M_s / mol_sil) / mbar_met
-    return [xp.maximum(M_c, 0.0) / M_s, D_fe], {"mantle": m, "core": core, "M_s": M_s,
-                                               "M_c": M_c}
-
-
-def _state0(p: Problem) -> np.ndarray:
-    from .corekernel import start_state
-
-    redox = p.mantle_Fe is None
-    return start_state(redox, float(p.dIW if redox else p.mantle_Fe))
-
-
-def _solve_core(redox: bool, fe: int, level: float, a: np.ndarray, D: np.ndarray,
-                f: np.ndarray, aw: np.ndarray, cations: np.ndarray,
-                s0: np.ndarray | None) -> tuple[np.ndarray, np.ndarray]:
-    """Fixed point of the core step and ``inv(I - J)`` by the compiled kernels of
-    :mod:`inversion.corekernel`; ``s0`` warm-starts it."""
-    from .corekernel import feo_fixed_point, redox_fixed_point, start_state
-
-    s0 = start_state(redox, level) if s0 is None else np.asarray(s0, dtype=float)
-    if redox:
-        return redox_fixed_point(a, D, f, aw, cations, fe, level, s0)
-    return feo_fixed_point(a, D, f, fe, level, float(s0[0]))
-
-
-def _fixed_point_op(p: Problem):
-    """The core fixed point of problem ``p`` as a pytensor Op applied to (a, D)."""
-    CoreFixedPoint = _op_class()
-    if p.mantle_Fe is not None:
-        op = CoreFixedPoint(redox=False, fe=int(p.fe_index), level=float(p.mantle_Fe))
+    f = predictions(p, part)
+    if part:
+        def planet_predictions(w, vol, lam, log10D):
+            return f(w, vol, lam, log10D)
     else:
-        op = CoreFixedPoint(redox=True, fe=int(p.fe_index), level=float(p.dIW))
-    consts = (np.asarray(p.oxide_factor, float), np.asarray(p.atomic_weight, float),
-              np.asarray(p.cations, float))
-    return lambda a, D: op(a, D, *consts)
+        import jax.numpy as jnp
 
-
-def _core_fixed_point_op_class():
-    import pytensor.tensor as pt
-    from pytensor.graph.basic import Apply
-    from pytensor.graph.op import Op
-
-    class CoreFixedPoint(Op):
-        """(a, D, oxide factors, atomic weights, cations) -> (fixed-point state,
-        inv(I - J)), both treated as constants by the gradient (the implicit derivative
-        enters through the one symbolic Newton step of :func:`_pt_core_split`).
-
-        ``redox`` chooses the split (mantle FeO or dIW), ``level`` is the mantle iron
-        mass fraction or dIW, ``fe`` the index of iron. Python evaluation warm-starts
-        from the previous call (sampling moves in small steps; the result does not
-        depend on the start, only the iteration count does); the numba evaluation
-        (nutpie) starts cold, which costs a few Newton steps.
-        """
-
-        __props__ = ("redox", "fe", "level")
-
-        def __init__(self, redox: bool, fe: int, level: float):
-            self.redox = bool(redox)
-            self.fe = int(fe)
-            self.level = float(level)
-            super().__init__()
-
-        def make_node(self, a, D, f, aw, cations):
-            ins = [pt.as_tensor_variable(v) for v in (a, D, f, aw, cations)]
-            return Apply(self, ins, [pt.dvector(), pt.dmatrix()])
-
-        def perform(self, node, inputs, outputs):
-            args = [np.ascontiguousarray(v, dtype=float) for v in inputs]
-            last = node.tag.__dict__.get("last_state")
-            s, minv = _solve_core(self.redox, self.fe, self.level, *args, last)
-            if last is not None and not (np.all(np.isfinite(s)) and s[0] >= 0):
-                s, minv = _solve_core(self.redox, self.fe, self.level, *args, None)
-            node.tag.last_state = s
-            outputs[0][0] = s
-            outputs[1][0] = minv
-
-        def infer_shape(self, fgraph, node, shapes):
-            size = 2 if self.redox else 1
-            return [(size,), (size, size)]
-
-        def L_op(self, inputs, outputs, grads):
-            return [pt.zeros_like(v) for v in inputs]
-
-    from pytensor.link.numba.dispatch.basic import register_funcify_default_op_cache_key
-
-    @register_funcify_default_op_cache_key(CoreFixedPoint)
-    def _numba_core_fixed_point(op, node=None, **kwargs):
-        from pytensor.link.numba.dispatch.basic import numba_njit
-
-        from .corekernel import feo_fixed_point, redox_fixed_point, start_state
-
-        fe, level = op.fe, op.level
-        if op.redox:
-            @numba_njit
-            def core_fixed_point_numba(a, D, f, aw, cations):
-                return redox_fixed_point(a, D, f, aw, cations, fe, level,
-                                         start_state(True, level))
-        else:
-            @numba_njit
-            def core_fixed_point_numba(a, D, f, aw, cations):
-                return feo_fixed_point(a, D, f, fe, level)
-        return core_fixed_point_numba, 1
-
-    return CoreFixedPoint
-
-
-_OP_CLASS: list[type] = []
-
-
-def _op_class() -> type:
-    """The Op class, built on first use so that importing this module does not import
-    pytensor (the numpy paths of the engine do not need it)."""
-    if not _OP_CLASS:
-        _OP_CLASS.append(_core_fixed_point_op_class())
-    return _OP_CLASS[0]
-
-
-def _pt_core_split(a, p: Problem, D, iterations: int | None = None) -> dict[str, Any]:
-    """pytensor twin of :func:`inversion.model._core_split` for one bulk ``a`` (n,).
-
-    ``iterations=None`` (the default) solves the fixed point in numpy and takes one
-    symbolic Newton step from it, ``s1 = s* + inv(I - J) (G(s*) - s*)``, whose value is
-    the fixed point and whose derivative is the implicit-function derivative
-    ``inv(I - J) dG/dtheta``: a small graph that compiles fast. An integer unrolls that
-    many plain iterations instead (the textbook route, kept for checks).
-    """
-    import pytensor.tensor as pt
-
-    xp = _XP(True)
-    if iterations is not None:
-        s = [pt.as_tensor_variable(v) for v in _state0(p)]
-        for _ in range(iterations):
-            nxt, res = _core_step(xp, p, a, D, s)
-            s = nxt
-        return res
-    s_star, minv = _fixed_point_op(p)(a, D)
-    g, _ = _core_step(xp, p, a, D, [s_star[i] for i in range(len(_state0(p)))])
-    s1 = s_star + pt.dot(minv, pt.stack(g) - s_star)
-    _, res = _core_step(xp, p, a, D, [s1[i] for i in range(len(_state0(p)))])
-    return res
-
-
-def model_log10N(p: Problem, w, vol: list[Any], lam, D, *, iterations: int | None = None
-                 ) -> dict[str, Any]:
-    """Symbolic forward model: log10 N of every element (n,), plus M_s, M_c and v.
-
-    Mirrors :func:`inversion.model.forward` for one parameter set; ``w`` (K,), ``vol`` a
-    list of scalars, ``lam`` a scalar, ``D`` (n,) tensors or arrays.
-    """
-    import pytensor.tensor as pt
-
-    logr = pt_log10_retained(p.volatility_form, vol, p.tc)
-    logr = logr - logr[p.ref_index]
-    a = pt.dot(w, p.Q) * 10.0 ** logr
-    split = _pt_core_split(a, p, D, iterations)
-    c_R = 1.0 / split["M_s"]
-    v = lam * p.c_late_R / ((1.0 - lam) * c_R + lam * p.c_late_R)
-    ratio = (1.0 - v) * split["mantle"] + v * p.q_late
-    log10N = pt.log10(ratio / p.q_ci)
-    return {"log10N": log10N, "M_s": split["M_s"], "M_c": split["M_c"], "v": v,
-            "cmf": split["M_c"] / (split["M_s"] + split["M_c"])}
+        def planet_predictions(w, vol, lam):
+            return f(w, vol, lam, jnp.zeros(0))
+    return wrap_jax(planet_predictions)
 
 
 def _prior_rv(name: str, spec: dict[str, Any], **kw: Any):
@@ -576,37 +350,18 @@ def _prior_rv(name: str, spec: dict[str, Any], **kw: Any):
     return getattr(pm, spec["dist"])(name, **pars, **kw)
 
 
-def end_member_sigma_dex(p: Problem, w: Any, *, xp: Any = np, Q: Any = None,
-                         S: Any = None) -> Any:
-    """Model 1-sigma [dex] of the fitted elements from the blocks' own uncertainties.
-
-    The bulk ratio of element i to the reference is ``B_i = sum_k w_k Q_ki`` (R-basis
-    weights). Each ``Q_ki`` is uncertain by ``s_ki`` dex (``Problem.Q_sigma_dex``), i.e.
-    ``dQ_ki = ln10 Q_ki s_ki`` to first order, independently between blocks. Then
-    ``var(B_i) = sum_k (w_k ln10 Q_ki s_ki)^2`` and, in dex,
-    ``sigma_model_i = sqrt(var B_i) / (ln10 B_i) = sqrt(sum_k (w_k Q_ki s_ki)^2) / B_i``.
-    Volatility and core factors multiply ``B_i`` and leave the relative spread unchanged;
-    the late component's share of the mantle is neglected (conservative for the HSE).
-    (Fully correlated block errors would give ``sum_k w_k Q_ki s_ki / B_i`` instead.)
-
-    Parameters
-    ----------
-    p : Problem
-    w : (K,) weights (numpy array or pytensor tensor)
-    xp : module
-        ``numpy`` or ``pytensor.tensor``.
-    Q, S : optional
-        The fitted columns of ``p.Q`` and ``p.Q_sigma_dex`` (e.g. as ``pm.Data``).
-    """
+def end_member_sigma_dex(p: Problem, w: Any) -> np.ndarray:
+    """Model 1-sigma [dex] of the fitted elements from the blocks' own uncertainties at
+    weights ``w`` (K,): ``sqrt(sum_k (w_k Q_ki s_ki)^2) / sum_k w_k Q_ki``
+    (:func:`inversion.kernel.end_member_variance`)."""
     fit = p.fit_index
-    Q = np.asarray(p.Q, float)[:, fit] if Q is None else Q
-    S = np.asarray(p.Q_sigma_dex, float)[:, fit] if S is None else S
-    wq = w[:, None] * Q
-    return xp.sqrt(xp.sum((wq * S) ** 2, axis=0)) / xp.sum(wq, axis=0)
+    Q = np.asarray(p.Q, float)[:, fit]
+    S = np.asarray(p.Q_sigma_dex, float)[:, fit]
+    return np.sqrt(kernel.end_member_variance(np, Q, S, np.asarray(w, float)))
 
 
 def build_model(p: Problem, priors: dict[str, dict[str, Any]] | None = None, *,
-                y: np.ndarray | None = None, iterations: int | None = None):
+                y: np.ndarray | None = None):
     """The PyMC model of problem ``p``.
 
     Parameters
@@ -617,8 +372,6 @@ def build_model(p: Problem, priors: dict[str, dict[str, Any]] | None = None, *,
     y : ndarray, optional
         Observed log10 N of the fitted elements (defaults to ``p.y``; simulation studies
         pass synthetic data here).
-    iterations : int, optional
-        Unrolled fixed-point iterations of the core split instead of the implicit form.
 
     Returns
     -------
@@ -652,7 +405,6 @@ def build_model(p: Problem, priors: dict[str, dict[str, Any]] | None = None, *,
             lam = _prior_rv("lam", priors["lam"])
         else:
             lam = pt.as_tensor_variable(0.0)
-        D = pt.as_tensor_variable(np.asarray(p.D, float))
         if part:
             mus = [priors[f"log10D_{p.elements[j]}"] for j in part]
             if all(s["dist"] == "Normal" for s in mus):
@@ -663,58 +415,41 @@ def build_model(p: Problem, priors: dict[str, dict[str, Any]] | None = None, *,
                 log10D = pt.stack([_prior_rv(f"log10D_{p.elements[j]}", s)
                                    for j, s in zip(part, mus, strict=True)])
                 pm.Deterministic("log10D", log10D, dims="partitioned")
-            D = pt.set_subtensor(D[np.array(part)], 10.0 ** log10D)
         tau = _prior_rv("tau", priors["tau"])
-        out = model_log10N(p, w, vol, lam, D, iterations=iterations)
-        mu = pm.Deterministic("mu", out["log10N"][p.fit_index], dims="elements")
+        pred = _jax_predictions(p, part)
+        vol_v = pt.stack([pt.as_tensor_variable(v, dtype="float64") for v in vol])
+        lam_v = pt.as_tensor_variable(lam, dtype="float64")
+        if part:
+            mu_v, em2, eps_v, eps_var, cmf_v, v_late = pred(w, vol_v, lam_v, log10D)
+        else:
+            mu_v, em2, eps_v, eps_var, cmf_v, v_late = pred(w, vol_v, lam_v)
+        mu = pm.Deterministic("mu", mu_v, dims="elements")
         x = w / p.c_comp_R
         if K > 1:
             pm.Deterministic("x", x / pt.sum(x), dims="components")
-        pm.Deterministic("cmf", out["cmf"])
+        pm.Deterministic("cmf", cmf_v)
         # the squared uncertainties enter as data, not a constant: pytensor 2.38's
         # constant-inlining rewrite fails (harmlessly, but loudly) on the constant form
         sigma2 = pm.Data("sigma2_data", p.sigma ** 2, dims="elements")
         if p.Q_sigma_dex is not None and np.any(p.Q_sigma_dex[:, p.fit_index] > 0):
             # end-member uncertainties (errors in variables, marginalised to first order):
             # sigma_model_i = sqrt(sum_k (w_k Q_ki s_ki)^2) / sum_k w_k Q_ki  [dex]
-            # as data, not constants (the same pytensor rewrite issue as sigma2_data)
-            q_fit = pm.Data("Q_fit_data", np.asarray(p.Q, float)[:, p.fit_index])
-            s_fit = pm.Data("Q_sigma_fit_data",
-                            np.asarray(p.Q_sigma_dex, float)[:, p.fit_index])
-            sigma2 = sigma2 + pm.Deterministic(
-                "sigma_model", end_member_sigma_dex(p, w, xp=pt, Q=q_fit, S=s_fit),
-                dims="elements") ** 2
+            sigma2 = sigma2 + pm.Deterministic("sigma_model", pt.sqrt(em2),
+                                               dims="elements") ** 2
         scale = pt.sqrt(sigma2 + tau ** 2)
         y_data = pm.Data("y_data", y, dims="elements")
         pm.StudentT(OBS_ELEMENTS, nu=STUDENT_NU, mu=mu, sigma=scale, observed=y_data,
                     dims="elements")
         if p.isotopes:
-            v = out["v"]
-            preds, vals, sigs = [], [], []
-            for iso in p.isotopes:
-                num = (1 - v) * pt.sum(w * iso["q_carrier"] * iso["eps"]) + v * iso[
-                    "q_late"] * iso["eps_late"]
-                den = (1 - v) * pt.sum(w * iso["q_carrier"]) + v * iso["q_late"]
-                mix = num / den
-                preds.append(mix)
-                vals.append(iso["value"])
-                # end-member uncertainties (inversion.isotopes.effective_sigma):
-                # sigma_obs^2 + sum_k phi_k^2 (s_k^2 + r_k^2 (eps_k - eps_mix)^2)
-                n_blk = np.size(iso["eps"])
-                s_k = np.asarray(iso.get("eps_sigma", np.zeros(n_blk)), float)
-                r_k = np.asarray(iso.get("q_carrier_rel_sigma", np.zeros(n_blk)), float)
-                phi = (1 - v) * w * iso["q_carrier"] / den
-                phi_late = v * iso["q_late"] / den
-                var = iso["sigma"] ** 2 + pt.sum(phi ** 2 * (s_k ** 2 + r_k ** 2 * (
-                    iso["eps"] - mix) ** 2)) + phi_late ** 2 * (
-                    iso.get("eps_sigma_late", 0.0) ** 2
-                    + iso.get("q_carrier_rel_sigma_late", 0.0) ** 2
-                    * (iso["eps_late"] - mix) ** 2)
-                sigs.append(pt.sqrt(var))
-            eps = pm.Deterministic("eps_pred", pt.stack(preds), dims="isotopes")
-            eps_sd = pm.Deterministic("eps_sigma", pt.stack(sigs), dims="isotopes")
-            pm.Normal("eps_obs", mu=eps, sigma=eps_sd, observed=np.array(vals),
-                      dims="isotopes")
+            # carrier-weighted balance and the variance widened by the end-members'
+            # errors (inversion.kernel.isotope_variance):
+            # sigma_obs^2 + sum_k phi_k^2 (s_k^2 + r_k^2 (eps_k - eps_mix)^2)
+            eps = pm.Deterministic("eps_pred", eps_v, dims="isotopes")
+            eps_sd = pm.Deterministic("eps_sigma", pt.sqrt(eps_var), dims="isotopes")
+            # as data: simulation studies swap the observed anomalies without compiling
+            eps_data = pm.Data("eps_data", np.array([iso["value"] for iso in p.isotopes]),
+                               dims="isotopes")
+            pm.Normal("eps_obs", mu=eps, sigma=eps_sd, observed=eps_data, dims="isotopes")
     return model
 
 
@@ -927,10 +662,10 @@ def sample(p: Problem, settings: SamplerSettings | None = None, *,
     cores = settings.cores or min(settings.chains, os.cpu_count() or 1)
     if settings.engine == "nutpie":
         if progress:
-            print("compiling the log density and its gradient (numba; cached on disk for "
+            print("compiling the log density and its gradient (JAX; cached on disk for "
                   "the next run of the same model) ...", file=sys.stderr, flush=True)
         with warnings.catch_warnings():
-            # pytensor's C backend warns that it found no BLAS to link; the numba path
+            # pytensor's C backend warns that it found no BLAS to link; the JAX path
             # does not use that backend, so the warning would only mislead here
             warnings.filterwarnings("ignore", message="PyTensor could not link to a BLAS")
             runner = _NutpieModel.build(model)
@@ -988,14 +723,19 @@ def sample(p: Problem, settings: SamplerSettings | None = None, *,
                         log_marginal_likelihood=lml, smc=smc_info)
 
 
-def _unconstrain_function(model: Any):
+def _unconstrain_function(model: Any, order: list[str] | None = None):
     """Compiled map from constrained values of the free parameters (a dict) to the flat
-    unconstrained vector, in the order of ``model.free_RVs`` (nutpie's order)."""
+    unconstrained vector, in the order of the value variables named in ``order`` (the
+    sampler's order; default ``model.free_RVs``)."""
     import pytensor
     import pytensor.tensor as pt
 
+    rvs = list(model.free_RVs)
+    if order is not None:
+        by_value = {model.rvs_to_values[rv].name: rv for rv in rvs}
+        rvs = [by_value[n] for n in order]
     ins, outs, names = [], [], []
-    for rv in model.free_RVs:
+    for rv in rvs:
         x = rv.type()
         tr = model.rvs_to_transforms.get(rv)
         y = tr.forward(x, *rv.owner.inputs) if tr is not None else x
@@ -1017,28 +757,35 @@ class _NutpieModel:
 
     @classmethod
     def build(cls, model: Any) -> _NutpieModel:
-        """Compile ``model`` with numba, without fast-math: with it, a fresh compile and
-        one loaded from the disk cache differed in the last bits, and the chaotic NUTS
-        trajectories then gave different draws for the same seed (seen on the demo
-        planet); without it, every compile gives the same draws."""
+        """Compile ``model``'s log density and gradient with JAX (the physics is the
+        JAX operation of :mod:`inversion.jaxmodel`; the priors and transforms are PyMC's
+        graph, translated to JAX by pytensor)."""
         import nutpie
-        import pytensor
 
+        from .jaxmodel import jax_setup
+
+        jax_setup()
         t = time.perf_counter()
         keep = [rv.name for rv in model.free_RVs] + [d.name for d in model.deterministics]
-        with pytensor.config.change_flags(numba__fastmath=False):
-            compiled = nutpie.compile_pymc_model(model, backend="numba", var_names=keep)
-        return cls(compiled, _unconstrain_function(model), time.perf_counter() - t)
+        # not frozen: the observations stay data, so that simulation studies swap them
+        # without compiling again (``with_data``)
+        compiled = nutpie.compile_pymc_model(model, backend="jax", gradient_backend="jax",
+                                             var_names=keep, freeze_model=False)
+        # the JAX model orders the unconstrained vector by its own rule: take it from it
+        values = {model.rvs_to_values[rv].name for rv in model.free_RVs}
+        order = [v.name for v in compiled._variables if v.name in values]
+        return cls(compiled, _unconstrain_function(model, order), time.perf_counter() - t)
 
     def run(self, p: Problem, priors: dict[str, dict[str, Any]], fit: Any,
             settings: SamplerSettings, *, cores: int, seed: int, jitter_seed: int,
-            progress: bool, y: np.ndarray | None = None
+            progress: bool, y: np.ndarray | None = None, eps: np.ndarray | None = None
             ) -> tuple[Any, list[dict[str, Any]], float]:
         """NUTS by nutpie, on the model's own observations or on ``y`` (SBC).
 
         Returns the InferenceData (free parameters in the constrained space, the
         deterministics, the observed data), the start points (in the order of the chain
-        seeds) and the sampling seconds.
+        seeds) and the sampling seconds. ``eps`` replaces the observed isotope anomalies
+        (simulation studies), as ``y`` replaces the element data.
 
         Each chain starts from the convex optimum jittered by a generator seeded with
         ``(jitter_seed, chain seed)``, so that a run is reproducible from its seed
@@ -1059,8 +806,14 @@ class _NutpieModel:
                 starts[int(chain_seed)] = iv
             return self.unconstrain(iv)
 
-        compiled = self.compiled if y is None else self.compiled.with_data(y_data=y)
-        compiled = dc_replace(compiled, initial_point_func=initial_point)
+        data = {} if y is None else {"y_data": np.asarray(y, float)}
+        if eps is not None:
+            data["eps_data"] = np.asarray(eps, float)
+        compiled = self.compiled.with_data(**data) if data else self.compiled
+        # nutpie's JAX models (PyFuncModel) and numba models name the start hook apart
+        hook = ("_make_initial_points" if hasattr(compiled, "_make_initial_points")
+                else "initial_point_func")
+        compiled = dc_replace(compiled, **{hook: initial_point})
         t = time.perf_counter()
         mass = {"draw-variance": {"use_grad_based_mass_matrix": False},
                 "gradient-variance": {},
@@ -1070,18 +823,23 @@ class _NutpieModel:
                               target_accept=settings.target_accept, save_warmup=False,
                               progress_bar=progress, **mass)
         t_nuts = time.perf_counter() - t
-        _add_observed(idata, p, compiled.shared_data["y_data"])
+        shared = getattr(compiled, "_shared_data", None)
+        shared = compiled.shared_data if shared is None else shared
+        _add_observed(idata, p, np.asarray(shared["y_data"]),
+                      None if eps is None else np.asarray(eps, float))
         return idata, [starts[k] for k in sorted(starts)], t_nuts
 
 
-def _add_observed(idata: Any, p: Problem, y: np.ndarray) -> None:
+def _add_observed(idata: Any, p: Problem, y: np.ndarray,
+                  eps: np.ndarray | None = None) -> None:
     """The ``observed_data`` group (elements and isotopes), as PyMC writes it."""
     import xarray as xr
 
     data = {OBS_ELEMENTS: (("elements",), np.asarray(y, float))}
     coords = {"elements": list(p.fit_elements)}
     if p.isotopes:
-        data["eps_obs"] = (("isotopes",), np.array([d["value"] for d in p.isotopes]))
+        eps = np.array([d["value"] for d in p.isotopes]) if eps is None else eps
+        data["eps_obs"] = (("isotopes",), np.asarray(eps, float))
         coords["isotopes"] = [d["name"] for d in p.isotopes]
     idata.add_groups({"observed_data": xr.Dataset(data, coords=coords)})
 

@@ -80,8 +80,8 @@ def write_sample(out: Path, case: Any, p: Any, result: Any) -> dict[str, Any]:
 
 
 _SAMPLER_TEXT = {
-    "nutpie": "NUTS by nutpie (log density and gradient compiled with numba through "
-              "pytensor), chains started from the convex optimum (jittered)",
+    "nutpie": "NUTS by nutpie (log density and gradient compiled with JAX; the physics "
+              "is inversion.kernel), chains started from the convex optimum (jittered)",
     "pymc": "NUTS by PyMC (log density compiled through pytensor's C backend), chains "
             "started from the convex optimum (jittered)",
 }

@@ -33,17 +33,17 @@ import pandas as pd
 
 import components
 
+from . import kernel
 from .case import CONDENSATION_TABLES, ISOTOPE_CARRIERS, Case
 from .exceptions import InputError
-from .volatility import get_form, log10_retained
+from .volatility import get_form
 
 __all__ = ["Problem", "compile_problem", "forward", "relative_log_retained",
            "default_partition", "CORE_ITERATIONS", "MODEL_EXCLUDED", "METAL_CLASSES",
            "implausible_values", "implausible_lines", "IMPLAUSIBLE_DEX"]
 
-#: Maximum fixed-point iterations for the core-to-mantle mass ratio (it stops earlier once
-#: k changes by < 1e-12 relative; chondritic bulk compositions need about ten).
-CORE_ITERATIONS = 200
+#: Maximum fixed-point iterations of the core split (:data:`inversion.kernel.CORE_ITERATIONS`).
+CORE_ITERATIONS = kernel.CORE_ITERATIONS
 #: Elements kept out of the mass balance: oxygen comes from stoichiometry; H, C, N and
 #: the noble gases are not part of a rocky mantle's oxide budget.
 MODEL_EXCLUDED = frozenset({"O", "H", "C", "N", "He", "Ne", "Ar", "Kr", "Xe"})
@@ -541,54 +541,27 @@ def _dropped(case: Case, els: list[str], fit: np.ndarray, y_all: np.ndarray,
 
 def _core_split(a: np.ndarray, p: Problem, D: np.ndarray, k0: np.ndarray | None = None
                 ) -> dict[str, np.ndarray]:
-    """Mass balance between mantle and core for bulk ``a`` (B, n) per unit mass of R."""
-    B = a.shape[0]
-    fe = p.fe_index
-    f = p.oxide_factor
-    is_fe = np.zeros(a.shape[1])
-    is_fe[fe] = 1.0
-    k = np.full((B, 1), 0.5) if k0 is None else np.asarray(k0, float).reshape(B, 1)
-    D = np.broadcast_to(D, a.shape).copy()
-    aw = p.atomic_weight
-    D_fe = np.full((B, 1), np.nan)
-    if p.dIW is not None:
-        D_fe = np.full((B, 1), 10 ** (-p.dIW / 2.0) * 50.0 / 55.0)
-    k_prev = np.full_like(k, np.inf)
-    for _ in range(CORE_ITERATIONS):
-        if np.all(np.abs(k - k_prev) <= 1e-12 * (1.0 + np.abs(k))):
-            break
-        k_prev = k
-        if p.mantle_Fe is not None:
-            m = a / (1.0 + D * k) * (1.0 - is_fe)
-            s1 = (m * f).sum(axis=1, keepdims=True)
-            M_s = s1 / (1.0 - f[fe] * p.mantle_Fe)
-            m = m + is_fe * p.mantle_Fe * M_s
-        else:
-            Dk = D * (1.0 - is_fe) + is_fe * D_fe
-            m = a / (1.0 + Dk * k)
-            M_s = (m * f).sum(axis=1, keepdims=True)
-        core = a - m
-        M_c = core.sum(axis=1, keepdims=True)
-        if p.dIW is not None:
-            mol_sil = (m / (aw * p.cations)).sum(axis=1, keepdims=True)
-            mol_met = (np.clip(core, 0, None) / aw).sum(axis=1, keepdims=True)
-            mbar_sil = M_s / mol_sil
-            mbar_met = np.where(mol_met > 0, M_c / np.maximum(mol_met, 1e-300), aw[fe])
-            D_fe = 10 ** (-p.dIW / 2.0) * mbar_sil / mbar_met
-        k = np.maximum(M_c, 0.0) / M_s
-    return {"mantle": m, "core": core, "M_s": M_s[:, 0], "M_c": M_c[:, 0], "k": k[:, 0],
-            "D_Fe": D_fe[:, 0]}
+    """Mass balance between mantle and core for bulk ``a`` (B, n) per unit mass of R
+    (:func:`inversion.kernel.solve_core` on numpy); ``k0`` (B,) warm-starts k."""
+    c = kernel.static_of(p)
+    s0 = None
+    if k0 is not None:
+        s0 = kernel.start_state(np, c, (a.shape[0],))
+        s0[:, 0] = np.asarray(k0, float).reshape(-1)
+    s, res = kernel.solve_core(np, c, a, D, s0)
+    return {"mantle": res["mantle"], "core": res["core"], "M_s": res["M_s"][:, 0],
+            "M_c": res["M_c"][:, 0], "k": s[:, 0], "D_Fe": res["D_Fe"][:, 0]}
 
 
 def relative_log_retained(p: Problem, vol: np.ndarray) -> np.ndarray:
     """Volatility factor log10(r_i / r_R) for each parameter set, shape (B, n)."""
-    logr = log10_retained(p.volatility_form, vol, p.tc, metal=p.metal_class)
-    return logr - logr[:, p.ref_index:p.ref_index + 1]
+    return kernel.relative_log_retained(np, kernel.static_of(p), np.atleast_2d(vol))
 
 
 def forward(p: Problem, w: np.ndarray, vol: np.ndarray, lam: np.ndarray | float = 0.0,
             *, D: np.ndarray | None = None) -> dict[str, np.ndarray]:
-    """Run the forward model for a batch of parameter sets.
+    """Run the forward model for a batch of parameter sets (:func:`inversion.kernel.forward`
+    on numpy).
 
     Parameters
     ----------
@@ -617,22 +590,11 @@ def forward(p: Problem, w: np.ndarray, vol: np.ndarray, lam: np.ndarray | float 
     w = np.broadcast_to(w, (B, w.shape[1]))
     vol = np.broadcast_to(vol, (B, vol.shape[1]))
     lam = np.broadcast_to(np.asarray(lam, float), (B,))
-    logr = relative_log_retained(p, vol)
-    # Q is (K, n), or (B, K, n) when hypotheses are stacked along the batch axis
-    a = (w @ p.Q if p.Q.ndim == 2 else np.einsum("bk,bkn->bn", w, p.Q)) * 10.0 ** logr
-    split = _core_split(a, p, p.D if D is None else D)
-    c_R = 1.0 / split["M_s"]
-    v = lam * p.c_late_R / ((1.0 - lam) * c_R + lam * p.c_late_R)
-    ratio = (1.0 - v)[:, None] * split["mantle"] + v[:, None] * p.q_late[None, :]
-    x = w / np.atleast_2d(p.c_comp_R)
-    x = x / x.sum(axis=1, keepdims=True)
-    M_tot = split["M_s"] + split["M_c"]
+    c = kernel.static_of(p)
     with np.errstate(divide="ignore"):
-        log10N = np.log10(ratio / p.q_ci[None, :])
-    return {"log10N": log10N, "ratio": ratio, "bulk": a, "mantle": split["mantle"],
-            "core": split["core"], "M_s": split["M_s"], "M_c": split["M_c"],
-            "k": split["k"], "cmf": split["M_c"] / M_tot, "v": v, "x": x, "lam": lam,
-            "D_Fe": split["D_Fe"], "logr": logr}
+        out = kernel.forward(np, c, w, vol, lam, p.D if D is None else np.asarray(D, float))
+    out.pop("state")
+    return out
 
 
 def lam_from_v(p: Problem, v: np.ndarray, M_s: np.ndarray) -> np.ndarray:

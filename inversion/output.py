@@ -202,7 +202,7 @@ def provenance(*, tables: list[str], extra: dict[str, Any] | None = None,
                            "recalled_values": int(c.recalled.sum())}
     keys |= {k for k in tables if k in srcs.index}
     versions = {}
-    for pkg in ("numpy", "scipy", "pandas", "cvxpy", "pymc", "pytensor", "nutpie", "numba",
+    for pkg in ("numpy", "scipy", "pandas", "cvxpy", "pymc", "pytensor", "nutpie", "jax",
                 "arviz", "periodictable"):
         try:
             versions[pkg] = metadata.version(pkg)

@@ -11,6 +11,7 @@ Wang H. S., Lineweaver C. H., Ireland T. R. (2019) Icarus 328, 287 (power law in
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 
@@ -83,8 +84,8 @@ def get_form(name: str) -> VolatilityForm:
     return FORMS[name]
 
 
-def log10_retained(form: str, params: np.ndarray, tc: np.ndarray, *,
-                   metal: np.ndarray | None = None) -> np.ndarray:
+def log10_retained(form: str, params: Any, tc: np.ndarray, *,
+                   metal: np.ndarray | None = None, xp: Any = np) -> Any:
     """log10 of the retained fraction for each parameter set and element.
 
     Parameters
@@ -98,6 +99,9 @@ def log10_retained(form: str, params: np.ndarray, tc: np.ndarray, *,
     metal : ndarray of bool, shape (n,), optional
         True for chalcophile and siderophile elements; required by ``kinked-split``
         (whose ``slope_offset`` applies to them), ignored by the other forms.
+    xp : module
+        Array namespace: ``numpy`` (parameters made at least 2-D) or ``jax.numpy``
+        (any leading shape, e.g. one parameter set of shape (p,) gives (n,)).
 
     Returns
     -------
@@ -113,23 +117,23 @@ def log10_retained(form: str, params: np.ndarray, tc: np.ndarray, *,
     ...                np.array([700.0, 700.0]), metal=np.array([False, True]))
     array([[-1. , -1.5]])
     """
-    p = np.atleast_2d(np.asarray(params, dtype=float))
-    tc = np.asarray(tc, dtype=float)[None, :]
+    p = np.atleast_2d(np.asarray(params, dtype=float)) if xp is np else params
+    tc = np.asarray(tc, dtype=float)
     if form == "kinked":
-        return np.minimum(0.0, p[:, 1:2] * (tc - p[:, 0:1]))
+        return xp.minimum(0.0, p[..., 1:2] * (tc - p[..., 0:1]))
     if form == "power":
-        return np.minimum(0.0, p[:, 0:1] * np.log10(tc) + p[:, 1:2])
+        return xp.minimum(0.0, p[..., 0:1] * np.log10(tc) + p[..., 1:2])
     if form == "logistic":
-        z = (tc - p[:, 0:1]) / p[:, 1:2]
+        z = (tc - p[..., 0:1]) / p[..., 1:2]
         # log10(1/(1+exp(-z))) computed stably
-        return -np.logaddexp(0.0, -z) / np.log(10.0)
+        return -xp.logaddexp(0.0, -z) / np.log(10.0)
     if form == "kinked-floor":
-        return np.maximum(p[:, 2:3], np.minimum(0.0, p[:, 1:2] * (tc - p[:, 0:1])))
+        return xp.maximum(p[..., 2:3], xp.minimum(0.0, p[..., 1:2] * (tc - p[..., 0:1])))
     if form == SPLIT_FORM:
         if metal is None:
             raise ValueError("the kinked-split form needs the class mask 'metal'")
-        m = np.asarray(metal, dtype=float)[None, :]
-        s = np.maximum(0.0, p[:, 1:2] + p[:, 2:3] * m)
-        return np.minimum(0.0, s * (tc - p[:, 0:1]))
+        m = np.asarray(metal, dtype=float)
+        s = xp.maximum(0.0, p[..., 1:2] + p[..., 2:3] * m)
+        return xp.minimum(0.0, s * (tc - p[..., 0:1]))
     check_option("volatility form", form, FORMS)
     raise AssertionError("unreachable")

@@ -1,0 +1,108 @@
+"""The forward model of :mod:`inversion.kernel` on JAX: exact gradients and the pieces of
+the log density that the NUTS sampler runs.
+
+:func:`predictions` returns one JAX function of the sampled parameters (building-block
+weights, volatility parameters, late fraction, log10 D of the partitioned elements) that
+gives everything the likelihood needs: the predicted log10 N of the fitted elements, the
+end-member variance, the isotope predictions and their widened variances, and the planet's
+core fraction. :mod:`inversion.bayes` wraps it as one PyMC operation (``pytensor``'s
+``wrap_jax``), so priors, transforms, InferenceData and LOO stay PyMC's and ArviZ's while
+the physics is the one implementation of :mod:`inversion.kernel`.
+
+JAX runs in double precision (``jax_enable_x64``) and keeps compiled programs in a cache
+on disk (``PLANETMIX_JAX_CACHE``, default ``~/.cache/planetmix/jax``), so the second run
+of a case loads its log density instead of compiling it.
+"""
+
+from __future__ import annotations
+
+import os
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from . import kernel
+
+__all__ = ["jax_setup", "predictions", "PREDICTION_KEYS", "cache_dir"]
+
+#: Outputs of :func:`predictions`, in order.
+PREDICTION_KEYS = ("mu", "sigma_model2", "eps_pred", "eps_var", "cmf", "v")
+_READY: list[bool] = []
+
+
+def cache_dir() -> Path:
+    """Folder of JAX's persistent compilation cache."""
+    env = os.environ.get("PLANETMIX_JAX_CACHE")
+    return Path(env) if env else Path.home() / ".cache" / "planetmix" / "jax"
+
+
+def jax_setup() -> Any:
+    """Import JAX in double precision with the persistent compilation cache; returns
+    ``jax``. Idempotent."""
+    os.environ.setdefault("JAX_PLATFORMS", "cpu")
+    import jax
+
+    if not _READY:
+        jax.config.update("jax_enable_x64", True)
+        try:
+            folder = cache_dir()
+            folder.mkdir(parents=True, exist_ok=True)
+            jax.config.update("jax_compilation_cache_dir", str(folder))
+            jax.config.update("jax_persistent_cache_min_compile_time_secs", 0.0)
+            jax.config.update("jax_persistent_cache_min_entry_size_bytes", 0)
+        except OSError:  # a read-only home: compile every time
+            pass
+        _READY.append(True)
+    return jax
+
+
+def predictions(p: Any, partitioned: list[int] | tuple[int, ...] = ()) -> Any:
+    """The JAX function ``f(w, vol, lam, log10D) -> tuple`` of problem ``p``.
+
+    Parameters
+    ----------
+    p : Problem
+    partitioned : indices of the elements whose log10 D is a parameter
+
+    Returns
+    -------
+    callable
+        ``f(w (K,), vol (p,), lam (), log10D (len(partitioned),))`` returning the arrays
+        of :data:`PREDICTION_KEYS`: ``mu`` (n_fit,) predicted log10 N of the fitted
+        elements; ``sigma_model2`` (n_fit,) end-member variance [dex^2] (zeros without
+        block uncertainties); ``eps_pred``, ``eps_var`` (n_iso,) isotope predictions and
+        widened variances; ``cmf``, ``v`` scalars.
+    """
+    jax_setup()
+    import jax.numpy as jnp
+
+    c = kernel.static_of(p)
+    fit = np.asarray(p.fit_index)
+    D0 = np.asarray(p.D, float)
+    part = np.asarray(partitioned, dtype=int)
+    q_sig = getattr(p, "Q_sigma_dex", None)
+    has_em = q_sig is not None and bool(np.any(np.asarray(q_sig)[:, fit] > 0))
+    Q_fit = np.asarray(p.Q, float)[:, fit]
+    S_fit = np.asarray(q_sig, float)[:, fit] if has_em else None
+    isotopes = [{k: (np.asarray(v, float) if isinstance(v, np.ndarray) else v)
+                 for k, v in d.items()} for d in p.isotopes]
+
+    def f(w: Any, vol: Any, lam: Any, log10D: Any) -> tuple[Any, ...]:
+        D = jnp.asarray(D0)
+        if part.size:
+            D = D.at[part].set(10.0 ** log10D)
+        out = kernel.forward(jnp, c, w, vol, lam, D)
+        mu = out["log10N"][fit]
+        em = (kernel.end_member_variance(jnp, Q_fit, S_fit, w) if has_em
+              else jnp.zeros(fit.size))
+        preds, vars_ = [], []
+        for iso in isotopes:
+            e, var = kernel.isotope_variance(jnp, iso, w, out["v"])
+            preds.append(e)
+            vars_.append(var)
+        eps = jnp.stack(preds) if preds else jnp.zeros(0)
+        eps_var = jnp.stack(vars_) if vars_ else jnp.zeros(0)
+        return mu, em, eps, eps_var, out["cmf"], out["v"]
+
+    return f
