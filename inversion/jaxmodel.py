@@ -41,6 +41,10 @@ def jax_setup() -> Any:
     """Import JAX in double precision with the persistent compilation cache; returns
     ``jax``. Idempotent."""
     os.environ.setdefault("JAX_PLATFORMS", "cpu")
+    # one thread per computation: the arrays are tiny and the chains already run in
+    # parallel, so XLA's intra-op thread pool only adds overhead (measured ~1.5x)
+    os.environ.setdefault("XLA_FLAGS", "--xla_cpu_multi_thread_eigen=false "
+                                       "intra_op_parallelism_threads=1")
     import jax
 
     if not _READY:

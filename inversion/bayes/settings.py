@@ -1,0 +1,105 @@
+"""Settings of a NUTS run and their validation (``[sampler]``)."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any
+
+from ..exceptions import InputError
+from ..options import check_option
+
+__all__ = ["SamplerSettings", "ENGINES", "MASS_MATRICES", "PYMC_INITS", "check_sampler_settings"]
+
+@dataclass(frozen=True)
+class SamplerSettings:
+    """Settings of a NUTS run (recorded in every result).
+
+    Defaults: 4 chains of 1000 tuning and 1000 kept draws at target acceptance 0.9,
+    which pass the gate on the library's cases (bulk ESS >= 400 needs about 100
+    effective draws per chain). ``mass_matrix`` (nutpie only) is one of
+    :data:`MASS_MATRICES`. ``engine`` chooses the NUTS implementation:
+    ``"numpyro"`` (default; NumPyro's NUTS on the JAX log density, the whole sampler
+    compiled by XLA with the chains vectorised: the fastest to a result on the demo,
+    docs/forward_model.md), ``"nutpie"`` (nutpie's NUTS calling the same JAX log
+    density from Rust, chains in threads; compiles once and swaps data, which is what
+    the calibration runs use) or ``"pymc"`` (PyMC's own NUTS in Python, chains in
+    processes; slowest per draw, kept for cross-checks).
+    """
+
+    draws: int = 1000
+    tune: int = 1000
+    chains: int = 4
+    seed: int = 0
+    target_accept: float = 0.9
+    cores: int | None = None
+    jitter: float = 0.02
+    init: str = "adapt_diag"
+    evidence: bool = False
+    smc_draws: int = 1000
+    smc_chains: int = 2
+    engine: str = "numpyro"
+    mass_matrix: str = "draw-variance"
+
+
+#: NUTS implementations (``[sampler] engine``, ``--engine``).
+ENGINES = ("nutpie", "numpyro", "pymc")
+#: Mass-matrix adaptation of the nutpie engine (``[sampler] mass_matrix``):
+#: ``draw-variance`` (diagonal, from the variance of the tuning draws, as Stan and PyMC
+#: adapt it; the default: on the four-block demo planet it gave 1.7-2.6x the minimum
+#: bulk ESS of the gradient-based estimate at 1.6x the time), ``gradient-variance``
+#: (nutpie's own diagonal estimate from draws and gradients), ``low-rank`` (diagonal plus
+#: a low-rank correction for correlated parameters).
+MASS_MATRICES = ("draw-variance", "gradient-variance", "low-rank")
+#: PyMC initialisations of the mass matrix (``[sampler] init``; ``engine = "pymc"`` only).
+PYMC_INITS = ("adapt_diag", "jitter+adapt_diag", "adapt_full", "jitter+adapt_full")
+_SAMPLER_KEYS = ("draws", "tune", "chains", "seed", "target_accept", "cores", "engine",
+                 "mass_matrix", "init", "jitter", "smc_draws", "smc_chains", "evidence")
+
+
+def check_sampler_settings(table: dict[str, Any] | None, *, file: str | None = None,
+                           **overrides: Any) -> SamplerSettings:
+    """Settings from a case's ``[sampler]`` table, then command-line overrides.
+
+    Raises
+    ------
+    InputError
+        A value of the wrong kind or out of range.
+    """
+    vals: dict[str, Any] = {}
+    for src, where in ((table or {}, "sampler"), (overrides, "option")):
+        for k, v in src.items():
+            if v is None:
+                continue
+            fld = f"{where}.{k}" if where == "sampler" else f"--{k.replace('_', '-')}"
+            if k == "target_accept":
+                if isinstance(v, bool) or not isinstance(v, int | float) or not 0.5 <= v < 1:
+                    raise InputError("must be a number in [0.5, 1)", file=file, field=fld,
+                                     value=v)
+                vals[k] = float(v)
+            elif k in ("draws", "tune", "chains", "seed", "cores", "smc_draws", "smc_chains"):
+                lo = 0 if k in ("seed", "tune") else 1
+                if isinstance(v, bool) or not isinstance(v, int) or v < lo:
+                    raise InputError(f"must be a whole number >= {lo}", file=file, field=fld,
+                                     value=v)
+                vals[k] = int(v)
+            elif k == "evidence":
+                vals[k] = bool(v)
+            elif k == "jitter":
+                if isinstance(v, bool) or not isinstance(v, int | float) or not 0 <= v <= 0.5:
+                    raise InputError("must be a number in [0, 0.5]", file=file, field=fld,
+                                     value=v)
+                vals[k] = float(v)
+            elif k == "engine":
+                vals[k] = check_option("sampler engine", v, ENGINES, file=file, field=fld)
+            elif k == "mass_matrix":
+                vals[k] = check_option("mass-matrix adaptation", v, MASS_MATRICES, file=file,
+                                       field=fld)
+            elif k == "init":
+                vals[k] = check_option("sampler init", v, PYMC_INITS, file=file, field=fld)
+            else:
+                raise InputError(f"unknown sampler setting; allowed: {list(_SAMPLER_KEYS)}",
+                                 file=file, field=fld, value=v)
+    if vals.get("chains", 4) < 2:
+        raise InputError("the gate needs at least 2 chains (R-hat compares chains)",
+                         file=file, field="chains", value=vals.get("chains"))
+    return SamplerSettings(**vals)
