@@ -426,6 +426,8 @@ def polish(p: Problem, U0: np.ndarray, TH0: np.ndarray, *,
     cons = base["cons"].copy()
     r = base["r"].copy()
     act_sets = None
+    stale = np.ones(B, dtype=bool)
+    J_r = J_c = None
     for _ in range(settings.max_iterations):
         idx = np.flatnonzero(active)
         if idx.size == 0:
@@ -433,8 +435,19 @@ def polish(p: Problem, U0: np.ndarray, TH0: np.ndarray, *,
         pr = row_problem(p, idx)
         bsub = {"r": r[idx], "cons": cons[idx]}
         bnd = (bounds[0][idx], bounds[1][idx])
-        Jr, Jc = _jacobian(pr, U[idx], TH[idx], bsub, settings, cmf_range, bnd[1],
-                           restore)
+        # a row whose last step was rejected is still at the same point: its Jacobian
+        # is the one already computed (only the damping changes)
+        need = idx[stale[idx]]
+        if need.size:
+            Jr_n, Jc_n = _jacobian(row_problem(p, need), U[need], TH[need],
+                                   {"r": r[need], "cons": cons[need]}, settings, cmf_range,
+                                   bounds[1][need], restore)
+            if J_r is None:
+                J_r = np.zeros((B,) + Jr_n.shape[1:])
+                J_c = np.zeros((B,) + Jc_n.shape[1:])
+            J_r[need], J_c[need] = Jr_n, Jc_n
+            stale[need] = False
+        Jr, Jc = J_r[idx], J_c[idx]
         g_act = None if act_sets is None else act_sets[idx]
         Un, Tn, _pred, ok, act = _linearised_step(U[idx], TH[idx], bsub, Jr, Jc, lam[idx],
                                                   bnd, m, g_act)
@@ -446,6 +459,7 @@ def polish(p: Problem, U0: np.ndarray, TH0: np.ndarray, *,
                 & np.all(trial["cons"] >= -tol_c, axis=1))
         gain = np.where(good, chi2[idx] - trial["chi2"], 0.0)
         acc = idx[good]
+        stale[acc] = True
         U[acc], TH[acc] = Un[good], Tn[good]
         r[acc], cons[acc] = trial["r"][good], trial["cons"][good]
         small = good & (gain <= settings.tolerance * (1.0 + chi2[idx]))
