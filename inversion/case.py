@@ -42,7 +42,7 @@ _ALLOWED: dict[str, set[str]] = {
                "default_uncertainty_pct", "minimum_uncertainty_dex", "normaliser"},
     "building_blocks": {"candidates", "max_mixture_size"},
     "volatility": {"form", "condensation_table"},
-    "core": {"mantle_FeO_wt", "dIW", "D"},
+    "core": {"mantle_FeO_wt", "dIW", "D", "partitioning", "pressure_GPa", "temperature_K"},
     "late_accretion": {"component", "max_fraction"},
     "elements": {"exclude"},
     "fit": {"isotope_window_sigma", "cmf_range"},
@@ -72,6 +72,13 @@ class CoreSettings:
     mantle_FeO_wt: float | None
     dIW: float | None
     D: dict[str, float]
+    #: ``effective`` (constant D) or ``single-stage`` (D of the regressions at P, T, dIW;
+    #: :mod:`inversion.conditions`)
+    partitioning: str = "effective"
+    #: single-stage: one pressure [GPa] or (low, high) to infer by the convex fit
+    pressure_GPa: float | tuple[float, float] | None = None
+    #: single-stage: a temperature [K] or ``"liquidus"`` (tied to the pressure)
+    temperature_K: float | str | None = None
 
 
 @dataclass(frozen=True)
@@ -131,6 +138,65 @@ def reference_elements() -> list[str]:
     ok = (props["geochemical_class"] == "lithophile") & props["cosmochemical_class"].isin(
         ["refractory", "main_component"])
     return sorted(e for e in props.index[ok] if not part.get(e, 0.0) > 0)
+
+
+#: Partitioning models of ``[core] partitioning``.
+PARTITIONING_MODELS = ("effective", "single-stage")
+#: Pressure range [GPa] the regressions are used in (their experiments reach ~100 GPa).
+PRESSURE_LIMITS_GPA = (0.0, 150.0)
+#: Temperatures [K] accepted for ``temperature_K``.
+TEMPERATURE_LIMITS_K = (1200.0, 6000.0)
+
+
+def _core_conditions(core_raw: dict, D: dict[str, float], file: str
+                     ) -> tuple[str, float | tuple[float, float] | None, float | str | None]:
+    """``[core] partitioning``, ``pressure_GPa`` and ``temperature_K``, checked."""
+    model = check_option("partitioning model", core_raw.get("partitioning", "effective"),
+                         PARTITIONING_MODELS, file=file, field="core.partitioning")
+    P_raw, T_raw = core_raw.get("pressure_GPa"), core_raw.get("temperature_K")
+    if model == "effective":
+        for key, val in (("pressure_GPa", P_raw), ("temperature_K", T_raw)):
+            if val is not None:
+                raise InputError(f"{key} needs partitioning = \"single-stage\" (the "
+                                 "effective D do not depend on the conditions)", file=file,
+                                 field=f"core.{key}", value=val)
+        return model, None, None
+    from .partitioning import DEFAULT_CHOICE
+
+    fixed = sorted(e for e in D if e in DEFAULT_CHOICE)
+    if fixed:
+        raise InputError(f"{fixed[0]} takes its D from its regression with partitioning = "
+                         "\"single-stage\"; remove the D entry", file=file,
+                         field=f"core.D.{fixed[0]}", value=D[fixed[0]])
+    if P_raw is None:
+        raise InputError("partitioning = \"single-stage\" needs pressure_GPa (a value, or "
+                         "[low, high] to infer)", file=file, field="core.pressure_GPa")
+    lo_P, hi_P = PRESSURE_LIMITS_GPA
+    if isinstance(P_raw, list):
+        if len(P_raw) != 2:
+            raise InputError("give pressure_GPa as one value or [low, high]", file=file,
+                             field="core.pressure_GPa", value=P_raw)
+        P = tuple(_num(v, file=file, field="core.pressure_GPa") for v in P_raw)
+        if not lo_P <= P[0] < P[1] <= hi_P:
+            raise InputError(f"pressure_GPa = [low, high] needs {lo_P:g} <= low < high <= "
+                             f"{hi_P:g}", file=file, field="core.pressure_GPa", value=P_raw)
+    else:
+        P = _num(P_raw, file=file, field="core.pressure_GPa")
+        if not lo_P <= P <= hi_P:
+            raise InputError(f"pressure_GPa must lie in [{lo_P:g}, {hi_P:g}]", file=file,
+                             field="core.pressure_GPa", value=P_raw)
+    T: float | str = "liquidus" if T_raw is None else T_raw
+    if isinstance(T, str):
+        if T != "liquidus":
+            raise InputError("temperature_K is a value [K] or \"liquidus\"", file=file,
+                             field="core.temperature_K", value=T)
+    else:
+        T = _num(T, file=file, field="core.temperature_K")
+        if not TEMPERATURE_LIMITS_K[0] <= T <= TEMPERATURE_LIMITS_K[1]:
+            raise InputError(f"temperature_K must lie in [{TEMPERATURE_LIMITS_K[0]:g}, "
+                             f"{TEMPERATURE_LIMITS_K[1]:g}]", file=file,
+                             field="core.temperature_K", value=T)
+    return model, P, T
 
 
 def _check_keys(section: str, table: dict, file: str) -> None:
@@ -400,7 +466,7 @@ def load_case(path: str | Path, *, staged: bool = False) -> Case:
     if feo is None and diw is None:
         raise InputError("the iron split is unknown: give [core] mantle_FeO_wt or dIW, or Fe "
                          "in the target table", file=file, field="core")
-    core = CoreSettings(feo, diw, D)
+    core = CoreSettings(feo, diw, D, *_core_conditions(core_raw, D, file))
 
     la = raw.get("late_accretion", {})
     la_name = la.get("component", "CI")
@@ -411,6 +477,10 @@ def load_case(path: str | Path, *, staged: bool = False) -> Case:
     check_in_range(la_max, "late_max_fraction", file=file, field="late_accretion.max_fraction")
 
     acc = _accretion(raw.get("accretion") or {}, file)
+    if acc.stages == 2 and core.partitioning != "effective":
+        raise InputError("the two-stage fit uses the effective D; set partitioning = "
+                         "\"effective\" or stages = 1", file=file, field="core.partitioning",
+                         value=core.partitioning)
     if acc.stages == 2 and not staged:
         raise InputError("two-stage accretion is run by 'planetmix fit' only (the other "
                          "commands model one mixture throughout); remove [accretion] or "

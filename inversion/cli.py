@@ -178,6 +178,7 @@ def _unit(form: str, name: str) -> str:
 
 def _write_fit(out: Path, case, p, result, findings: dict,
                staged: dict | None = None) -> None:
+    from .conditions import conditions_block
     from .fit import planet_of
     from .isotopes import figure_data
     from .output import atomic_folder, case_provenance, write_json
@@ -215,6 +216,7 @@ def _write_fit(out: Path, case, p, result, findings: dict,
         "isotope_figure": (figure_data(p, np.asarray(result.u) if result.feasible
                                        and result.u else None) if p.isotopes else None),
         "planet_mass_kg": case.target.planet_mass_kg,
+        "core_conditions": conditions_block(p),
         **({"staged_accretion": staged} if staged is not None else {}),
         "findings": findings,
         "notes": list(p.notes),
@@ -285,7 +287,9 @@ def _fit(parser: argparse.ArgumentParser):
         from .model import compile_problem
 
         case = load_case(args.case, staged=True)
-        p = compile_problem(case)
+        P_core = case.core.pressure_GPa
+        p = compile_problem(case, pressure_GPa=P_core[0] if isinstance(P_core, tuple)
+                            else None)
         from .model import implausible_lines
 
         for line in implausible_lines(p.implausible):
@@ -294,11 +298,24 @@ def _fit(parser: argparse.ArgumentParser):
             from .staged import case_systems
 
             case_systems(case, core_mantle_ratio=1.0)  # refuse missing values before fitting
-        result = fit_problem(p, FitSettings(cmf_range=case.cmf_range))
+        settings = FitSettings(cmf_range=case.cmf_range)
+        if case.core.partitioning == "single-stage":
+            from .conditions import fit_at_conditions, infer_pressure
+
+            if isinstance(P_core, tuple):
+                result, p = infer_pressure(p, case, settings)
+            else:
+                result, p, _ = fit_at_conditions(p, case, P_core, settings)
+        else:
+            result = fit_problem(p, settings)
         f = findings(p, result, planet_mass_kg=case.target.planet_mass_kg)
         staged = _staged_fit(case, result) if case.accretion.stages == 2 else None
         _write_fit(Path(args.out), case, p, result, f, staged)
         print(f"{case.title}: {'+'.join(result.components)} -> {result.status}")
+        from .conditions import conditions_lines
+
+        for line in conditions_lines(p):
+            print("  " + line)
         for line in _staged_lines(staged):
             print("  " + line)
         if not result.feasible:

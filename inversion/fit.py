@@ -668,6 +668,20 @@ def fit_problem(p: Problem, settings: FitSettings | None = None, *,
     return _result(p, rec, settings)
 
 
+def refit(p: Problem, previous: FitResult, settings: FitSettings | None = None) -> FitResult:
+    """Fit ``p`` from the volatility-profile starts and ``previous`` (a fit of the same
+    blocks on a nearby problem, e.g. other partition coefficients), without the
+    sub-mixture starts of :func:`fit_problem` (a warm refit; :mod:`inversion.conditions`)."""
+    settings = settings or FitSettings()
+    extra = []
+    if previous.feasible and previous.u:
+        extra.append(_Start(_pad(p, previous.components, np.array(previous.u)),
+                            np.array(list(previous.volatility.values())),
+                            f"earlier fit of {'+'.join(previous.components)}"))
+    rec = _solve_group(p, [tuple(p.components)], settings, [extra])[0]
+    return _result(p, rec, settings)
+
+
 def _pad(p: Problem, sub: tuple[str, ...], u_sub: np.ndarray) -> np.ndarray:
     """Weights of a sub-mixture as a starting point of ``p`` (absent blocks at zero)."""
     K = len(p.components)

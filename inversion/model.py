@@ -132,6 +132,11 @@ class Problem:
     dropped: tuple[tuple[str, str], ...] = field(default=())
     implausible: tuple[dict[str, Any], ...] = field(default=())
     normaliser: str = "CI"
+    #: (element, source of its D) of the core-formation elements: ``effective`` or the
+    #: regression's source key (``[core] partitioning = "single-stage"``)
+    D_sources: tuple[tuple[str, str], ...] = field(default=())
+    #: the core-formation conditions of a single-stage problem (:mod:`inversion.conditions`)
+    core_conditions: dict[str, Any] | None = None
 
     @property
     def n_fit(self) -> int:
@@ -256,7 +261,7 @@ def _impute(comp: pd.Series, ci: pd.Series, els: list[str], classes: pd.Series,
 
 
 def compile_problem(case: Case, *, minimum_sigma_dex: float | None = None,
-                    fit_imputed: bool = True) -> Problem:
+                    fit_imputed: bool = True, pressure_GPa: float | None = None) -> Problem:
     """Compile a case into a :class:`Problem`.
 
     Elements in the mass balance: those with a CI value and a condensation temperature,
@@ -274,6 +279,10 @@ def compile_problem(case: Case, *, minimum_sigma_dex: float | None = None,
     fit_imputed : bool
         Fit elements imputed for some candidate (default); False keeps them out of the
         fit, as before the end-member uncertainties existed.
+    pressure_GPa : float, optional
+        With ``[core] partitioning = "single-stage"``: the pressure at which to take the
+        D (required when the case gives a range, which only ``planetmix fit`` infers;
+        :func:`inversion.conditions.infer_pressure`).
     """
     floor_dex = (getattr(case, "minimum_uncertainty_dex", 0.02) if minimum_sigma_dex is None
                  else minimum_sigma_dex)
@@ -417,7 +426,7 @@ def compile_problem(case: Case, *, minimum_sigma_dex: float | None = None,
                     "eps_sigma_late": eps_sig[K] if len(eps) > K else 0.0,
                     "q_carrier_rel_sigma_late": qc_rel[K] if len(qc) > K else 0.0,
                     "range": isotope_range(np.array(eps[:K]))})
-    return Problem(
+    problem = Problem(
         elements=tuple(els), components=tuple(names), Q=Q, imputed=imputed, q_late=q_late,
         late_name=late_name, c_late_R=c_late_R, c_comp_R=c_R, q_ci=q_ci,
         tc=props.loc[els, tc_col].to_numpy(float), D=D, D_spread=spread,
@@ -432,7 +441,13 @@ def compile_problem(case: Case, *, minimum_sigma_dex: float | None = None,
         notes=tuple(notes), Q_sigma_dex=Q_sig,
         metal_class=np.isin(props.loc[els, "geochemical_class"].to_numpy(), METAL_CLASSES),
         dropped=dropped, implausible=implausible_values(case), normaliser=norm_name,
+        D_sources=tuple((e, "effective") for e, d in zip(els, D, strict=True) if d > 0),
     )
+    if case.core.partitioning == "effective":
+        return problem
+    from .conditions import at_case_conditions
+
+    return at_case_conditions(problem, case, pressure_GPa)
 
 
 #: Geochemical classes that the ``kinked-split`` form gives their own volatility slope.

@@ -1,0 +1,206 @@
+"""Core formation at (P, T, dIW) in the convex path (inversion/conditions.py)."""
+
+from __future__ import annotations
+
+import json
+import shutil
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+import components
+from inversion import partitioning as pt
+from inversion.case import load_case
+from inversion.conditions import at_conditions, fit_at_conditions, infer_pressure
+from inversion.exceptions import InputError
+from inversion.fit import FitSettings, fit_problem
+from inversion.model import compile_problem, forward
+from inversion.planet import assemble
+from tests.conftest import write_case, write_target
+
+ROOT = Path(__file__).resolve().parents[2]
+CANDS = ["H", "EH"]
+TRUE_P = 40.0
+TRUE_DIW = -2.0
+TRUTH = {"w": {"H": 0.55, "EH": 0.45}, "T0": 1250.0, "slope": 0.0025, "lam": 0.004}
+
+
+def _case(folder: Path, core: str, target: str = "target.csv") -> Path:
+    ci = components.load("CI").composition
+    held = set().union(*(components.load(c).composition.pipe(lambda x: x[x > 0]).index
+                         for c in CANDS))
+    if not (folder / target).exists():
+        write_target(folder / target, ci[[e for e in ci.index if e in held]], 0.05)
+    return write_case(folder, target=target, candidates=CANDS, extra=core)
+
+
+@pytest.mark.parametrize("core, field", [
+    ('partitioning = "deep"\ndIW = -2.0', "core.partitioning"),
+    ('pressure_GPa = 40.0\ndIW = -2.0', "core.pressure_GPa"),
+    ('temperature_K = 3000.0\ndIW = -2.0', "core.temperature_K"),
+    ('partitioning = "single-stage"\ndIW = -2.0', "core.pressure_GPa"),
+    ('partitioning = "single-stage"\npressure_GPa = [80.0, 10.0]\ndIW = -2.0',
+     "core.pressure_GPa"),
+    ('partitioning = "single-stage"\npressure_GPa = [10.0, 20.0, 30.0]\ndIW = -2.0',
+     "core.pressure_GPa"),
+    ('partitioning = "single-stage"\npressure_GPa = 400.0\ndIW = -2.0', "core.pressure_GPa"),
+    ('partitioning = "single-stage"\npressure_GPa = 40.0\ntemperature_K = "solidus"\n'
+     'dIW = -2.0', "core.temperature_K"),
+    ('partitioning = "single-stage"\npressure_GPa = 40.0\ntemperature_K = 100.0\n'
+     'dIW = -2.0', "core.temperature_K"),
+    ('partitioning = "single-stage"\npressure_GPa = 40.0\ndIW = -2.0\nD = {Ni = 25.0}',
+     "core.D.Ni"),
+])
+def test_refusals(tmp_path, core, field) -> None:
+    path = _case(tmp_path, "[core]\n" + core)
+    with pytest.raises(InputError) as err:
+        load_case(path)
+    assert err.value.field == field
+    assert "\n" not in str(err.value)
+
+
+def test_range_refused_outside_the_fit(tmp_path) -> None:
+    path = _case(tmp_path, '[core]\npartitioning = "single-stage"\n'
+                           'pressure_GPa = [10.0, 80.0]\ndIW = -2.0')
+    with pytest.raises(InputError, match="planetmix fit"):
+        compile_problem(load_case(path))
+
+
+def test_two_stages_refused(tmp_path) -> None:
+    path = _case(tmp_path, '[core]\npartitioning = "single-stage"\npressure_GPa = 40.0\n'
+                           'dIW = -2.0\n[accretion]\nstages = 2\nlate_stage_fraction = 0.1')
+    with pytest.raises(InputError) as err:
+        load_case(path, staged=True)
+    assert err.value.field == "core.partitioning"
+
+
+def test_effective_key_changes_nothing(tmp_path) -> None:
+    a = tmp_path / "a"
+    b = tmp_path / "b"
+    a.mkdir()
+    b.mkdir()
+    pa = compile_problem(load_case(_case(a, "[core]\nmantle_FeO_wt = 8.0")))
+    pb = compile_problem(load_case(_case(b, '[core]\nmantle_FeO_wt = 8.0\n'
+                                            'partitioning = "effective"')))
+    assert np.array_equal(pa.D, pb.D)
+    assert pb.core_conditions is None
+    ra, rb = fit_problem(pa), fit_problem(pb)
+    assert ra.chi2 == rb.chi2
+    assert ra.weights == rb.weights and ra.volatility == rb.volatility
+    assert ra.core_mass_fraction == rb.core_mass_fraction
+    assert ra.late_accretion_fraction == rb.late_accretion_fraction
+
+
+def test_fixed_conditions_replace_the_regression_elements(tmp_path) -> None:
+    p = compile_problem(load_case(_case(tmp_path, '[core]\ndIW = -2.0\n'
+                                        'partitioning = "single-stage"\npressure_GPa = 40.0')))
+    eff = compile_problem(load_case(_case(tmp_path, "[core]\ndIW = -2.0")))
+    src = dict(p.D_sources)
+    T = float(pt.peridotite_liquidus(np.array(TRUE_P)))
+    c = p.core_conditions
+    assert c["temperature_K"] == pytest.approx(T) and c["dIW"] == -2.0
+    for j, e in enumerate(p.elements):
+        if e in ("Ni", "Co", "W", "Cr", "V", "Si"):
+            assert src[e] != "effective"
+            # by hand: Fischer et al. (2015) / Cottrell et al. (2009) exchange form
+            # log10 D = a + b/T + c P/T - (n/4) dIW, times Mbar_sil / Mbar_met
+            reg = pt.load_regressions()
+            r = reg[(reg.element == e) & (reg.source == src[e])].iloc[0]
+            logd = r.a + (r.b + r.c * TRUE_P) / T - r.valence / 4.0 * -2.0
+            assert p.D[j] == pytest.approx(10 ** logd * c["Mbar_sil_g_mol"]
+                                           / c["Mbar_met_g_mol"], rel=1e-12)
+        elif e in ("Mo", "Re", "P"):
+            assert src[e] == "effective" and p.D[j] == eff.D[j]
+
+
+def _simulate(folder: Path, noise: float, seed: int) -> tuple[Path, float]:
+    """A body made at TRUE_P on the liquidus, dIW = TRUE_DIW, by model.forward with the
+    D of the regressions, Mbar_sil and Mbar_met iterated to the body's own mantle and
+    core; noise: ``noise`` (relative 1-sigma) on every concentration, stated as such."""
+    seed_case = _case(folder, '[core]\ndIW = -2.0\npartitioning = "single-stage"\n'
+                              f'pressure_GPa = {TRUE_P}', target="seed.csv")
+    p = compile_problem(load_case(seed_case))
+    chem = pt.compile_chemistry(p.elements, oxygen=False)
+    T = float(pt.peridotite_liquidus(np.array(TRUE_P)))
+    w = np.array([[TRUTH["w"].get(c, 0.0) for c in p.components]])
+    mbar_sil, mbar_met = 50.0, 52.0
+    for _ in range(20):
+        pc = at_conditions(p, p.D, chem, TRUE_P, T, TRUE_DIW, mbar_sil, mbar_met)
+        fwd = forward(pc, w, np.array([[TRUTH["T0"], TRUTH["slope"]]]), TRUTH["lam"])
+        core = np.maximum(fwd["core"][0], 0)
+        planet = assemble(pc, fwd)
+        conc = pd.Series(planet["mantle_mass_fraction"][0], index=list(p.elements))
+        conc = conc / (conc * p.oxide_factor).sum()
+        mbar_met = float(core.sum() / (core / p.atomic_weight).sum())
+        mbar_sil = float((conc * p.oxide_factor).sum() / (conc / p.atomic_weight).sum())
+    rng = np.random.default_rng(seed)
+    noisy = conc * np.exp(rng.normal(0.0, noise, size=conc.size))
+    write_target(folder / "target.csv", noisy, noise)
+    return write_case(folder, candidates=CANDS, extra='[core]\ndIW = -2.0\n'
+                      'partitioning = "single-stage"\npressure_GPa = [10.0, 80.0]\n'
+                      'temperature_K = "liquidus"'), float(fwd["cmf"][0])
+
+
+def test_simulate_then_recover_pressure(tmp_path) -> None:
+    """5% noise (the stated 1-sigma of a good bulk-silicate estimate of the siderophile
+    elements, common practice): the true 40 GPa lies in the 95% profile interval and the
+    best pressure within 8 GPa of it (tolerance stated here)."""
+    path, cmf = _simulate(tmp_path, 0.05, seed=7)
+    case = load_case(path)
+    p = compile_problem(case, pressure_GPa=10.0)
+    res, pc = infer_pressure(p, case, FitSettings())
+    q = pc.core_conditions["pressure_inferred"]
+    P = pc.core_conditions["pressure_GPa"]
+    lo95, hi95 = q["interval_95"]
+    lo68, hi68 = q["interval_68"]
+    assert lo95 <= TRUE_P <= hi95, q
+    assert lo95 <= lo68 <= P <= hi68 <= hi95
+    assert abs(P - TRUE_P) < 8.0, q
+    assert res.feasible and abs(res.core_mass_fraction - cmf) < 0.03
+    # the profile is a minimum: the reported fit is at least as good as every evaluation
+    assert res.chi2 <= min(e["chi2"] for e in q["evaluated"]) * (1 + 1e-6)
+    # the interval is not the whole range (the pressure is constrained)
+    assert hi95 - lo95 < 60.0
+
+
+def test_fixed_point_of_the_metal(tmp_path) -> None:
+    """At the true pressure, the fit's self-consistent Mbar_met matches its own core."""
+    path, _ = _simulate(tmp_path, 0.01, seed=3)
+    case = load_case(path)
+    p = compile_problem(case, pressure_GPa=TRUE_P)
+    res, pc, (x_fe, mbar) = fit_at_conditions(p, case, TRUE_P, FitSettings(intervals=False))
+    from inversion.fit import forward_of
+
+    core = np.maximum(forward_of(pc, res)["core"][0], 0)
+    assert mbar == pytest.approx(core.sum() / (core / p.atomic_weight).sum(), rel=2e-4)
+    assert pc.core_conditions["Mbar_met_g_mol"] == mbar
+
+
+@pytest.mark.slow
+def test_earth_single_stage_pressure(tmp_path) -> None:
+    """The Earth case with single-stage partitioning and the pressure inferred over
+    [10, 80] GPa on the liquidus. Published single-stage solutions put the equilibration
+    at a few tens of GPa: Siebert et al. (2012, EPSL 321, 189; abstract read: Ni and Co
+    reach the mantle values near 50 GPa) and Fischer et al. (2015, GCA 167, 177; a
+    single-stage pressure of the same order, recalled); partitioning.py's own Ni+Co fit
+    gives 54 GPa. Check: the inferred pressure lies in 25-65 GPa and dIW in -2.6..-1.6."""
+    d = tmp_path / "earth"
+    shutil.copytree(ROOT / "case_studies" / "earth", d)
+    text = (d / "case.toml").read_text().replace(
+        "[core]\n", '[core]\npartitioning = "single-stage"\npressure_GPa = [10.0, 80.0]\n'
+        'temperature_K = "liquidus"\n')
+    (d / "case.toml").write_text(text)
+    from inversion.cli import main
+
+    out = tmp_path / "out"
+    assert main(["fit", str(d / "case.toml"), "--out", str(out)]) == 0
+    c = json.loads((out / "fit.json").read_text())["core_conditions"]
+    assert 25.0 <= c["pressure_GPa"] <= 65.0, c
+    assert -2.6 <= c["dIW"] <= -1.6, c
+    lo, hi = c["pressure_inferred"]["interval_95"]
+    assert lo <= c["pressure_GPa"] <= hi
+
+
+
