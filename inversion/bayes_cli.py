@@ -19,8 +19,10 @@ from .exceptions import InputError
 __all__ = ["write_sample", "read_run"]
 
 
-def write_sample(out: Path, case: Any, p: Any, result: Any) -> dict[str, Any]:
-    """Write every output of a sampling run into ``out``; return the ``sample.json`` data."""
+def write_sample(out: Path, case: Any, p: Any, result: Any,
+                 extra: dict[str, Any] | None = None) -> dict[str, Any]:
+    """Write every output of a sampling run into ``out``; return the ``sample.json`` data
+    (``extra`` entries are added to it)."""
     from dataclasses import asdict
 
     from .bayes import (
@@ -63,6 +65,7 @@ def write_sample(out: Path, case: Any, p: Any, result: Any) -> dict[str, Any]:
         "notes": list(p.notes),
         "provenance": case_provenance(case, p, tables=["vehtari2021"], extra={
             "sampler": _SAMPLER_TEXT[result.settings.engine]}),
+        **(extra or {}),
     }
     with atomic_folder(out) as tmp:
         result.idata.to_netcdf(str(tmp / "posterior.nc"))
@@ -115,6 +118,11 @@ def _sample(parser: argparse.ArgumentParser):
                         "density; pymc: PyMC's own, slowest per draw)")
     parser.add_argument("--evidence", action="store_true",
                         help="also run sequential Monte Carlo for the log marginal likelihood")
+    parser.add_argument("--class-test", action="store_true",
+                        help="also sample the class-split volatility model (a separate "
+                        "slope for the chalcophile and siderophile elements) and compare "
+                        "it with the common trend: posterior of the slope difference and "
+                        "LOO (kinked form only; doubles the sampling time)")
     parser.add_argument("--quiet", action="store_true", help="no progress display")
 
     def run(args: argparse.Namespace) -> int:
@@ -129,8 +137,17 @@ def _sample(parser: argparse.ArgumentParser):
                                           tune=args.tune, chains=args.chains, seed=args.seed,
                                           cores=args.cores, engine=args.engine,
                                           evidence=args.evidence or None)
+        if args.class_test and p.volatility_form != "kinked":
+            raise InputError("the Bayesian class test compares the kinked form with its "
+                             "class-split twin; this case uses the "
+                             f"{p.volatility_form!r} form", file=case.path,
+                             field="volatility.form", value=p.volatility_form)
         result = sample(p, settings, priors=priors, progress=not args.quiet)
-        data = write_sample(Path(args.out), case, p, result)
+        extra = None
+        if args.class_test:
+            extra = {"class_test": _class_test(p, settings, priors, result,
+                                               progress=not args.quiet)}
+        data = write_sample(Path(args.out), case, p, result, extra)
         post = data["posterior"]
         t = result.timing
         print(f"{case.title}: {'+'.join(p.components)}, {settings.chains} chains x "
@@ -155,6 +172,9 @@ def _sample(parser: argparse.ArgumentParser):
               "[Vehtari et al. 2021]")
         print(f"  written to {args.out}/posterior.nc, summary.csv, planet_draws.parquet, "
               "outliers.csv, diagnostics.json, sample.json, planet.json (hand-off)")
+        if extra is not None:
+            ct = extra["class_test"]
+            print(f"  class test (Bayesian): {ct['statement']}")
         if not result.passed:
             print("  DIAGNOSTICS GATE FAILED; results are marked as failing:")
             for m in result.diagnostics.messages():
@@ -163,6 +183,28 @@ def _sample(parser: argparse.ArgumentParser):
         return EXIT_OK
 
     return run
+
+
+def _class_test(p: Any, settings: Any, priors: dict[str, Any], result: Any, *,
+                progress: bool) -> dict[str, Any]:
+    """Sample the class-split twin of ``p`` with the same settings and seed and compare
+    it with the common-trend run (:func:`inversion.findings.class_test_posterior`)."""
+    from dataclasses import replace
+
+    from .bayes import OBS_ELEMENTS, default_priors, sample
+    from .findings import class_test_posterior
+    from .volatility import SPLIT_FORM
+
+    ps = replace(p, volatility_form=SPLIT_FORM)
+    pri = default_priors(ps)
+    pri.update({k: v for k, v in priors.items() if k in pri})
+    split = sample(ps, settings, priors=pri, progress=progress)
+    out = class_test_posterior(result.idata, split.idata, var_name=OBS_ELEMENTS)
+    out["split_diagnostics"] = split.diagnostics.to_dict()
+    out["split_priors"] = pri
+    if not split.passed:
+        out["statement"] += " (the class-split run failed the diagnostics gate)"
+    return out
 
 
 def read_run(folder: str | Path) -> tuple[Any, dict[str, Any]]:

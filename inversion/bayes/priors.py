@@ -49,12 +49,17 @@ def default_priors(p: Problem) -> dict[str, dict[str, Any]]:
     if K > 1:
         pri["w"] = {"dist": "Dirichlet", "a": 1.0}
     form = get_form(p.volatility_form)
-    if form.name in ("kinked", "kinked-floor"):
+    if form.name in ("kinked", "kinked-floor", "kinked-split"):
         pri["T0"] = {"dist": "Uniform", "lower": 900.0, "upper": 1700.0}
         # 0.004 dex/K: 2-4 dex per 1000 K lies well inside the half-normal's bulk
         pri["slope"] = {"dist": "HalfNormal", "sigma": 0.004}
         if form.name == "kinked-floor":
             pri["log10_floor"] = {"dist": "Uniform", "lower": -6.0, "upper": 0.0}
+        if form.name == "kinked-split":
+            # the class difference of slopes, centred on none, as wide as the slope
+            pri["slope_offset"] = {"dist": "TruncatedNormal", "mu": 0.0, "sigma": 0.004,
+                                   "lower": float(form.lower[2]),
+                                   "upper": float(form.upper[2])}
     else:
         for name, lo, hi in zip(form.params, form.lower, form.upper, strict=True):
             pri[name] = {"dist": "Uniform", "lower": float(lo), "upper": float(hi)}
