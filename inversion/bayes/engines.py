@@ -313,9 +313,10 @@ class _NutpieModel:
         def initial_point(chain_seed: int) -> np.ndarray:
             g = np.random.default_rng([jitter_seed, int(chain_seed) % 2**63])
             iv = start_points(p, priors, fit, 1, g, settings.jitter)[0]
+            # the compiled map is not safe to call from two chain threads at once
             with lock:
                 starts[int(chain_seed)] = iv
-            return self.unconstrain(iv)
+                return self.unconstrain(iv)
 
         data = {} if y is None else {"y_data": np.asarray(y, float)}
         if eps is not None:
