@@ -52,7 +52,7 @@ PROFILE_GRID_POINTS = 9
 DELTA_CHI2_68 = 1.0
 DELTA_CHI2_95 = 3.841
 #: Fixed point of (dIW, Mbar_met) with the fit: stop when dIW moves < 0.002 and Mbar_met
-#: by < 1e-4 relative, after at most this many fits.
+#: by < 1e-3 relative (D by < 0.0005 dex), after at most this many fits.
 STATE_ITERATIONS = 8
 #: Resolution [GPa] of the minimum and of the interval ends.
 PRESSURE_TOL_GPA = 0.25
@@ -190,7 +190,7 @@ def fit_at_conditions(p: Any, case: Any, P: float, settings: Any, *,
         x_new, m_new = _metal(pc, core)
         moved = (abs(_dIW(s, x_new) - _dIW(s, x_fe)), abs(m_new - mbar) / mbar)
         x_fe, mbar = x_new, m_new
-        if moved[0] < 2e-3 and moved[1] < 1e-4:
+        if moved[0] < 2e-3 and moved[1] < 1e-3:
             break
     pc = _at(p, s, P, x_fe, mbar, {"iterated_with_fit": True,
                                    "fixed_point_fits": it})
@@ -207,11 +207,13 @@ def infer_pressure(p: Any, case: Any, settings: Any) -> tuple[Any, Any]:
 
     Each evaluation is a fit at that pressure (D recomputed, T on the liquidus or fixed,
     dIW and Mbar_met at their fixed point), warm-started from the fit at the nearest
-    pressure evaluated before; the first grid point and the final best are full fits.
+    pressure evaluated before; the first grid point and the final best are full fits
+    (the curvature intervals of ``settings`` only at the best).
     """
     lo, hi = case.core.pressure_GPa
     s = _setup(p, case)
     evals: dict[float, tuple[float, Any, tuple]] = {}
+    quick = replace(settings, intervals=False)  # the profile needs chi2 only
 
     def nearest(P: float) -> tuple[Any, tuple | None]:
         if not evals:
@@ -223,7 +225,7 @@ def infer_pressure(p: Any, case: Any, settings: Any) -> tuple[Any, Any]:
         P = float(P)
         if P not in evals:
             prev, st = nearest(P)
-            r, _, st = fit_at_conditions(p, case, P, settings, previous=prev, state=st,
+            r, _, st = fit_at_conditions(p, case, P, quick, previous=prev, state=st,
                                          setup=s)
             evals[P] = (r.chi2 if r.feasible else math.inf, r, st)
         return evals[P][0]
@@ -271,9 +273,14 @@ def infer_pressure(p: Any, case: Any, settings: Any) -> tuple[Any, Any]:
                              "bracket": [float(a), float(b)], "x": float(opt.x)},
                "delta_chi2": {"interval_68": DELTA_CHI2_68, "interval_95": DELTA_CHI2_95},
                "tolerance_GPa": PRESSURE_TOL_GPA, **intervals}
+    diw = [e["dIW"] for e in profile["evaluated"]]
     for name in ("interval_68", "interval_95"):
         profile[name.replace("interval", "temperature_K_at")] = [
             temperature_at(s["T"], x) for x in intervals[name]]
+        # dIW is not a free parameter: the one the fixed point gives at the interval ends
+        # (the case's value, or the mantle FeO's with the core of the fit at that pressure)
+        profile[name.replace("interval", "dIW_at")] = [
+            float(np.interp(x, evaluated, diw)) for x in intervals[name]]
     cond = {**pc.core_conditions, "pressure_inferred": profile}
     return r_full, replace(pc, core_conditions=cond)
 
@@ -304,6 +311,9 @@ def conditions_lines(p: Any) -> list[str]:
         out.append(f"  pressure inferred over [{q['range'][0]:g}, {q['range'][1]:g}] GPa "
                    f"({len(q['evaluated'])} fits): profile interval delta chi2 = 1 "
                    f"{fmt(q['interval_68'], q['interval_68_open'])}, 95% (3.84) "
-                   f"{fmt(q['interval_95'], q['interval_95_open'])}")
+                   f"{fmt(q['interval_95'], q['interval_95_open'])}; T "
+                   f"[{q['temperature_K_at_95'][0]:.0f}, {q['temperature_K_at_95'][1]:.0f}] K "
+                   f"and dIW [{q['dIW_at_95'][0]:.2f}, {q['dIW_at_95'][1]:.2f}] at the 95% "
+                   "ends")
     return out
 
