@@ -145,6 +145,21 @@ def sample(p: Problem, settings: SamplerSettings | None = None, *,
     start-point jitter seed, all recorded. ``timing`` separates the convex start, the
     compilation of the log density and the sampling itself.
     """
+    with warnings.catch_warnings():
+        # pytensor's C backend warns that it found no BLAS to link and XLA that it could
+        # not reuse a donated buffer: neither path affects these results
+        warnings.filterwarnings("ignore", message="PyTensor could not link to a BLAS")
+        warnings.filterwarnings("ignore", message="Some donated buffers were not usable")
+        return _sample(p, settings, priors=priors, fit=fit, progress=progress, y=y,
+                       posterior_predictive=posterior_predictive,
+                       log_likelihood=log_likelihood)
+
+
+def _sample(p: Problem, settings: SamplerSettings | None = None, *,
+           priors: dict[str, dict[str, Any]] | None = None, fit: Any = None,
+           progress: bool = False, y: np.ndarray | None = None,
+           posterior_predictive: bool = True, log_likelihood: bool = True) -> SampleResult:
+    """:func:`sample` without the warning filters."""
     import pymc as pm
 
     from ..fit import fit_problem
