@@ -209,3 +209,20 @@ def test_earth_single_stage_pressure(tmp_path) -> None:
 
 
 
+
+
+def test_fit_json_core_conditions(tmp_path, capsys) -> None:
+    """planetmix fit at a fixed pressure: the block, the sources and the printed line."""
+    path, _ = _simulate(tmp_path, 0.01, seed=5)
+    text = path.read_text().replace("pressure_GPa = [10.0, 80.0]", "pressure_GPa = 40.0")
+    path.write_text(text)
+    from inversion.cli import main
+
+    assert main(["fit", str(path), "--out", str(tmp_path / "out")]) == 0
+    c = json.loads((tmp_path / "out" / "fit.json").read_text())["core_conditions"]
+    assert c["partitioning"] == "single-stage" and c["pressure_GPa"] == 40.0
+    assert c["dIW"] == -2.0 and c["iterated_with_fit"]
+    assert c["sources"]["Ni"] == "fischer2015" and c["sources"]["Cr"] == "fischer2015"
+    assert c["sources"]["Mo"] == "effective"
+    assert "pressure_inferred" not in c
+    assert "core formation single-stage at P = 40.0 GPa" in capsys.readouterr().out
