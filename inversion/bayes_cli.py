@@ -131,7 +131,16 @@ def _sample(parser: argparse.ArgumentParser):
         from .model import compile_problem
 
         case = load_case(args.case)
-        p = compile_problem(case)
+        P_range = case.core.pressure_GPa if case.core.partitioning == "single-stage" else None
+        if isinstance(P_range, tuple):
+            # the equilibration pressure is a parameter: start the D at mid-range
+            from dataclasses import replace
+
+            p = compile_problem(case, pressure_GPa=0.5 * (P_range[0] + P_range[1]))
+            p = replace(p, core_conditions={**p.core_conditions,
+                                            "pressure_range_GPa": list(P_range)})
+        else:
+            p = compile_problem(case)
         priors = check_priors(p, case.priors, file=case.path)
         settings = check_sampler_settings(case.sampler, file=case.path, draws=args.draws,
                                           tune=args.tune, chains=args.chains, seed=args.seed,
@@ -143,11 +152,13 @@ def _sample(parser: argparse.ArgumentParser):
                              f"{p.volatility_form!r} form", file=case.path,
                              field="volatility.form", value=p.volatility_form)
         result = sample(p, settings, priors=priors, progress=not args.quiet)
-        extra = None
+        extra: dict[str, Any] = {}
         if args.class_test:
-            extra = {"class_test": _class_test(p, settings, priors, result,
-                                               progress=not args.quiet)}
-        data = write_sample(Path(args.out), case, p, result, extra)
+            extra["class_test"] = _class_test(p, settings, priors, result,
+                                              progress=not args.quiet)
+        if p.core_conditions:
+            extra["core_conditions"] = _posterior_conditions(p, result.idata)
+        data = write_sample(Path(args.out), case, p, result, extra or None)
         post = data["posterior"]
         t = result.timing
         print(f"{case.title}: {'+'.join(p.components)}, {settings.chains} chains x "
@@ -172,9 +183,13 @@ def _sample(parser: argparse.ArgumentParser):
               "[Vehtari et al. 2021]")
         print(f"  written to {args.out}/posterior.nc, summary.csv, planet_draws.parquet, "
               "outliers.csv, diagnostics.json, sample.json, planet.json (hand-off)")
-        if extra is not None:
-            ct = extra["class_test"]
-            print(f"  class test (Bayesian): {ct['statement']}")
+        if "class_test" in extra:
+            print(f"  class test (Bayesian): {extra['class_test']['statement']}")
+        cc = extra.get("core_conditions", {})
+        if isinstance(cc.get("pressure_GPa"), dict):
+            print(f"  core equilibration pressure {_fmt(cc['pressure_GPa'], spec='.1f')} GPa"
+                  f" (prior {cc['pressure_range_GPa']}); T and dIW: {cc['temperature_from']}, "
+                  f"dIW {cc['dIW']:.2f}")
         if not result.passed:
             print("  DIAGNOSTICS GATE FAILED; results are marked as failing:")
             for m in result.diagnostics.messages():
@@ -183,6 +198,29 @@ def _sample(parser: argparse.ArgumentParser):
         return EXIT_OK
 
     return run
+
+
+def _posterior_conditions(p: Any, idata: Any) -> dict[str, Any]:
+    """The ``core_conditions`` block of a sample: the case's conditions and, when the
+    pressure was sampled, its posterior (median and 5-95%) and the liquidus temperature
+    it implies."""
+    import numpy as np
+
+    cc = {k: v for k, v in p.core_conditions.items()}
+    if "pressure_GPa" in idata.posterior:
+        P = np.asarray(idata.posterior["pressure_GPa"], float).ravel()
+        q = np.percentile(P, [50.0, 5.0, 95.0])
+        cc["pressure_GPa"] = {"median": float(q[0]), "q05": float(q[1]), "q95": float(q[2])}
+        if "liquidus" in str(cc.get("temperature_from", "")).lower():
+            from .partitioning import peridotite_liquidus
+
+            T = peridotite_liquidus(P)
+            t = np.percentile(T, [50.0, 5.0, 95.0])
+            cc["temperature_K"] = {"median": float(t[0]), "q05": float(t[1]),
+                                   "q95": float(t[2])}
+        cc["sampled"] = ("pressure (Uniform prior over the case's range); dIW and the mean "
+                         "molar masses held at their mid-range values")
+    return cc
 
 
 def _class_test(p: Any, settings: Any, priors: dict[str, Any], result: Any, *,

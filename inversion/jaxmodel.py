@@ -24,7 +24,8 @@ import numpy as np
 
 from . import kernel
 
-__all__ = ["jax_setup", "predictions", "PREDICTION_KEYS", "cache_dir"]
+__all__ = ["jax_setup", "predictions", "PREDICTION_KEYS", "cache_dir", "pressure_range",
+           "pressure_D"]
 
 #: Outputs of :func:`predictions`, in order.
 PREDICTION_KEYS = ("mu", "sigma_model2", "eps_pred", "eps_var", "cmf", "v")
@@ -61,6 +62,46 @@ def jax_setup() -> Any:
     return jax
 
 
+def pressure_range(p: Any) -> tuple[float, float] | None:
+    """The pressure range [GPa] sampled as a parameter, or None (fixed conditions or the
+    effective D). Set by ``planetmix sample`` from ``[core] pressure_GPa = [low, high]``
+    in ``Problem.core_conditions["pressure_range_GPa"]``."""
+    cc = getattr(p, "core_conditions", None) or {}
+    r = cc.get("pressure_range_GPa")
+    return None if r is None else (float(r[0]), float(r[1]))
+
+
+def pressure_D(p: Any) -> tuple[np.ndarray, Any]:
+    """The metal/silicate D of the regression elements as a function of pressure.
+
+    Returns ``(mask, D_of_P)``: ``mask`` (n,) marks the elements whose D follows the
+    regressions of :mod:`inversion.partitioning`; ``D_of_P(P, xp)`` gives the (n,) mass
+    D at pressure P [GPa] with the temperature of the case (fixed, or the peridotite
+    liquidus at P) and the dIW and mean molar masses recorded in ``p.core_conditions``
+    (held at their values at the start of the sampling: the convex path iterates them
+    with the fitted core, the sampler does not), the problem's own D elsewhere.
+    """
+    from . import partitioning as pt
+
+    cc = p.core_conditions
+    chem = pt.compile_chemistry(p.elements, oxygen=False)
+    mask = np.isin(chem.kind, (1, 2))
+    mask[p.fe_index] = False
+    base = np.asarray(p.D, float)
+    liquidus = "liquidus" in str(cc.get("temperature_from", "")).lower()
+    T_fixed = float(cc["temperature_K"])
+    dIW = float(cc["dIW"])
+    state = np.array([0.5, float(cc["Mbar_sil_g_mol"]), float(cc["Mbar_met_g_mol"]), 0.0,
+                      0.0])
+
+    def D_of_P(P: Any, xp: Any = np) -> Any:
+        T = pt.peridotite_liquidus(P, xp=xp) if liquidus else T_fixed
+        Dm = pt.mass_D(chem, P, T, dIW, state, xp=xp)
+        return xp.where(mask, Dm, base)
+
+    return mask, D_of_P
+
+
 def predictions(p: Any, partitioned: list[int] | tuple[int, ...] = ()) -> Any:
     """The JAX function ``f(w, vol, lam, log10D) -> tuple`` of problem ``p``.
 
@@ -72,7 +113,8 @@ def predictions(p: Any, partitioned: list[int] | tuple[int, ...] = ()) -> Any:
     Returns
     -------
     callable
-        ``f(w (K,), vol (p,), lam (), log10D (len(partitioned),))`` returning the arrays
+        ``f(w (K,), vol (p,), lam (), log10D (len(partitioned),)[, P])`` (``P`` [GPa]
+        when the problem samples the pressure, :func:`pressure_range`) returning the arrays
         of :data:`PREDICTION_KEYS`: ``mu`` (n_fit,) predicted log10 N of the fitted
         elements; ``sigma_model2`` (n_fit,) end-member variance [dex^2] (zeros without
         block uncertainties); ``eps_pred``, ``eps_var`` (n_iso,) isotope predictions and
@@ -92,8 +134,11 @@ def predictions(p: Any, partitioned: list[int] | tuple[int, ...] = ()) -> Any:
     isotopes = [{k: (np.asarray(v, float) if isinstance(v, np.ndarray) else v)
                  for k, v in d.items()} for d in p.isotopes]
 
-    def f(w: Any, vol: Any, lam: Any, log10D: Any) -> tuple[Any, ...]:
-        D = jnp.asarray(D0)
+    sampled_P = pressure_range(p) is not None
+    D_of_P = pressure_D(p)[1] if sampled_P else None
+
+    def f(w: Any, vol: Any, lam: Any, log10D: Any, P: Any = None) -> tuple[Any, ...]:
+        D = jnp.asarray(D0) if D_of_P is None else D_of_P(P, jnp)
         if part.size:
             D = D.at[part].set(10.0 ** log10D)
         out = kernel.forward(jnp, c, w, vol, lam, D)

@@ -9,6 +9,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from ..jaxmodel import pressure_D
 from ..model import Problem, forward
 from ..volatility import get_form
 from .priors import _partitioned
@@ -102,6 +103,9 @@ def posterior_arrays(p: Problem, idata: Any) -> dict[str, np.ndarray]:
     vol = np.stack([post[n].values.reshape(S) for n in form.params], axis=1)
     lam = post["lam"].values.reshape(S) if "lam" in post else np.zeros(S)
     D = np.broadcast_to(p.D, (S, p.D.size)).copy()
+    if "pressure_GPa" in post:
+        _, D_of_P = pressure_D(p)
+        D = np.stack([D_of_P(float(P)) for P in post["pressure_GPa"].values.reshape(S)])
     part = _partitioned(p)
     if part:
         D[:, part] = 10.0 ** post["log10D"].values.reshape(S, len(part))

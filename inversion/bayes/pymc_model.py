@@ -9,6 +9,7 @@ from typing import Any
 import numpy as np
 
 from .. import kernel
+from ..jaxmodel import pressure_range
 from ..model import Problem
 from ..volatility import get_form
 from .priors import _partitioned, default_priors
@@ -25,19 +26,18 @@ def _jax_predictions(p: Problem, part: list[int]):
     """The JAX predictions of :func:`inversion.jaxmodel.predictions` as one pytensor
     operation (``wrap_jax``): its value and its gradient (by ``jax.vjp``) come from the
     single forward model of :mod:`inversion.kernel`."""
+    import jax.numpy as jnp
     from pytensor.link.jax.ops import wrap_jax
 
     from ..jaxmodel import predictions
 
     f = predictions(p, part)
     if part:
-        def planet_predictions(w, vol, lam, log10D):
-            return f(w, vol, lam, log10D)
+        def planet_predictions(w, vol, lam, log10D, *P):
+            return f(w, vol, lam, log10D, *P)
     else:
-        import jax.numpy as jnp
-
-        def planet_predictions(w, vol, lam):
-            return f(w, vol, lam, jnp.zeros(0))
+        def planet_predictions(w, vol, lam, *P):
+            return f(w, vol, lam, jnp.zeros(0), *P)
     return wrap_jax(planet_predictions)
 
 
@@ -113,14 +113,19 @@ def build_model(p: Problem, priors: dict[str, dict[str, Any]] | None = None, *,
                 log10D = pt.stack([_prior_rv(f"log10D_{p.elements[j]}", s)
                                    for j, s in zip(part, mus, strict=True)])
                 pm.Deterministic("log10D", log10D, dims="partitioned")
+        P_args = []
+        if pressure_range(p) is not None:
+            # the equilibration pressure: the D of the regression elements follow it
+            P_args = [pt.as_tensor_variable(_prior_rv("pressure_GPa", priors["pressure_GPa"]),
+                                            dtype="float64")]
         tau = _prior_rv("tau", priors["tau"])
         pred = _jax_predictions(p, part)
         vol_v = pt.stack([pt.as_tensor_variable(v, dtype="float64") for v in vol])
         lam_v = pt.as_tensor_variable(lam, dtype="float64")
         if part:
-            mu_v, em2, eps_v, eps_var, cmf_v, v_late = pred(w, vol_v, lam_v, log10D)
+            mu_v, em2, eps_v, eps_var, cmf_v, v_late = pred(w, vol_v, lam_v, log10D, *P_args)
         else:
-            mu_v, em2, eps_v, eps_var, cmf_v, v_late = pred(w, vol_v, lam_v)
+            mu_v, em2, eps_v, eps_var, cmf_v, v_late = pred(w, vol_v, lam_v, *P_args)
         mu = pm.Deterministic("mu", mu_v, dims="elements")
         x = w / p.c_comp_R
         if K > 1:
