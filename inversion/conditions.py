@@ -158,8 +158,9 @@ def at_case_conditions(p: Any, case: Any, pressure_GPa: float | None = None) -> 
     and ``Mbar_met`` of the reference core (no iteration with a fit)."""
     P = case.core.pressure_GPa if pressure_GPa is None else pressure_GPa
     if isinstance(P, tuple):
-        raise InputError("pressure_GPa = [low, high] is inferred by 'planetmix fit' only; "
-                         "give one value for this command", file=case.path,
+        raise InputError("pressure_GPa = [low, high] is inferred by 'planetmix fit' and "
+                         "'planetmix sample' only; give one value for this command",
+                         file=case.path,
                          field="core.pressure_GPa", value=list(P))
     s = _setup(p, case)
     return _at(p, s, float(P), s["x_Fe"], s["Mbar_met"],
