@@ -61,6 +61,9 @@ def write_sample(out: Path, case: Any, p: Any, result: Any,
         "likelihood": {"elements": "StudentT(nu=4, mu, sqrt(sigma^2 + tau^2))",
                        "isotopes": "Normal(eps_pred, sigma_obs)"},
         "timing_seconds": result.timing,
+        "off_trend": [{k: (v.item() if hasattr(v, "item") else v) for k, v in r.items()}
+                      for r in outl[["element", "class", "residual_dex", "direction", "z",
+                                     "tail_probability"]].to_dict("records")],
         "diagnostics": diag,
         "notes": list(p.notes),
         "provenance": case_provenance(case, p, tables=["vehtari2021"], extra={
@@ -181,6 +184,10 @@ def _sample(parser: argparse.ArgumentParser):
               f" bulk ESS min {d['ess_bulk_min']:.0f} (>= "
               f"{d['thresholds']['ess_bulk_min']:.0f}), divergences {d['divergences']} "
               "[Vehtari et al. 2021]")
+        for row in data.get("off_trend", [])[:8]:
+            print(f"  off trend: {row['element']} ({row['class']}) lies "
+                  f"{abs(row['residual_dex']):.2f} dex {row['direction']} (z = "
+                  f"{row['z']:+.1f}; posterior-predictive p = {row['tail_probability']:.2g})")
         print(f"  written to {args.out}/posterior.nc, summary.csv, planet_draws.parquet, "
               "outliers.csv, diagnostics.json, sample.json, planet.json (hand-off)")
         if "class_test" in extra:

@@ -748,7 +748,8 @@ def _sample_report(folder: Path) -> Report:
     if (folder / "outliers.csv").exists():
         out = _read_csv(folder / "outliers.csv")
         if len(out):
-            rep.tables.append(("Flagged elements (posterior-predictive |z| > 3)",
+            rep.tables.append(("Off-trend elements (posterior-predictive |z| > 3; p-value "
+                               "in tail_probability)",
                                _table_html(out)))
     rep.limits.append("Credible intervals are conditional on the model and its priors; "
                       "the model-scatter term tau absorbs what the idealised model cannot "

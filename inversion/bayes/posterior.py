@@ -164,11 +164,17 @@ def outliers(p: Problem, idata: Any, *, threshold: float = 3.0) -> pd.DataFrame:
     """Observed elements whose posterior-predictive residual exceeds ``threshold`` scales.
 
     For every observed element (fitted or not), the residual ``y - mu`` and the scale
-    ``sqrt(sigma**2 + tau**2)`` are computed per draw; ``z`` is the posterior median of
-    their ratio. ``tail_probability`` is the posterior-predictive probability of a
-    replicate at least as far from the model (Student-t, nu = 4).
+    ``sqrt(sigma**2 + tau**2 + sigma_model**2)`` (``sigma_model`` the end-member term of
+    the blocks' uncertainties at the draw's weights, :func:`inversion.kernel.
+    end_member_variance`) are computed per draw; ``z`` is the posterior median of their
+    ratio. ``tail_probability`` is the posterior-predictive p-value: the probability,
+    averaged over the posterior, of a replicate at least as far from the model as the
+    observation (two-sided, Student-t with nu = 4, the likelihood's own law). ``class``
+    is the element's geochemical family (lithophile, or chalcophile/siderophile).
     """
     from scipy import stats
+
+    from .. import kernel
 
     d = posterior_arrays(p, idata)
     fwd = forward(p, d["w"], d["vol"], d["lam"], D=d["D"])
@@ -176,15 +182,23 @@ def outliers(p: Problem, idata: Any, *, threshold: float = 3.0) -> pd.DataFrame:
     obs[p.ref_index] = False
     mu = fwd["log10N"][:, obs]
     y = p.y_all[obs]
-    scale = np.sqrt(p.sigma_all[obs][None, :] ** 2 + d["tau"][:, None] ** 2)
+    var = p.sigma_all[obs][None, :] ** 2 + d["tau"][:, None] ** 2
+    if p.Q_sigma_dex is not None:
+        var = var + np.nan_to_num(kernel.end_member_variance(
+            np, np.asarray(p.Q, float)[:, obs], np.asarray(p.Q_sigma_dex, float)[:, obs],
+            d["w"]))
+    scale = np.sqrt(var)
     z_draws = (y[None, :] - mu) / scale
     z = np.median(z_draws, axis=0)
     tail = np.mean(2 * stats.t.sf(np.abs(z_draws), STUDENT_NU), axis=0)
     fitted = np.zeros(len(p.elements), dtype=bool)
     fitted[p.fit_index] = True
     els = np.array(p.elements)[obs]
+    metal = (np.zeros(len(p.elements), bool) if p.metal_class is None
+             else np.asarray(p.metal_class, bool))
     df = pd.DataFrame({
         "element": els, "tc50_K": p.tc[obs], "fitted": fitted[obs],
+        "class": np.where(metal[obs], "chalcophile/siderophile", "lithophile"),
         "observed_log10N": y, "predicted_log10N": np.median(mu, axis=0),
         "residual_dex": y - np.median(mu, axis=0), "scale_dex": np.median(scale, axis=0),
         "z": z, "tail_probability": tail,
