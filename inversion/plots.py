@@ -47,7 +47,7 @@ from .volatility import log10_retained  # noqa: E402
 __all__ = ["OKABE_ITO", "CLASS_STYLE", "plot_style", "volatility_diagram", "residuals_plot",
            "weights_plot", "pair_plot", "ranking_plot", "planet_plot", "heat_plot",
            "distribution_plot", "trace_rank_plot", "prior_posterior_plot", "save_figure",
-           "png_bytes", "svg_text", "isotope_plot"]
+           "png_bytes", "svg_text", "isotope_plot", "siderophile_plot", "SIDEROPHILE_PANEL"]
 
 #: The eight colours of Okabe & Ito (2008, "Color Universal Design").
 OKABE_ITO = {
@@ -899,4 +899,88 @@ def isotope_plot(observed: Mapping[str, tuple[float, float]],
                    ncols=len(handles) if len(systems) >= 3 else 1)
         if title:
             fig.suptitle(title, x=0.01, ha="left")
+    return fig
+
+
+#: Moderately siderophile elements shown by :func:`siderophile_plot` when fitted.
+SIDEROPHILE_PANEL = ("Ni", "Co", "W", "Mo", "V", "Cr", "Mn", "Si", "Ga", "P", "Nb", "Ta",
+                     "Cu", "Ge")
+
+
+def siderophile_plot(residuals: pd.DataFrame, conditions: Mapping[str, object], *,
+                     normaliser: str = "CI", reference: str = "Mg",
+                     title: str | None = None) -> Figure:
+    """Core formation at (P, T, dIW): the mantle siderophile pattern and the pressure.
+
+    Left: observed (1-sigma bars) and modelled normalised abundances of the moderately
+    siderophile elements of :data:`SIDEROPHILE_PANEL` the fit holds, the elements whose D
+    come from a metal/silicate regression drawn filled, those on the effective D open.
+    Right (when the pressure was inferred): the chi2 profile over the pressure with the
+    delta chi2 = 1 and 3.84 levels and the two intervals shaded, the temperature on the
+    top axis when it follows the liquidus.
+
+    Parameters
+    ----------
+    residuals : DataFrame
+        ``residuals.csv`` of a fit (element, observed, model, sigma, fitted).
+    conditions : mapping
+        ``core_conditions`` of ``fit.json``.
+    """
+    sources = dict(conditions.get("sources") or {})  # type: ignore[arg-type]
+    df = residuals[residuals["element"].isin(SIDEROPHILE_PANEL)].copy()
+    df["order"] = [SIDEROPHILE_PANEL.index(e) for e in df["element"]]
+    df = df.sort_values("order")
+    prof = conditions.get("pressure_inferred")
+    with plot_style():
+        ncols = 2 if prof else 1
+        fig, axes = plt.subplots(1, ncols, figsize=(4.2 * ncols + 1.0, 3.4), squeeze=False,
+                                 layout="constrained")
+        ax = axes[0][0]
+        x = np.arange(len(df))
+        reg = np.array([sources.get(e, "effective") != "effective" for e in df["element"]])
+        ax.errorbar(x, df["observed"], yerr=df["sigma"], fmt="none", ecolor="0.4", lw=1)
+        ax.plot(x[reg], df["observed"].to_numpy()[reg], "o", color=OKABE_ITO["blue"],
+                label="observed (D from a regression)")
+        ax.plot(x[~reg], df["observed"].to_numpy()[~reg], "o", mfc="white",
+                color=OKABE_ITO["blue"], label="observed (effective D)")
+        ax.plot(x, df["model"], "_", color="black", ms=14, mew=2, label="model")
+        ax.set_xticks(x, list(df["element"]))
+        ax.set_ylabel(f"log$_{{10}}$ (X/{reference})$_{{mantle}}$ / "
+                      f"(X/{reference})$_{{{normaliser}}}$")
+        P = conditions.get("pressure_GPa")
+        T = conditions.get("temperature_K")
+        dIW = conditions.get("dIW")
+        if isinstance(P, int | float) and isinstance(T, int | float):
+            ax.set_title(f"P = {P:.1f} GPa, T = {T:.0f} K, dIW = {float(dIW):.2f}",
+                         loc="left")
+        ax.legend(loc="best", fontsize="small")
+        if prof:
+            ax2 = axes[0][1]
+            ev = prof["evaluated"]  # type: ignore[index]
+            Ps = np.array([e["pressure_GPa"] for e in ev], float)
+            c2 = np.array([e["chi2"] for e in ev], float)
+            cmin = float(np.nanmin(c2))
+            ax2.plot(Ps, c2 - cmin, "o-", color=OKABE_ITO["blue"], ms=3, lw=1)
+            for key, dc, shade in (("interval_95", 3.841, 0.15), ("interval_68", 1.0, 0.3)):
+                lo, hi = prof[key]  # type: ignore[index]
+                ax2.axvspan(lo, hi, color=OKABE_ITO["sky"], alpha=shade, lw=0)
+                ax2.axhline(dc, color="0.5", lw=0.8, ls="--")
+            # the intervals are the point: the axis stops where chi2 has risen by 25
+            ax2.set_ylim(0, max(10.0, 1.1 * float(np.nanmax(np.minimum(c2 - cmin, 25)))))
+            ax2.set_xlim(float(Ps.min()), float(Ps.max()))
+            ax2.set_xlabel("equilibration pressure [GPa]")
+            ax2.set_ylabel(r"$\chi^2 - \chi^2_{min}$")
+            ax2.set_title("profile: 68% and 95% intervals", loc="left")
+            Ts = np.array([e["temperature_K"] for e in ev], float)
+            if np.ptp(Ts) > 0:
+                top = ax2.secondary_xaxis("top", functions=(
+                    lambda p: np.interp(p, Ps, Ts), lambda t: np.interp(t, Ts, Ps)))
+                # one temperature label above each pressure tick (the liquidus is steep
+                # at low pressure: the default locator crowds the labels there)
+                ticks = [t for t in ax2.get_xticks() if Ps.min() <= t <= Ps.max()]
+                temps = np.interp(ticks, Ps, Ts)
+                top.set_xticks(temps, [f"{t:.0f}" for t in temps])
+                top.set_xlabel("temperature on the liquidus [K]")
+        if title:
+            fig.suptitle(title)
     return fig

@@ -295,6 +295,15 @@ def _fit_report(folder: Path) -> Report:
                             lambda: plots.weights_plot(d["weights"],
                                                        mass_fractions=d.get("mass_fractions"),
                                                        basis=ref)))
+    cc = d.get("core_conditions") or {}
+    if len(resid) and cc.get("partitioning") == "single-stage":
+        rep.figures.append(("Core formation at pressure", "Moderately siderophile elements "
+                            "of the mantle, observed and modelled with the D of the "
+                            "metal/silicate regressions at the fitted conditions (open "
+                            "symbols: effective D); right, when the pressure is inferred, "
+                            "the chi2 profile with its 68% and 95% intervals.",
+                            lambda: plots.siderophile_plot(resid, cc, normaliser=norm,
+                                                           reference=ref, title=title)))
     _isotope_figure(rep, d.get("isotope_figure"), staged=d.get("staged_accretion"))
     _staged_section(rep, d.get("staged_accretion"))
     if (folder / "planet.csv").exists():

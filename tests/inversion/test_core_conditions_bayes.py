@@ -65,3 +65,31 @@ def test_sampled_pressure_recovers_the_truth(tmp_path):
     # pressure's median (to the interpolation of an even number of draws)
     assert cc["temperature_K"]["median"] == pytest.approx(
         float(peridotite_liquidus(np.array(P["median"]))), rel=1e-3)
+
+
+def test_fit_report_shows_the_siderophile_figure(tmp_path):
+    """A single-stage fit at fixed pressure: the fit report carries the siderophile
+    figure (embedded, no outside URL); the figure function also draws the pressure
+    profile of an inferred fit (both panels, the 68% interval inside the 95% one)."""
+    import pandas as pd
+
+    from inversion import plots
+
+    path, _ = _simulate(tmp_path, 0.05, seed=7)
+    text = path.read_text().replace("pressure_GPa = [10.0, 80.0]", "pressure_GPa = 40.0")
+    path.write_text(text)
+    out = tmp_path / "fit"
+    assert main(["fit", str(path), "--out", str(out)]) == 0
+    assert main(["report", str(out)]) == 0
+    html = (out / "report.html").read_text()
+    assert "Core formation at pressure" in html and "data:image/png;base64" in html
+    resid = pd.read_csv(out / "residuals.csv")
+    cc = json.loads((out / "fit.json").read_text())["core_conditions"]
+    prof = {"evaluated": [{"pressure_GPa": P, "chi2": 10 + (P - 40) ** 2 / 16,
+                           "temperature_K": float(peridotite_liquidus(np.array(P)))}
+                          for P in np.linspace(10, 80, 9)],
+            "interval_68": [36.0, 44.0], "interval_95": [32.2, 47.8]}
+    fig = plots.siderophile_plot(resid, {**cc, "pressure_inferred": prof})
+    assert len(fig.axes) >= 2
+    labels = [t.get_text() for t in fig.axes[0].get_xticklabels()]
+    assert "Ni" in labels and "Co" in labels
