@@ -316,7 +316,7 @@ def test_sample_report_from_a_posterior(tmp_path):
     html = (folder / "report.html").read_text(encoding="utf-8")
     for text in ("Volatility diagram", "Building blocks", "Pairwise posterior",
                  "Whole planet", "FAILED", "largest R-hat", "90% credible interval",
-                 "mass fraction of CI", "run more draws", "Flagged elements",
+                 "mass fraction of CI", "run more draws", "Off-trend elements",
                  "Posterior summary", "Traces and rank histograms", "Prior and posterior"):
         assert text in html, text
     assert len(re.findall(r"data:image/png;base64,", html)) >= 4
