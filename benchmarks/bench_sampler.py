@@ -3,12 +3,12 @@
 On one posterior (the McDonough & Sun 1995 bulk silicate Earth from four chondrite
 groups, CI late veneer, kinked volatility), print the effective samples per second of
 
-* NUTS as ``planetmix sample`` runs it (engine nutpie: 4 chains x 1000 draws after 1000
+* NUTS by nutpie on the JAX log density (engine nutpie: 4 chains x 1000 draws after 1000
   tuning; sampling wall time after compilation, compile time printed apart),
 * optionally (``--with-pymc``) PyMC's own NUTS (engine pymc) on the same posterior, the
   engine planetmix used before, and
 * emcee (affine-invariant ensemble, Goodman & Weare 2010) on the same log density,
-  compiled the same way (numba, through pytensor) so that the comparison is of the
+  compiled the same way (JAX, through pytensor) so that the comparison is of the
   samplers and not of the compilers; walkers start in a small ball around the same
   convex optimum; the first half is discarded as burn-in,
 
@@ -93,7 +93,7 @@ def main() -> None:
     print(f"posterior: BSE_MS95 from {args.candidates} + CI late veneer; {p.n_fit} fitted "
           "elements")
 
-    settings = bayes.SamplerSettings(draws=1000, tune=1000, chains=4, seed=1)
+    settings = bayes.SamplerSettings(draws=1000, tune=1000, chains=4, seed=1, engine="nutpie")
     res = bayes.sample(p, settings, posterior_predictive=False, log_likelihood=False)
     model = bayes.build_model(p, res.priors)
     names = bayes.parameter_names(model)
@@ -108,7 +108,7 @@ def main() -> None:
         rate_pm = nuts_line("NUTS (PyMC) ", res_pm, names)
         print(f"ratio nutpie / PyMC NUTS ESS/s: {rate / rate_pm:.1f}")
 
-    logp = model.compile_logp(mode="NUMBA")
+    logp = model.compile_logp(mode="JAX")
     # start from the same (transformed) optimum as the NUTS chains
     init = res.start["initial_values"][0]
     with model:
@@ -127,7 +127,7 @@ def main() -> None:
     rng = np.random.default_rng(2)
     start = x0.data[None, :] + 1e-3 * rng.normal(size=(nwalkers, nd))
     sampler = emcee.EnsembleSampler(nwalkers, nd, lp)
-    lp(x0.data)  # numba compiles on the first call: keep it out of the timing
+    lp(x0.data)  # JAX compiles on the first call: keep it out of the timing
     t1 = time.perf_counter()
     sampler.run_mcmc(start, args.emcee_steps, progress=False)
     t_emcee = time.perf_counter() - t1
@@ -139,7 +139,7 @@ def main() -> None:
     caveat = ("" if trusted else ", under 50 tau: tau underestimated, ESS overestimated, "
               "so the ratio below is a lower bound")
     print(f"emcee: {nwalkers} walkers x {args.emcee_steps} steps ({nd} parameters, "
-          f"unconstrained space, numba log density): {t_emcee:.1f} s; min ESS {ess_e:.0f} "
+          f"unconstrained space, JAX log density): {t_emcee:.1f} s; min ESS {ess_e:.0f} "
           f"(max tau_int {np.max(tau):.0f} steps; kept chain = "
           f"{chain.shape[0] / np.max(tau):.0f} tau"
           f"{caveat}); "

@@ -74,7 +74,7 @@ FORMS: dict[str, VolatilityForm] = {
 #: fits it against ``kinked``.
 SPLIT_FORM = "kinked-split"
 #: Forms a case file may name (the split form is the nested alternative of the class
-#: test; the Bayesian model has no twin of it).
+#: test, fitted by ``findings.class_test`` and sampled by ``planetmix sample --class-test``).
 CASE_FORMS: dict[str, VolatilityForm] = {k: v for k, v in FORMS.items() if k != SPLIT_FORM}
 
 
