@@ -50,9 +50,10 @@ eps_pred[e50Ti]    0.834   0.89
 The 27 partitioned log10 D: p-values 0.046 (Se) to 0.883 (V), coverage 0.82 (V) to
 0.95 (Cu).
 
-Pooled coverage: 0.896 over all 35 parameters, 0.894 over the isotope-constrained ones
-(w, lam, eps_pred); both inside 85-95%. The lowest p-value (0.046) among 35 histograms is
-what uniform ranks give about once in 35 tests. The two eps_pred ranks coincide because
+Pooled coverage: 0.896 over all 35 quantities (33 parameters and the 2 predicted
+anomalies), 0.894 over the isotope-constrained ones (w, lam, eps_pred); both inside
+85-95%. One p-value below 0.05 (0.046) among 35 histograms is fewer than the 1.75 that
+uniform ranks give on average. The two eps_pred ranks coincide because
 both anomalies rise with the CI share; they are not independent checks of each other.
 """
 
