@@ -46,7 +46,7 @@ inference algorithms with simulation-based calibration. arXiv:1804.06788.
 from __future__ import annotations
 
 from .calibration import _flat_truth as _flat_truth
-from .calibration import draw_prior, sbc, simulate
+from .calibration import draw_prior, sbc, simulate, simulate_isotopes
 from .comparison import compare_runs
 from .diagnostics import (
     GATE_DIVERGENCES_MAX,
@@ -132,7 +132,8 @@ from .settings import (
     check_sampler_settings,
 )
 
-__all__ = ["draw_prior", "simulate", "sbc", "compare_runs", "GATE_RHAT_MAX", "GATE_ESS_BULK_MIN",
+__all__ = ["draw_prior", "simulate", "simulate_isotopes", "sbc", "compare_runs",
+           "GATE_RHAT_MAX", "GATE_ESS_BULK_MIN",
            "GATE_DIVERGENCES_MAX", "Diagnostics", "diagnose", "SampleResult", "start_points",
            "sample", "add_log_likelihood", "add_posterior_predictive", "posterior_arrays",
            "posterior_planet", "planet_draws", "outliers", "summary_table", "main_parameters",

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import math
 from typing import Any
 
 import numpy as np
@@ -17,7 +18,7 @@ from .priors import _partitioned, default_priors
 from .pymc_model import STUDENT_NU, build_model
 from .settings import ENGINES, SamplerSettings
 
-__all__ = ["draw_prior", "simulate", "sbc"]
+__all__ = ["draw_prior", "simulate", "simulate_isotopes", "sbc"]
 
 def draw_prior(p: Problem, priors: dict[str, dict[str, Any]], rng: np.random.Generator
                ) -> dict[str, Any]:
@@ -71,6 +72,38 @@ def simulate(p: Problem, truth: dict[str, Any], rng: np.random.Generator) -> np.
     return mu + scale * rng.standard_t(STUDENT_NU, size=mu.size)
 
 
+def simulate_isotopes(p: Problem, truth: dict[str, Any], rng: np.random.Generator
+                      ) -> np.ndarray:
+    """Isotope anomalies drawn from the model's isotope likelihood at ``truth``:
+    ``Normal(eps_planet, sigma_eff)`` with the carrier balance and the variance widened by
+    the end-members' errors (:func:`inversion.kernel.isotope_variance`), at the truth's
+    R-basis late weight."""
+    from .. import kernel
+
+    K = len(p.components)
+    w = np.asarray(truth.get("w", np.ones(K)), float)
+    vol = [truth[n] for n in get_form(p.volatility_form).params]
+    D = p.D.copy()
+    part = _partitioned(p)
+    if part:
+        D[part] = 10.0 ** np.asarray(truth["log10D"])
+    v = float(forward(p, w[None], np.asarray(vol)[None], truth.get("lam", 0.0),
+                      D=D)["v"][0])
+    out = []
+    for iso in p.isotopes:
+        eps, var = kernel.isotope_variance(np, iso, w, v)
+        out.append(float(eps) + math.sqrt(float(var)) * rng.standard_normal())
+    return np.array(out)
+
+
+def _with_isotopes(p: Problem, eps: np.ndarray) -> Problem:
+    """The problem with its observed isotope anomalies replaced by ``eps``."""
+    from dataclasses import replace as _replace
+
+    return _replace(p, isotopes=tuple({**d, "value": float(e)}
+                                      for d, e in zip(p.isotopes, eps, strict=True)))
+
+
 def _flat_truth(truth: dict[str, Any], p: Problem) -> dict[str, float]:
     out = {}
     for k, v in truth.items():
@@ -90,15 +123,17 @@ def sbc(p: Problem, n_replicates: int, *, draws: int = 200, tune: int = 200, cha
         blocks: str = "fixed", fit_block_uncertainty: bool = True) -> pd.DataFrame:
     """Simulation-based calibration (Talts et al. 2018) of the sampler on problem ``p``.
 
-    Each replicate draws parameters from the prior, simulates observations from the
-    numpy forward model and the likelihood (``blocks="drawn"``: from building blocks
-    whose ratios are drawn within their uncertainties, ``Q * 10**N(0, Q_sigma_dex)``, an
-    errors-in-variables truth; ``"fixed"``: from ``p.Q`` itself), samples the posterior as
-    :func:`sample` does (with ``fit_block_uncertainty=False`` the fitted model treats the
-    blocks as exact: ``Q_sigma_dex`` dropped from the likelihood and the convex start)
-    (NUTS from the jittered convex optimum; the log density is compiled once and reused
-    with new data), and records the rank of the truth among ``thin_to`` thinned
-    posterior draws and whether the central 90% interval covers it.
+    Each replicate draws parameters from the prior and simulates observations from the
+    numpy forward model and the likelihood: the element data (``blocks="drawn"``: from
+    building blocks whose ratios are drawn within their uncertainties,
+    ``Q * 10**N(0, Q_sigma_dex)``, an errors-in-variables truth; ``"fixed"``: from
+    ``p.Q`` itself) and, when the problem has isotope systems, the anomalies
+    (:func:`simulate_isotopes`). It samples the posterior as :func:`sample` does (NUTS
+    from the jittered convex optimum; the log density is compiled once and reused with
+    new data; with ``fit_block_uncertainty=False`` the fitted model treats the blocks as
+    exact: ``Q_sigma_dex`` dropped from the likelihood and the convex start), and records
+    the rank of the truth among ``thin_to`` thinned posterior draws and whether the
+    central 90% interval covers it.
 
     Returns
     -------
@@ -139,16 +174,22 @@ def sbc(p: Problem, n_replicates: int, *, draws: int = 200, tune: int = 200, cha
             y = simulate(_replace(p, Q=q_true), truth, rng)
         else:
             y = simulate(p, truth, rng)
-        fit = fit_problem(_with_y(p, y))
+        # the isotopes are simulated too (else their observed values would pull every
+        # replicate towards the case's own mixture)
+        eps = simulate_isotopes(p, truth, rng) if p.isotopes else None
+        p_rep = _with_y(p, y) if eps is None else _with_isotopes(_with_y(p, y), eps)
+        fit = fit_problem(p_rep)
+        if eps is not None and not fit.feasible:  # start from the chemistry alone
+            fit = fit_problem(_replace(p_rep, isotopes=()))
         if runner is not None:
             idata, _, _ = runner.run(p, priors, fit, settings, cores=cores,
                                      seed=int(rng.integers(2**31 - 1)),
                                      jitter_seed=int(rng.integers(2**31 - 1)),
-                                     progress=False, y=y)
+                                     progress=False, y=y, eps=eps)
         else:
             inits = start_points(p, priors, fit, chains, rng, settings.jitter)
             with model:
-                pm.set_data({"y_data": y})
+                pm.set_data({"y_data": y} if eps is None else {"y_data": y, "eps_data": eps})
                 idata = pm.sample(draws=draws, tune=tune, chains=chains, cores=1, step=step,
                                   initvals=inits, random_seed=int(rng.integers(2**31 - 1)),
                                   progressbar=False, compute_convergence_checks=False)

@@ -393,3 +393,27 @@ def test_off_trend_elements_by_posterior_predictive_p(synthetic_run):
         np.mean(2 * stats.t.sf(np.abs(z), bayes.STUDENT_NU)), rel=1e-9)
     data = json.loads((synthetic_run["out"] / "sample.json").read_text())
     assert isinstance(data["off_trend"], list)
+
+
+def test_simulated_isotopes_follow_the_isotope_likelihood():
+    """SBC simulates the anomalies too: the draw is the carrier balance at the truth plus
+    the widened 1-sigma times a standard normal of the same generator (hand computation
+    with inversion.isotopes.effective_sigma on the blocks and the late weight)."""
+    from inversion import isotopes as iso_mod
+
+    p = compile_problem(load_case(Path(__file__).parents[2] / "case_studies" / "demo"
+                                  / "orrin.toml"))
+    assert p.isotopes
+    truth = {"w": np.array([0.1, 0.2, 0.4, 0.3]), "T0": 1300.0, "slope": 0.003,
+             "lam": 0.004, "tau": 0.01}
+    part = bayes._partitioned(p)
+    truth["log10D"] = np.log10(p.D[part])
+    got = bayes.simulate_isotopes(p, truth, np.random.default_rng(5))
+    v = forward(p, truth["w"][None], np.array([[1300.0, 0.003]]), 0.004)["v"][0]
+    z = np.random.default_rng(5).standard_normal()
+    iso = p.isotopes[0]
+    u = np.append(truth["w"] * (1 - v), v)
+    q = np.append(iso["q_carrier"], iso["q_late"])
+    e = np.append(iso["eps"], iso["eps_late"])
+    mean = float((u * q * e).sum() / (u * q).sum())
+    assert got[0] == pytest.approx(mean + iso_mod.effective_sigma(iso, u) * z, rel=1e-12)
