@@ -187,6 +187,11 @@ def _sample(p: Problem, settings: SamplerSettings | None = None, *,
     t_fit = time.perf_counter() - t0
     model = build_model(p, priors, y=y)
     cores = settings.cores or min(settings.chains, os.cpu_count() or 1)
+    if settings.engine == "pymc":
+        # PyMC runs parallel chains in forked processes, and a process forked after JAX
+        # has started its threads deadlocks (seen: two idle children, no progress): the
+        # model's physics is a JAX operation, so PyMC's chains run one after the other
+        cores = 1
     if settings.engine == "nutpie":
         if progress:
             print("compiling the log density and its gradient (JAX; cached on disk for "
