@@ -50,7 +50,6 @@ CORE_RTOL = 1e-12
 #: split starts ``D_Fe`` at ``10**(-dIW/2) * 50/55`` (mean molar masses of silicate and
 #: metal of about 50 and 55 g/mol).
 K_START = 0.5
-JAX_NEWTON_STEPS = 0
 
 
 @dataclass(frozen=True)
@@ -227,12 +226,7 @@ def _solve_core_jax(c: Static, a: Any, D: Any, s0: Any) -> tuple[Any, dict[str, 
         i, s, _ = carry
         return i + 1, newton(s), s
 
-    if JAX_NEWTON_STEPS:
-        s_star = s0
-        for _ in range(JAX_NEWTON_STEPS):
-            s_star = newton(s_star)
-    else:
-        _, s_star, _ = jax.lax.while_loop(cond, body, (0, newton(s0), s0))
+    _, s_star, _ = jax.lax.while_loop(cond, body, (0, newton(s0), s0))
     s_star = jax.lax.stop_gradient(s_star)
     # implicit-function step: J = dG/ds at the solution, held constant
     J = jax.lax.stop_gradient(jax.jacfwd(step)(s_star))
