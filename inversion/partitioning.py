@@ -496,6 +496,23 @@ def _relax(state: Any, new: Any, damping: float) -> Any:
     return pos * np.exp(log_s + damping * (log_n - log_s)) + (1.0 - pos) * lin
 
 
+def _damped_iteration(step: Any, relax: Any, s: np.ndarray, tol: float, max_iter: int
+                      ) -> tuple[np.ndarray, int, np.ndarray]:
+    """Iterate ``s <- relax(s, step(s))`` until every row's largest relative change is
+    at most ``tol`` (or ``max_iter``); returns the state, the count and the per-row flag."""
+    iterations = 0
+    done = np.zeros(s.shape[:-1], dtype=bool)
+    while iterations < max_iter:
+        iterations += 1
+        new = step(s)
+        change = np.max(np.abs(new - s) / (np.abs(s) + 1e-12), axis=-1)
+        s = relax(s, new)
+        done = change <= tol
+        if np.all(done):
+            break
+    return s, iterations, done
+
+
 def solve_single_stage(a: np.ndarray, P: Any, T: Any, dIW: Any, chem: CoreChemistry, *,
                        tol: float = 1e-13, max_iter: int = 2000, damping: float = 0.7,
                        state0: np.ndarray | None = None) -> dict[str, Any]:
@@ -521,16 +538,9 @@ def solve_single_stage(a: np.ndarray, P: Any, T: Any, dIW: Any, chem: CoreChemis
     T = np.broadcast_to(np.asarray(T, float), batch)
     dIW = np.broadcast_to(np.asarray(dIW, float), batch)
     s = initial_state(a) if state0 is None else np.asarray(state0, float)
-    iterations = 0
-    done = np.zeros(batch, dtype=bool)
-    while iterations < max_iter:
-        iterations += 1
-        new = split_step(s, a, P, T, dIW, chem)
-        change = np.max(np.abs(new - s) / (np.abs(s) + 1e-12), axis=-1)
-        s = _relax(s, new, damping)
-        done = change <= tol
-        if np.all(done):
-            break
+    s, iterations, done = _damped_iteration(
+        lambda s: split_step(s, a, P, T, dIW, chem),
+        lambda s, new: _relax(s, new, damping), s, tol, max_iter)
     out = split_outputs(s, a, P, T, dIW, chem)
     out["iterations"] = iterations
     out["converged"] = done
@@ -575,17 +585,11 @@ def solve_for_mantle_FeO(a: np.ndarray, P: Any, T: Any, feo: Any, chem: CoreChem
     T = np.broadcast_to(np.asarray(T, float), batch)
     feo = np.broadcast_to(np.asarray(feo, float), batch)
     s = np.concatenate([initial_state(a), np.full(batch + (1,), float(dIW0))], axis=-1)
-    iterations = 0
-    done = np.zeros(batch, dtype=bool)
-    while iterations < max_iter:
-        iterations += 1
-        new = split_step_feo(s, a, P, T, feo, chem)
-        change = np.max(np.abs(new - s) / (np.abs(s) + 1e-12), axis=-1)
-        s = np.concatenate([_relax(s[..., :5], new[..., :5], damping),
-                            s[..., 5:] + damping * (new[..., 5:] - s[..., 5:])], axis=-1)
-        done = change <= tol
-        if np.all(done):
-            break
+    s, iterations, done = _damped_iteration(
+        lambda s: split_step_feo(s, a, P, T, feo, chem),
+        lambda s, new: np.concatenate([_relax(s[..., :5], new[..., :5], damping),
+                                       s[..., 5:] + damping * (new[..., 5:] - s[..., 5:])],
+                                      axis=-1), s, tol, max_iter)
     out = split_outputs(s[..., :5], a, P, T, s[..., 5], chem)
     out.update(dIW=s[..., 5], iterations=iterations, converged=done)
     return out
