@@ -213,7 +213,7 @@ def _posterior_conditions(p: Any, idata: Any) -> dict[str, Any]:
     it implies."""
     import numpy as np
 
-    cc = {k: v for k, v in p.core_conditions.items()}
+    cc = dict(p.core_conditions)
     if "pressure_GPa" in idata.posterior:
         P = np.asarray(idata.posterior["pressure_GPa"], float).ravel()
         q = np.percentile(P, [50.0, 5.0, 95.0])

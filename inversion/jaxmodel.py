@@ -17,6 +17,7 @@ of a case loads its log density instead of compiling it.
 from __future__ import annotations
 
 import os
+from functools import lru_cache
 from pathlib import Path
 from typing import Any
 
@@ -71,6 +72,15 @@ def pressure_range(p: Any) -> tuple[float, float] | None:
     return None if r is None else (float(r[0]), float(r[1]))
 
 
+@lru_cache(maxsize=8)
+def _chemistry(elements: tuple[str, ...]) -> Any:
+    """The compiled regressions of an element axis (read once per axis: the priors, the
+    start points and the posterior products all ask for them)."""
+    from . import partitioning as pt
+
+    return pt.compile_chemistry(elements, oxygen=False)
+
+
 def pressure_D(p: Any) -> tuple[np.ndarray, Any]:
     """The metal/silicate D of the regression elements as a function of pressure.
 
@@ -84,7 +94,7 @@ def pressure_D(p: Any) -> tuple[np.ndarray, Any]:
     from . import partitioning as pt
 
     cc = p.core_conditions
-    chem = pt.compile_chemistry(p.elements, oxygen=False)
+    chem = _chemistry(tuple(p.elements))
     mask = np.isin(chem.kind, (1, 2))
     mask[p.fe_index] = False
     base = np.asarray(p.D, float)
