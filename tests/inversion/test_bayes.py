@@ -334,9 +334,8 @@ def test_evidence_and_bayes_factor(synthetic_run, tmp_path, capsys):
 def test_bayesian_class_test_on_one_trend(synthetic_run, tmp_path):
     """`planetmix sample --class-test` on a body made with ONE volatility trend (the
     synthetic CI + EH body): the posterior of the class difference of slopes covers zero,
-    LOO does not prefer the split model, and the record carries both runs' diagnostics.
-    A fixed point of the trade: a split model nested in the common one cannot be preferred
-    by more than its noise when the data have no split (simulate, then check)."""
+    LOO does not prefer the split model, and the record carries both runs' diagnostics
+    (simulate, then check: the truth has no class difference)."""
     out = tmp_path / "ct"
     code = main(["sample", str(synthetic_run["case"]), "--out", str(out), *SETTINGS,
                  "--class-test"])
