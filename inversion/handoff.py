@@ -27,6 +27,8 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from components.exceptions import SolverError
+
 from .heat import HISTORY_GYR, heat_history
 from .planet import MAJOR_OXIDES
 
@@ -72,6 +74,8 @@ class PlanetDraws:
     heat_total_w : (B,) W for the mantle of the given planet mass, or None
     heat_history_w_per_kg : (B, T) W per kg of mantle at ``history_gyr`` before present
     history_gyr : (T,) Gyr before present
+    n_unphysical : number of draws left out (NaN) because their reservoirs were not
+        physical (a negative core or core iron mass, :func:`inversion.kernel.physical_state`)
     """
 
     core_mass_fraction: np.ndarray
@@ -85,6 +89,7 @@ class PlanetDraws:
     heat_history_w_per_kg: np.ndarray | None = None
     history_gyr: tuple[float, ...] = HISTORY_GYR
     planet_mass_kg: float | None = None
+    n_unphysical: int = 0
 
     def masked(self, keep: np.ndarray) -> PlanetDraws:
         """The same draws with every value of the draws not kept set to NaN (left out of
@@ -192,11 +197,20 @@ def planet_draws(p: Any, planet: dict[str, Any], *,
     hist = heat_history(c("U"), c("Th"), c("K"), HISTORY_GYR)
     cmf = np.asarray(planet["cmf"], float)
     total = hist[:, 0] * planet_mass_kg * (1.0 - cmf) if planet_mass_kg else None
-    return PlanetDraws(core_mass_fraction=cmf, mantle_oxides_wt=mantle_ox, core_wt=core,
-                       molar_ratios=ratios, mantle_trace_ppm=trace, bulk_wt=bulk,
-                       heat_w_per_kg=hist[:, 0], heat_total_w=total,
-                       heat_history_w_per_kg=hist, history_gyr=HISTORY_GYR,
-                       planet_mass_kg=planet_mass_kg)
+    draws = PlanetDraws(core_mass_fraction=cmf, mantle_oxides_wt=mantle_ox, core_wt=core,
+                        molar_ratios=ratios, mantle_trace_ppm=trace, bulk_wt=bulk,
+                        heat_w_per_kg=hist[:, 0], heat_total_w=total,
+                        heat_history_w_per_kg=hist, history_gyr=HISTORY_GYR,
+                        planet_mass_kg=planet_mass_kg)
+    physical = np.asarray(planet.get("physical", np.ones(B, bool)), bool)
+    if not physical.any():
+        raise SolverError("no draw gives a physical planet (the core or its iron mass is "
+                          "negative: the mantle needs more iron than the bulk holds)")
+    if not physical.all():
+        from dataclasses import replace
+
+        draws = replace(draws.masked(physical), n_unphysical=int((~physical).sum()))
+    return draws
 
 
 def _block(d: dict[str, np.ndarray]) -> dict[str, dict[str, float]]:
@@ -246,6 +260,7 @@ def write_handoff(folder: str | Path, draws: PlanetDraws, *,
     data.update(meta or {})
     data.update({
         "n_draws": draws.n_draws,
+        "unphysical_draws_left_out": draws.n_unphysical,
         "statistics": {"median": "50th percentile", "p16": "16th", "p84": "84th (p16-p84: "
                        "68 % central interval)", "p2.5": "2.5th", "p97.5": "97.5th (p2.5-p97.5: "
                        "95 % central interval)"},

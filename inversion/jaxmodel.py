@@ -29,7 +29,8 @@ __all__ = ["jax_setup", "predictions", "PREDICTION_KEYS", "cache_dir", "pressure
            "pressure_D"]
 
 #: Outputs of :func:`predictions`, in order.
-PREDICTION_KEYS = ("mu", "sigma_model2", "eps_pred", "eps_var", "cmf", "v")
+PREDICTION_KEYS = ("mu", "sigma_model2", "eps_pred", "eps_var", "cmf", "v",
+                   "core_iron_margin")
 _READY: list[bool] = []
 
 
@@ -128,7 +129,9 @@ def predictions(p: Any, partitioned: list[int] | tuple[int, ...] = ()) -> Any:
         of :data:`PREDICTION_KEYS`: ``mu`` (n_fit,) predicted log10 N of the fitted
         elements; ``sigma_model2`` (n_fit,) end-member variance [dex^2] (zeros without
         block uncertainties); ``eps_pred``, ``eps_var`` (n_iso,) isotope predictions and
-        widened variances; ``cmf``, ``v`` scalars.
+        widened variances; ``cmf``, ``v`` scalars; ``core_iron_margin`` scalar, core iron
+        over bulk iron (negative: no physical planet, :func:`inversion.kernel.
+        physical_state`).
     """
     jax_setup()
     import jax.numpy as jnp
@@ -162,6 +165,6 @@ def predictions(p: Any, partitioned: list[int] | tuple[int, ...] = ()) -> Any:
             vars_.append(var)
         eps = jnp.stack(preds) if preds else jnp.zeros(0)
         eps_var = jnp.stack(vars_) if vars_ else jnp.zeros(0)
-        return mu, em, eps, eps_var, out["cmf"], out["v"]
+        return mu, em, eps, eps_var, out["cmf"], out["v"], out["core_iron_margin"]
 
     return f

@@ -38,8 +38,8 @@ import numpy as np
 from .volatility import log10_retained
 
 __all__ = ["Static", "static_of", "bulk", "core_step", "solve_core", "assemble",
-           "forward", "isotope_balance", "isotope_variance", "end_member_variance",
-           "CORE_ITERATIONS", "CORE_RTOL", "K_START"]
+           "forward", "physical_state", "isotope_balance", "isotope_variance",
+           "end_member_variance", "CORE_ITERATIONS", "CORE_RTOL", "K_START"]
 
 #: Maximum fixed-point iterations of the core split; chondritic bulks need about ten
 #: with the mantle FeO fixed and about twenty-five with the redox split.
@@ -267,7 +267,31 @@ def forward(xp: Any, c: Static, w: Any, vol: Any, lam: Any, D: Any,
     out.update({"bulk": a, "mantle": split["mantle"], "core": split["core"],
                 "k": s[..., 0], "D_Fe": split["D_Fe"][..., 0], "x": x, "logr": logr,
                 "lam": lam, "state": s})
+    out.update(physical_state(xp, c, a, split["core"]))
     return out
+
+
+def physical_state(xp: Any, c: Static, a: Any, core: Any) -> dict[str, Any]:
+    """Whether the reservoirs of a core split are physical.
+
+    With the mantle FeO fixed, the mantle's iron is set by the target, so a bulk that
+    holds less iron than that mantle needs (strong loss of Fe at a high onset, a high
+    mantle FeO) leaves a *negative* core iron mass, and possibly a negative core. Such a
+    state is not a planet: the solvers treat it as infeasible (the iron budget), the
+    sampler's density is zero there, and any table built from it says so.
+
+    Returns
+    -------
+    dict
+        ``core_iron_margin`` (...,) core iron over bulk iron (1 - the mantle's share;
+        negative where the mantle needs more iron than the bulk holds); ``physical``
+        (...,) bool: every core mass >= 0 (to 1e-9 of the element's bulk mass) and the
+        core mass >= 0.
+    """
+    fe = c.fe_index
+    margin = core[..., fe] / xp.where(a[..., fe] > 0, a[..., fe], 1.0)
+    ok = xp.all(core >= -1e-9 * xp.abs(a), axis=-1) & (_sum(xp, core)[..., 0] >= 0.0)
+    return {"core_iron_margin": margin, "physical": ok}
 
 
 def isotope_balance(xp: Any, iso: dict[str, Any], w: Any, v: Any) -> tuple[Any, Any, Any]:

@@ -52,6 +52,8 @@ def assemble(p: Problem, fwd: dict[str, np.ndarray]) -> dict[str, object]:
     c_final = (1.0 - lam) * c_pre + lam * c_late
     ox_mass = c_final * p.oxide_factor[None, :]
     mantle_ox = 100.0 * ox_mass / ox_mass.sum(axis=1, keepdims=True)
+    # a negative core mass is an unphysical state (``physical`` False): clipped here only
+    # so that the tables stay readable; the hand-off leaves such draws out
     core = np.clip(fwd["core"], 0.0, None)
     core_wt = 100.0 * core / np.maximum(core.sum(axis=1, keepdims=True), 1e-300)
     mant = fwd["mantle"]
@@ -76,7 +78,8 @@ def assemble(p: Problem, fwd: dict[str, np.ndarray]) -> dict[str, object]:
     }
     return {"elements": els, "oxides": oxides, "mantle_oxides_wt": mantle_ox,
             "mantle_mass_fraction": c_final, "core_wt": core_wt, "bulk_wt": bulk_wt,
-            "bulk_elements": els + ["O"], "ratios": ratios, "cmf": fwd["cmf"]}
+            "bulk_elements": els + ["O"], "ratios": ratios, "cmf": fwd["cmf"],
+            "physical": np.asarray(fwd.get("physical", np.ones(lam.shape[0], bool)), bool)}
 
 
 def planet_table(p: Problem, planet: dict[str, object], index: int = 0) -> pd.DataFrame:

@@ -122,15 +122,18 @@ def build_model(p: Problem, priors: dict[str, dict[str, Any]] | None = None, *,
         pred = _jax_predictions(p, part)
         vol_v = pt.stack([pt.as_tensor_variable(v, dtype="float64") for v in vol])
         lam_v = pt.as_tensor_variable(lam, dtype="float64")
-        if part:
-            mu_v, em2, eps_v, eps_var, cmf_v, v_late = pred(w, vol_v, lam_v, log10D, *P_args)
-        else:
-            mu_v, em2, eps_v, eps_var, cmf_v, v_late = pred(w, vol_v, lam_v, *P_args)
+        args = (w, vol_v, lam_v, log10D, *P_args) if part else (w, vol_v, lam_v, *P_args)
+        mu_v, em2, eps_v, eps_var, cmf_v, v_late, fe_margin = pred(*args)
         mu = pm.Deterministic("mu", mu_v, dims="elements")
         x = w / p.c_comp_R
         if K > 1:
             pm.Deterministic("x", x / pt.sum(x), dims="components")
         pm.Deterministic("cmf", cmf_v)
+        # support: a mantle that needs more iron than the bulk holds leaves a negative
+        # core iron mass, which is no planet (zero density there; the convex fit's iron
+        # budget constraint)
+        pm.Potential("core_iron_nonnegative",
+                     pt.switch(pt.ge(fe_margin, 0.0), 0.0, -np.inf))
         # the squared uncertainties enter as data, not a constant: pytensor 2.38's
         # constant-inlining rewrite fails (harmlessly, but loudly) on the constant form
         sigma2 = pm.Data("sigma2_data", p.sigma ** 2, dims="elements")

@@ -137,11 +137,12 @@ def test_predictions_match_the_numpy_pieces(jnp):
     w = np.array([0.4, 0.2, 0.3, 0.1])[:len(p.components)]
     w = w / w.sum()
     vol = np.array([1300.0, 0.003])
-    mu, em2, eps, eps_var, cmf, v = (np.asarray(x) for x in f(
+    mu, em2, eps, eps_var, cmf, v, margin = (np.asarray(x) for x in f(
         jnp.asarray(w), jnp.asarray(vol), jnp.asarray(0.004), jnp.zeros(0)))
     out = forward(p, w[None], vol[None], 0.004)
     np.testing.assert_allclose(mu, out["log10N"][0][p.fit_index], rtol=1e-10)
     assert float(cmf) == pytest.approx(float(out["cmf"][0]), rel=1e-10)
+    assert float(margin) == pytest.approx(float(out["core_iron_margin"][0]), rel=1e-10)
     if p.Q_sigma_dex is not None:
         Q = p.Q[:, p.fit_index]
         S = p.Q_sigma_dex[:, p.fit_index]
@@ -173,3 +174,10 @@ def test_log_density_equals_the_recorded_one():
         # the old redox kernel took dG/ds by central differences (h = 1e-6 relative); the
         # JAX one is exact: gradients agree to ~4e-7 relative
         np.testing.assert_allclose(dlogp(point), run["dlogp"], rtol=2e-6, atol=1e-9)
+    # the support: where the mantle needs more iron than the bulk holds (onset high in
+    # the prior, steep slope: Fe strongly lost) the density is zero, and finite beside it
+    m, logp, _ = models[("demo", "feo")]
+    point = m.initial_point()
+    assert np.isfinite(logp({**point, "slope_log__": np.log(0.02)}))
+    assert np.isfinite(logp({**point, "T0_interval__": 2.0}))
+    assert logp({**point, "T0_interval__": 2.0, "slope_log__": np.log(0.02)}) == -np.inf
