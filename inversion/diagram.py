@@ -10,7 +10,10 @@ against the 50% condensation temperature of ``X`` (docs/model.md, section 1). Th
 quantity the engine fits (:func:`inversion.model.compile_problem` computes the same ratio
 with the case's normaliser, CI unless ``[target] normaliser`` names another).
 
-Figure conventions: temperature falls to the right on a logarithmic axis; geochemical
+Figure conventions: temperature falls to the right (a linear axis, the convention of such
+diagrams: a logarithmic temperature axis would crowd the refractory elements, 1350-1800 K,
+into a narrow strip); the normalised abundance on a logarithmic axis (decades labelled
+``10^n``, the table's values in dex are ``log10`` of the plotted ratio); geochemical
 classes by colour and marker (the Okabe & Ito 2008 colour-blind-safe colours, each class
 also with its own marker shape); cosmochemical classes as shaded bands; each element
 symbol placed where its rendered box overlaps no other label and no marker; widths of
@@ -58,6 +61,7 @@ from .plots import (  # noqa: E402
     OKABE_ITO,
     _class_style,
     _cosmo_bands,
+    _log_ratio_axis,
     plot_style,
 )
 from .volatility import FORMS, log10_retained  # noqa: E402
@@ -340,7 +344,7 @@ def abundance_diagram(points: pd.DataFrame, *, reference: str = "Mg",
         height = w_in * (0.95 if small else 0.55) + 0.25 * (len(bodies) > 1)
         fig, ax = plt.subplots(figsize=(w_in, height), layout="constrained")
         ax.set_xlim(x_hi, x_lo)
-        ax.set_ylim(y_lo, y_hi)
+        _log_ratio_axis(ax, y_lo, y_hi)
         band_texts = []
         for cls, lo, hi in _cosmo_bands(CONDENSATION_TABLES[condensation_table]):
             lo, hi = max(lo, x_lo), min(hi, x_hi)
@@ -358,7 +362,7 @@ def abundance_diagram(points: pd.DataFrame, *, reference: str = "Mg",
                                           transform=ax.get_xaxis_transform(), ha="center",
                                           va="top", fontsize=label_fs, color="#555555",
                                           zorder=1))
-        ax.axhline(0.0, color="#888888", lw=0.6, ls=":", zorder=1)
+        ax.axhline(1.0, color="#888888", lw=0.6, ls=":", zorder=1)
         ax.xaxis.set_major_locator(MultipleLocator(200 if small else 100))
         if fit is not None:
             _draw_fit(ax, fit, x_lo, x_hi, ms)
@@ -371,8 +375,10 @@ def abundance_diagram(points: pd.DataFrame, *, reference: str = "Mg",
                 if not m.any():
                     continue
                 colour, marker, _ = _class_style(cls)
-                sig = points["sigma"].to_numpy(float)[m]
-                ax.errorbar(tc[m], y[m], yerr=np.where(np.isfinite(sig), sig, 0.0),
+                sig = np.nan_to_num(points["sigma"].to_numpy(float)[m])
+                # a symmetric bar in dex is asymmetric in the ratio
+                yerr = [10.0 ** y[m] * (1.0 - 10.0 ** -sig), 10.0 ** y[m] * (10.0 ** sig - 1.0)]
+                ax.errorbar(tc[m], 10.0 ** y[m], yerr=yerr,
                             fmt=marker, ms=ms, color=colour, mec=colour, mew=0.7,
                             fillstyle=_BODY_FILL[b % len(_BODY_FILL)], mfc=colour,
                             mfcalt="white", ecolor=colour, elinewidth=0.6, capsize=0,
@@ -399,30 +405,45 @@ def abundance_diagram(points: pd.DataFrame, *, reference: str = "Mg",
         ax.set_xlabel(_tc_label(condensation_table))
         r = _mathtext(reference)
         n = _mathtext(norm.name)
-        ax.set_ylabel(rf"$\log_{{10}}\,[(\mathrm{{X}}/{r})_{{\mathrm{{body}}}}\,/\,"
-                      rf"(\mathrm{{X}}/{r})_{{{n}}}]$")
-        fig.legend(handles=handles, loc="outside lower center",
-                   ncols=2 if small or fit is not None else 4, handlelength=1.6, columnspacing=1.0,
-                   handletextpad=0.4)
+        ax.set_ylabel(rf"$(\mathrm{{X}}/{r})_{{\mathrm{{body}}}}\,/\,"
+                      rf"(\mathrm{{X}}/{r})_{{{n}}}$")
+        ncols = 2 if small or fit is not None else 4
+        leg = fig.legend(handles=handles, loc="outside lower center", ncols=ncols,
+                         handlelength=1.6, columnspacing=1.0, handletextpad=0.4)
+        fig.canvas.draw()
+        if leg.get_window_extent().width > fig.bbox.width:
+            # too wide for the page (long trend label in one column): one entry per row
+            leg.remove()
+            fig.legend(handles=handles, loc="outside lower center", ncols=1,
+                       handlelength=1.6, handletextpad=0.4)
         ax.text(1.0, 1.005, f"normaliser: {_norm_label(norm)}", transform=ax.transAxes,
                 ha="right", va="bottom", fontsize=label_fs, color="#444444")
         if title:
             ax.set_title(title, loc="left", fontsize=fs + 0.5)
         fig.canvas.draw()
         fig.set_layout_engine("none")  # freeze the layout before measuring text
-        obstacles = points[["tc50", "y"]].to_numpy(float)
+        shown = points.assign(y=10.0 ** y)  # in the axis' data units (the ratio)
+        obstacles = shown[["tc50", "y"]].to_numpy(float)
         if fit is not None:
-            obstacles = np.vstack([obstacles, fit.model[["tc50", "model"]].dropna()
-                                   .to_numpy(float)])
-        _place_labels(fig, ax, points, label_fs, ms, band_texts, obstacles)
+            mod = fit.model[["tc50", "model"]].dropna().to_numpy(float)
+            obstacles = np.vstack([obstacles, np.column_stack([mod[:, 0], 10.0 ** mod[:, 1]])])
+        _place_labels(fig, ax, shown, label_fs, ms, band_texts, obstacles)
     return fig
 
 
 def _trend_label(fit: FitTrend) -> str:
     units = dict(zip(FORMS[fit.form].params, FORMS[fit.form].units, strict=True))
-    txt = ", ".join(f"{k} = {v:.4g}{'' if units[k] == '1' else ' ' + units[k]}"
+    txt = ", ".join(f"{_param_text(k)} = {v:.4g}{'' if units[k] == '1' else ' ' + units[k]}"
                     for k, v in fit.params.items())
     return f"volatility trend ({fit.form}: {txt})"
+
+
+def _param_text(name: str) -> str:
+    """``T0`` as ``$T_0$`` (a subscripted symbol); other names as they are."""
+    import re
+
+    m = re.fullmatch(r"([A-Za-z])(\d+)", name)
+    return rf"${m.group(1)}_{{{m.group(2)}}}$" if m else name
 
 
 def _draw_fit(ax: Any, fit: FitTrend, x_lo: float, x_hi: float, ms: float) -> None:
@@ -432,7 +453,7 @@ def _draw_fit(ax: Any, fit: FitTrend, x_lo: float, x_hi: float, ms: float) -> No
     geo = props["geochemical_class"].reindex(mod["element"]).to_numpy()
     mt = mod["tc50"].to_numpy(float)
     mv = mod["model"].to_numpy(float)
-    ax.scatter(mt, mv, marker="_", s=(ms * 1.6) ** 2, color="black", lw=1.0, zorder=3)
+    ax.scatter(mt, 10.0 ** mv, marker="_", s=(ms * 1.6) ** 2, color="black", lw=1.0, zorder=3)
     lith = geo == "lithophile"
     if not lith.any():
         lith = np.ones(len(mod), bool)
@@ -440,8 +461,8 @@ def _draw_fit(ax: Any, fit: FitTrend, x_lo: float, x_hi: float, ms: float) -> No
     shift = float(np.median(mv[lith] - log10_retained(fit.form, params, mt[lith])[0]))
     grid = np.geomspace(x_lo, x_hi, 300)
     # the curve is clipped by the axes: it never stretches the y range
-    ax.plot(grid, log10_retained(fit.form, params, grid)[0] + shift, color=OKABE_ITO["sky"],
-            lw=1.4, zorder=2.5)
+    ax.plot(grid, 10.0 ** (log10_retained(fit.form, params, grid)[0] + shift),
+            color=OKABE_ITO["sky"], lw=1.4, zorder=2.5)
 
 
 def _overlaps(a: np.ndarray, boxes: np.ndarray) -> bool:
@@ -457,7 +478,7 @@ def _place_labels(fig: Figure, ax: Any, points: pd.DataFrame, fontsize: float, m
                   styles: dict[str, dict[str, Any]] | None = None) -> None:
     """Place one symbol per element near its highest point, measuring rendered boxes.
 
-    Candidate offsets at growing distance in eight directions; the first whose box lies in
+    Candidate offsets at growing distance in sixteen directions; the first whose box lies in
     the axes and overlaps no placed label, no band label and no marker is taken; labels
     placed farther than the nearest ring get a thin leader line.
     """
@@ -592,8 +613,8 @@ def _diagram(parser: argparse.ArgumentParser):
         plt.close(fig)
         n_el = pts["element"].nunique()
         print(f"diagram of {', '.join(t.name for t in tables)} ({n_el} elements; "
-              f"{args.reference}- and {norm.name}-normalised; Tc {args.condensation_table}) "
-              f"written to {path}")
+              f"{args.reference}- and {norm.name}-normalised; 50% condensation temperatures "
+              f"of {short_citation(args.condensation_table)}) written to {path}")
         return EXIT_OK
 
     return run

@@ -10,8 +10,8 @@ marker shape so that the figures read in grey scale as well.
 
 Figures
 -------
-- :func:`volatility_diagram`: log10 of the normaliser- (CI unless named) and
-  reference-normalised abundance against
+- :func:`volatility_diagram`: the normaliser- (CI unless named) and
+  reference-normalised abundance (logarithmic axis) against
   the 50% condensation temperature (hot on the left), coloured by geochemical class, with
   cosmochemical classes as labelled bands, uncertainty bars, the fitted pattern (and its
   credible band when draws exist) and the flagged outliers labelled.
@@ -87,6 +87,22 @@ def plot_style() -> Iterator[None]:
     """Context in which planetmix figures are drawn (rcParams kept local)."""
     with matplotlib.rc_context(_RC):
         yield
+
+
+def _log_ratio_axis(ax, lo_dex: float, hi_dex: float) -> None:
+    """A logarithmic y axis of a normalised abundance from ``10**lo_dex`` to ``10**hi_dex``:
+    decades labelled ``10^n``, unlabelled minor ticks at 2-9 (labelled too when the range
+    holds fewer than two decades)."""
+    from matplotlib.ticker import LogFormatterSciNotation, LogLocator, NullFormatter
+
+    ax.set_yscale("log")
+    ax.set_ylim(10.0 ** lo_dex, 10.0 ** hi_dex)
+    ax.yaxis.set_major_locator(LogLocator(base=10.0, numticks=12))
+    ax.yaxis.set_major_formatter(LogFormatterSciNotation(base=10.0))
+    ax.yaxis.set_minor_locator(LogLocator(base=10.0, subs=np.arange(2, 10),
+                                          numticks=12))
+    if np.floor(hi_dex) - np.ceil(lo_dex) >= 1:
+        ax.yaxis.set_minor_formatter(NullFormatter())
 
 
 def _element_props(elements: Sequence[str]) -> pd.DataFrame:
@@ -183,23 +199,23 @@ def volatility_diagram(
                                       _COSMO_LABEL.get(cls, cls),
                                       transform=ax.get_xaxis_transform(), ha="center",
                                       va="top", fontsize=7, color="#555555", zorder=1))
-        ax.axhline(0.0, color="#888888", lw=0.8, ls=":", zorder=1)
+        ax.axhline(1.0, color="#888888", lw=0.8, ls=":", zorder=1)
         model = df["model"].astype(float).to_numpy()
         tc = df["tc50"].astype(float).to_numpy()
         # the fitted pattern: per-element model values (and intervals when available)
         if {"model_lo", "model_hi"} <= set(df.columns):
             lo = df["model_lo"].astype(float).to_numpy()
             hi = df["model_hi"].astype(float).to_numpy()
-            ax.vlines(tc, lo, hi, color="#9a9a9a", lw=5, alpha=0.55, zorder=2,
+            ax.vlines(tc, 10.0 ** lo, 10.0 ** hi, color="#9a9a9a", lw=5, alpha=0.55, zorder=2,
                       label=f"model, {interval_label}")
         seen_obs = np.isfinite(df["observed"].astype(float).to_numpy())
         ok = np.isfinite(model) & seen_obs
         if ok.any():
-            ax.scatter(tc[ok], model[ok], marker="_", s=110, color="black", lw=1.4, zorder=3,
-                       label="model (each element)")
+            ax.scatter(tc[ok], 10.0 ** model[ok], marker="_", s=110, color="black", lw=1.4,
+                       zorder=3, label="model (each element)")
         un = np.isfinite(model) & ~seen_obs
         if un.any():
-            ax.scatter(tc[un], model[un], marker="_", s=90, color="#b5b5b5", lw=1.2,
+            ax.scatter(tc[un], 10.0 ** model[un], marker="_", s=90, color="#b5b5b5", lw=1.2,
                        zorder=2.8, label="model, element not in the target")
         if volatility is not None and volatility.get("form"):
             _volatility_curve(ax, df, volatility, volatility_draws, interval_label,
@@ -218,7 +234,11 @@ def volatility_diagram(
                 m = in_cls & (fitted == fit_state)
                 if not m.any():
                     continue
-                ax.errorbar(tc[m], obs[m], yerr=sig[m], fmt=marker, ms=5.5, color=colour,
+                s_m = np.nan_to_num(sig[m])
+                # a symmetric bar in dex is asymmetric in the ratio
+                ax.errorbar(tc[m], 10.0 ** obs[m], yerr=[10.0 ** obs[m] * (1 - 10.0 ** -s_m),
+                                                          10.0 ** obs[m] * (10.0 ** s_m - 1)],
+                            fmt=marker, ms=5.5, color=colour,
                             mfc=colour if fit_state else "white", mec=colour, ecolor=colour,
                             elinewidth=0.9, capsize=0, zorder=4,
                             label=label if fit_state or not (in_cls & fitted).any() else None)
@@ -227,8 +247,8 @@ def volatility_diagram(
                              & np.isfinite(obs))
         out_text: dict[str, str] = {}
         for i in out:
-            ax.scatter(tc[i], obs[i], s=70, facecolors="none", edgecolors=OKABE_ITO["black"],
-                       lw=1.0, zorder=6)
+            ax.scatter(tc[i], 10.0 ** obs[i], s=70, facecolors="none",
+                       edgecolors=OKABE_ITO["black"], lw=1.0, zorder=6)
             z = df["z"].iloc[i] if "z" in df.columns else np.nan
             out_text[df["element"].iloc[i]] = f"{df['element'].iloc[i]} ({float(z):+.1f}σ)"
         if len(out):
@@ -242,23 +262,25 @@ def volatility_diagram(
                                obs[has] + np.nan_to_num(sig[has]), model[np.isfinite(model)]])
         y0, y1 = float(np.min(vals)), float(np.max(vals))
         pad = 0.08 * max(y1 - y0, 0.5)
-        ax.set_ylim(y0 - pad, y1 + 2.5 * pad)  # room for the class labels
+        _log_ratio_axis(ax, y0 - pad, y1 + 2.5 * pad)  # room for the class labels
         ax.set_xlim(x_hi, x_lo)
         ax.set_xlabel(_tc_label(tc_table) + "; hot on the left")
         r = r"\mathrm{" + reference + "}"
         n = r"\mathrm{" + normaliser.replace("_", r"\_").replace(" ", r"\ ") + "}"
-        ax.set_ylabel(rf"$\log_{{10}}\,[(\mathrm{{X}}/{r})_{{\mathrm{{sample}}}}\,/\,"
-                      rf"(\mathrm{{X}}/{r})_{{{n}}}]$")
+        ax.set_ylabel(rf"$(\mathrm{{X}}/{r})_{{\mathrm{{sample}}}}\,/\,"
+                      rf"(\mathrm{{X}}/{r})_{{{n}}}$")
         if title:
             ax.set_title(title, loc="left", fontsize=9)
         handles, labels = ax.get_legend_handles_labels()
         fig.legend(handles, labels, loc="outside lower center", ncols=2, fontsize=7)
         fig.canvas.draw()
         fig.set_layout_engine("none")
+        # label placement in the axis' data units (the ratio, not dex)
         pts = pd.DataFrame({"element": df["element"].to_numpy()[has], "tc50": tc[has],
-                            "y": obs[has]})
-        obst = np.vstack([np.column_stack([tc[has], obs[has]]),
-                          np.column_stack([tc[np.isfinite(model)], model[np.isfinite(model)]])])
+                            "y": 10.0 ** obs[has]})
+        obst = np.vstack([np.column_stack([tc[has], 10.0 ** obs[has]]),
+                          np.column_stack([tc[np.isfinite(model)],
+                                           10.0 ** model[np.isfinite(model)]])])
         _place_labels(fig, ax, pts, 6.0, 7.5, band_texts, obst, texts=out_text,
                       styles={e: {"fontweight": "bold"} for e in out_text})
     return fig
@@ -294,12 +316,13 @@ def _volatility_curve(ax, df: pd.DataFrame, volatility: Mapping[str, object],
         if len(d):
             band = log10_retained(form, d, grid) + shift
             lo, hi = np.percentile(band, [5, 95], axis=0)
-            ax.fill_between(grid, lo, hi, color=OKABE_ITO["sky"], alpha=0.35, lw=0, zorder=2,
+            ax.fill_between(grid, 10.0 ** lo, 10.0 ** hi, color=OKABE_ITO["sky"], alpha=0.35,
+                            lw=0, zorder=2,
                             label=f"volatility trend, {interval_label}")
     units = dict(zip(names, FORMS[form].units, strict=True))
     txt = ", ".join(f"{k} = {float(volatility[k]):.4g}"
                     f"{'' if units[k] == '1' else ' ' + units[k]}" for k in names)
-    ax.plot(grid, curve, color=OKABE_ITO["sky"], lw=2.0, zorder=2.5,
+    ax.plot(grid, 10.0 ** curve, color=OKABE_ITO["sky"], lw=2.0, zorder=2.5,
             label=f"volatility trend ({form}: {txt})")
 
 

@@ -52,6 +52,19 @@ def test_values_match_hand_computation_with_other_normaliser_and_reference(table
     for key, val in hand.items():
         assert got[key] == pytest.approx(val, abs=1e-12)
     assert "Al" not in set(pts["element"])  # the reference itself is not drawn
+    # drawn on a logarithmic axis as the ratio itself: 10**y at each element's Tc
+    fig = diagram.abundance_diagram(pts, reference="Al",
+                                    normaliser=diagram.resolve_composition(n))
+    ax = fig.axes[0]
+    assert ax.get_yscale() == "log" and ax.get_xlim()[0] > ax.get_xlim()[1]
+    drawn = np.vstack([np.column_stack(ln.get_data()) for ln in ax.lines
+                       if ln.get_marker() not in ("None", "", None) and len(ln.get_xdata())])
+    tc_el = pts.drop_duplicates("element").set_index("element")["tc50"]
+    for (_body, el), val in hand.items():
+        hit = np.isclose(drawn[:, 0], tc_el[el]) & np.isclose(drawn[:, 1], 10.0 ** val,
+                                                              rtol=1e-12)
+        assert hit.any(), (_body, el)
+    plt.close(fig)
     # temperatures from the element table (Lodders 2003 Table 8: Ca 1517 K, Zn 726 K,
     # from memory of that table; here only checked to come from the library)
     tc = pts.drop_duplicates("element").set_index("element")["tc50"]
@@ -139,9 +152,16 @@ def test_fit_overlay_reads_the_trend_and_refuses_another_reference(tmp_path):
     fig = diagram.abundance_diagram(pts, fit=trend)
     curve = [ln for ln in fig.axes[0].lines if ln.get_color() == diagram.OKABE_ITO["sky"]][0]
     x, y = curve.get_data()
-    # the curve passes through the simulated lithophile model points (zero shift)
-    assert np.interp(1000.0, x[::-1] if x[0] > x[-1] else x,
-                     y[::-1] if x[0] > x[-1] else y) == pytest.approx(-0.6, abs=1e-3)
+    # the curve passes through the simulated lithophile model points (zero shift); the
+    # axis is logarithmic: the curve is drawn as the ratio, 10**(-0.6) at 1000 K
+    assert fig.axes[0].get_yscale() == "log"
+    assert np.log10(np.interp(1000.0, x[::-1] if x[0] > x[-1] else x,
+                              y[::-1] if x[0] > x[-1] else y)) == pytest.approx(-0.6, abs=1e-3)
+    # the legend with the long trend entry stays inside the single-column page
+    fig.canvas.draw()
+    for leg in fig.legends:
+        bb = leg.get_window_extent(fig.canvas.get_renderer())
+        assert fig.bbox.x0 - 1 <= bb.x0 and bb.x1 <= fig.bbox.x1 + 1
     plt.close(fig)
     out = tmp_path / "f.svg"
     assert main(["diagram", "BSE_MS95", "--fit", str(folder), "--out", str(out)]) == 0
