@@ -169,8 +169,11 @@ def _sample(parser: argparse.ArgumentParser):
               f"{t['compile_seconds']:.1f} s, sampling {t['sampling_seconds']:.1f} s)")
         print("  weights (" + p.reference + " basis, median [5%, 95%]): " + "; ".join(
             f"{k} {_fmt(v, spec='.3f')}" for k, v in post["weights"].items()))
+        from .cli import _unit
+
         print(f"  volatility ({p.volatility_form}): " + "; ".join(
-            f"{k} {_fmt(v)}" for k, v in post["volatility"].items() if k != "form"))
+            f"{k} {_fmt(v)}{_unit(p.volatility_form, k)}" for k, v in post["volatility"].items()
+            if k != "form"))
         if "late_accretion_fraction" in post:
             print(f"  late accretion: {_fmt(post['late_accretion_fraction'], 100, '.3f')} % of "
                   f"the mantle, {_fmt(post['late_accretion_planet_fraction'], 100, '.3f')} %"

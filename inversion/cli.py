@@ -13,10 +13,14 @@ import os
 import sys
 from collections.abc import Callable
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import numpy as np
 
 from .exceptions import InputError, PlanetmixError
+
+if TYPE_CHECKING:
+    import pandas as pd
 
 __all__ = ["main", "register", "EXIT_OK", "EXIT_INPUT", "EXIT_INFEASIBLE", "EXIT_GATE"]
 
@@ -176,6 +180,18 @@ def _unit(form: str, name: str) -> str:
     return "" if u == "1" else f" {u}"
 
 
+def _interval_text(key: str, q: dict, form: str) -> str:
+    """``T0 [1287, 1321] K``: one Laplace interval of the fit summary, with its unit."""
+    name = key.split(":")[-1]
+    lo, hi = q["p2.5"], q["p97.5"]
+    if key == "late_accretion_fraction":
+        return f"late accretion [{100 * lo:.3g}, {100 * hi:.3g}] % of the mantle"
+    if key == "core_mass_fraction":
+        return f"core mass fraction [{lo:.3g}, {hi:.3g}]"
+    unit = _unit(form, name) if key.startswith("volatility:") else ""
+    return f"{name} [{lo:.4g}, {hi:.4g}]{unit}"
+
+
 def _write_fit(out: Path, case, p, result, findings: dict,
                staged: dict | None = None) -> None:
     from .conditions import conditions_block
@@ -288,8 +304,12 @@ def _fit(parser: argparse.ArgumentParser):
 
         case = load_case(args.case, staged=True)
         P_core = case.core.pressure_GPa
-        p = compile_problem(case, pressure_GPa=P_core[0] if isinstance(P_core, tuple)
-                            else None)
+        if case.core.partitioning == "single-stage":
+            from .conditions import free_conditions, start_problem
+
+            p = start_problem(case)  # inferred conditions start at mid-range
+        else:
+            p = compile_problem(case)
         from .model import implausible_lines
 
         for line in implausible_lines(p.implausible):
@@ -300,10 +320,10 @@ def _fit(parser: argparse.ArgumentParser):
             case_systems(case, core_mantle_ratio=1.0)  # refuse missing values before fitting
         settings = FitSettings(cmf_range=case.cmf_range)
         if case.core.partitioning == "single-stage":
-            from .conditions import fit_at_conditions, infer_pressure
+            from .conditions import fit_at_conditions, infer_conditions
 
-            if isinstance(P_core, tuple):
-                result, p = infer_pressure(p, case, settings)
+            if free_conditions(case):
+                result, p = infer_conditions(p, case, settings)
             else:
                 result, p, _ = fit_at_conditions(p, case, P_core, settings)
         else:
@@ -341,8 +361,7 @@ def _fit(parser: argparse.ArgumentParser):
             show = [k for k in q if k.startswith(("weight:", "volatility:"))] + [
                 k for k in ("late_accretion_fraction", "core_mass_fraction") if k in q]
             print("  95% intervals (Laplace, curvature at the optimum): " + "; ".join(
-                f"{k.split(':')[-1]} [{q[k]['p2.5']:.4g}, {q[k]['p97.5']:.4g}]"
-                for k in show))
+                _interval_text(k, q[k], result.volatility_form) for k in show))
         for line in summary_lines(f):
             print("  " + line)
         print(f"  written to {args.out}/fit.json, residuals.csv, planet.csv, and the hand-off "
@@ -383,11 +402,7 @@ def _rank(parser: argparse.ArgumentParser):
                                          extra={"case_file": case.path,
                                                 "solver": {**SCREEN_SETTINGS.record,
                                                            "cmf_range": case.cmf_range}})})
-        cols = ["rank", "components", "status", "chi2", "aic", "bic",
-                "late_accretion_fraction", "core_mass_fraction"]
-        show = table[cols].head(args.top).copy()
-        with np.printoptions(precision=3):
-            print(show.to_string(index=False, float_format=lambda v: f"{v:.4g}"))
+        print(_ranking_text(table.head(args.top), case.volatility_form))
         print(f"{len(table)} hypotheses; written to {args.out}/ranking.csv")
         if table.iloc[0]["status"] == "infeasible":
             print("the best hypothesis is infeasible: " + str(table.iloc[0]["reasons"]))
@@ -395,6 +410,31 @@ def _rank(parser: argparse.ArgumentParser):
         return EXIT_OK
 
     return run
+
+
+def _ranking_text(table: pd.DataFrame, form: str) -> str:
+    """The ranking's leading rows as a table whose headers carry the units."""
+    import pandas as pd
+
+    from .volatility import FORMS
+
+    cols: dict[str, tuple[pd.Series, str]] = {
+        "rank": (table["rank"], "{}"), "components": (table["components"], "{}"),
+        "status": (table["status"], "{}"), "chi2": (table["chi2"], "{:.2f}"),
+        "AIC": (table["aic"], "{:.1f}"), "BIC": (table["bic"], "{:.1f}")}
+    for name in (FORMS[form].params if form in FORMS else ()):
+        if f"{form}_{name}" in table.columns:
+            unit = _unit(form, name).strip() or "1"
+            cols[f"{name} [{unit}]"] = (table[f"{form}_{name}"],
+                                        "{:.0f}" if unit == "K" else "{:.3g}")
+    cols["late [% mantle]"] = (100.0 * table["late_accretion_fraction"], "{:.3g}")
+    cols["CMF"] = (table["core_mass_fraction"], "{:.3f}")
+    show = pd.DataFrame({k: [fmt.format(v) if pd.notna(v) else "n/a" for v in col]
+                         for k, (col, fmt) in cols.items()})
+    text = show.to_string(index=False, line_width=100)
+    # wider than 100 columns (long names): pandas continues the columns below
+    return text + "\n(CMF: core mass fraction of the planet; late: late accretion, mass % " \
+        "of the mantle)"
 
 
 def _load_plugins() -> None:

@@ -59,8 +59,8 @@ def _settings(args: argparse.Namespace):
 
 
 def _fmt(s: dict[str, float], digits: int = 3) -> str:
-    return (f"{s['median']:.{digits}g} (68%: {s['p16']:.{digits}g}-{s['p84']:.{digits}g}; "
-            f"95%: {s['p2.5']:.{digits}g}-{s['p97.5']:.{digits}g})")
+    return (f"{s['median']:.{digits}g} (68%: {s['p16']:.{digits}g} to {s['p84']:.{digits}g}; "
+            f"95%: {s['p2.5']:.{digits}g} to {s['p97.5']:.{digits}g})")
 
 
 @register("star", "a rocky planet's composition from its host star's abundances")
@@ -105,8 +105,10 @@ def _star(parser: argparse.ArgumentParser):
             data = write_handoff(tmp, res.draws, meta=meta)
         print(f"Star {star.star_id}: {len(star.values)} elements measured; "
               f"{settings.draws} draws (seed {settings.seed})")
+        from .cli import _unit
+
         print(f"  devolatilisation: {settings.pattern.label} ({settings.pattern.form}: "
-              + ", ".join(f"{k} = {v:.4g}" for k, v in
+              + ", ".join(f"{k} = {v:.4g}{_unit(settings.pattern.form, k)}" for k, v in
                           settings.pattern.as_dict()["parameters"].items()) + ")")
         if res.infeasible_fraction >= 1.0:
             print(f"  infeasible: a mantle FeO of {settings.mantle_FeO_wt} wt% needs more iron "
@@ -115,7 +117,7 @@ def _star(parser: argparse.ArgumentParser):
             return EXIT_INFEASIBLE
         print(f"  core mass fraction {_fmt(data['core_mass_fraction'])}")
         for name in ("Mg/Si_bulk", "Fe/Si_bulk", "Fe/Mg_bulk", "Mg#_mantle"):
-            print(f"  {name} {_fmt(data['molar_ratios'][name])}")
+            print(f"  {name} {_fmt(data['molar_ratios'][name])} (molar)")
         hp = data["heat_production"]
         print(f"  heat production {_fmt(hp['w_per_kg_mantle'])} W/kg of mantle"
               + (f"; total {_fmt(hp['total_w'])} W" if hp["total_w"] else ""))
