@@ -41,7 +41,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .model import Problem, forward
+from . import kernel
+from .model import Problem
 from .qp import solve_quadratic_batch
 from .volatility import get_form
 
@@ -119,9 +120,89 @@ def _model_sigma(p: Problem, U: np.ndarray, fi: np.ndarray) -> np.ndarray | None
     return np.nan_to_num(rel) ** 2
 
 
+def core_fixed_point(c: kernel.Static, a: np.ndarray, D: np.ndarray,
+                     s0: np.ndarray | None = None) -> tuple[np.ndarray, dict[str, np.ndarray]]:
+    """The fixed point ``s = G(s)`` of :func:`inversion.kernel.core_step` for a batch,
+    by Newton's method, and the reservoirs at it.
+
+    The same fixed point and stopping rule as :func:`inversion.kernel.solve_core` (k
+    changes by at most ``CORE_RTOL * (1 + k)``), reached in fewer steps: the derivative
+    ``J = dG/ds`` is taken by a forward difference of ``G`` (one more step per state
+    variable) at the first iterate, then held (chord steps, each one evaluation of
+    ``G``), and taken again when a chord step does not shrink the change. A Newton step
+    that leaves the physical range (k < 0, D_Fe <= 0, not finite) is replaced by the
+    plain step ``G(s)``. ``s0`` (B, d) warm-starts the iteration.
+
+    Returns
+    -------
+    s : ndarray (B, d)
+    res : dict
+        The reservoirs of :func:`inversion.kernel.core_step` at ``s`` (``mantle``,
+        ``core``, ``M_s``, ``M_c``, ``D_Fe``).
+    """
+    B = a.shape[0]
+    s = kernel.start_state(np, c, (B,))
+    if s0 is not None:  # a warm start, where it is a state at all
+        s0 = np.asarray(s0, float)
+        s = np.where(np.isfinite(s0).all(axis=1, keepdims=True), s0, s)
+    d = s.shape[1]
+    Jinv = None
+    prev_change = None
+    res: dict[str, np.ndarray] = {}
+    for _ in range(kernel.CORE_ITERATIONS):
+        g, res = kernel.core_step(np, c, a, D, s)
+        if Jinv is None:
+            h = 1e-7 * (1.0 + np.abs(s))
+            probe = np.concatenate([s + h[:, j:j + 1] * np.eye(d)[j] for j in range(d)])
+            gp = kernel.core_step(np, c, np.concatenate([a] * d),
+                                  D if np.ndim(D) == 1 else np.concatenate([D] * d),
+                                  probe)[0]
+            J = np.stack([(gp[j * B:(j + 1) * B] - g) / h[:, j:j + 1] for j in range(d)],
+                         axis=-1)  # (B, d, d): J[b, i, j] = dG_i / ds_j
+            Jinv = np.linalg.inv(np.eye(d) - J)
+        nxt = s + np.einsum("bij,bj->bi", Jinv, g - s)
+        ok = np.isfinite(nxt).all(axis=1) & (nxt[:, 0] >= 0.0)
+        if d > 1:
+            ok &= (nxt[:, 1:] > 0.0).all(axis=1)
+        nxt = np.where(ok[:, None], nxt, g)
+        change = np.abs(nxt[:, 0] - s[:, 0])
+        # a row that is not finite stays so (as under the plain iteration): it is done
+        done = (change <= kernel.CORE_RTOL * (1.0 + np.abs(nxt[:, 0]))) | ~np.isfinite(change)
+        if np.all(done):
+            # s is within the tolerance of the fixed point: returned with its reservoirs
+            break
+        if prev_change is not None and np.any(change[~done] > 0.5 * prev_change[~done]):
+            Jinv = None  # the held derivative no longer contracts: take it again
+        prev_change = change
+        s = nxt
+    return s, res
+
+
+def _forward_rows(p: Problem, U: np.ndarray, TH: np.ndarray,
+                  s0: np.ndarray | None = None) -> dict[str, np.ndarray]:
+    """The forward quantities the misfit and the constraints read, for weights ``U``
+    (B, m) as they are (off the simplex too: the bulk is linear in the weights and the
+    core split homogeneous in the bulk, so the mantle scales with the blocks' sum)."""
+    K = p.Q.shape[-2]
+    c = kernel.static_of(p)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        logr = kernel.relative_log_retained(np, c, TH)
+        a = kernel.bulk(np, c, U[:, :K], logr)
+        s, res = core_fixed_point(c, a, p.D, s0)
+    return _outputs(p, a, s, res)
+
+
+def _outputs(p: Problem, a: np.ndarray, s: np.ndarray, res: dict[str, np.ndarray]
+             ) -> dict[str, np.ndarray]:
+    fe = p.fe_index
+    return {"mantle": res["mantle"][:, p.fit_index], "core_fe": res["core"][:, fe],
+            "bulk_fe": a[:, fe], "M_s": res["M_s"][:, 0], "M_c": res["M_c"][:, 0],
+            "state": s}
+
+
 def evaluate(p: Problem, U: np.ndarray, TH: np.ndarray, *,
              cmf_range: tuple[float, float] | None = None,
-             restore: bool = False) -> dict[str, np.ndarray]:
+             restore: bool = False, s0: np.ndarray | None = None) -> dict[str, np.ndarray]:
     """Residuals, chi2 and nonlinear constraint values for a batch of parameter sets.
 
     Parameters
@@ -139,43 +220,53 @@ def evaluate(p: Problem, U: np.ndarray, TH: np.ndarray, *,
         Restoration mode: the residuals become the constraint violations (weighted
         1e3) with the misfit as a faint tie-breaker (1e-4), and no constraints; the
         polish then moves an infeasible start to the feasible set.
+    s0 : ndarray, shape (B, d), optional
+        Start of the core fixed point (e.g. the state of a nearby point).
 
     Returns
     -------
     dict
         ``r`` (B, n_fit) weighted residuals, ``chi2`` (B,), ``cons`` (B, c) constraint
         values that must be >= 0 (iron budget, late bound, CMF range; each scaled to be
-        of order one), ``cmf``, ``M_s``, ``k`` (B,).
+        of order one), ``cmf``, ``M_s``, ``k`` (B,), and ``fw``, the forward quantities
+        they were computed from (with the core state; :func:`_jacobian` linearises
+        around them).
     """
+    fw = _forward_rows(p, U, TH, s0)
+    return _misfit(p, U, fw, cmf_range, restore)
+
+
+def _misfit(p: Problem, U: np.ndarray, fw: dict[str, np.ndarray],
+            cmf_range: tuple[float, float] | None, restore: bool) -> dict[str, np.ndarray]:
+    """Residuals and constraint values of :func:`evaluate` from the forward quantities."""
     K = p.Q.shape[-2]
     has_late = p.late_name is not None
     fi = p.fit_index
     sK = U[:, :K].sum(axis=1)
     safe = np.where(sK > 0, sK, 1.0)
-    w = U[:, :K] / safe[:, None]
-    fwd = forward(p, w, TH, 0.0)
-    ratio = sK[:, None] * fwd["mantle"][:, fi]
+    ratio = fw["mantle"]
     if has_late:
         ratio = ratio + U[:, K:K + 1] * p.q_late[None, fi]
     with np.errstate(divide="ignore", invalid="ignore"):
         model = np.log10(ratio / p.q_ci[None, fi])
-    var = np.broadcast_to(p.sigma[None, :] ** 2, model.shape)
-    extra = _model_sigma(p, U, fi)
-    if extra is not None:
-        var = var + extra
-    r = (model - p.y[None, :]) / np.sqrt(var)
+        var = np.broadcast_to(p.sigma[None, :] ** 2, model.shape)
+        extra = _model_sigma(p, U, fi)
+        if extra is not None:
+            var = var + extra
+        r = (model - p.y[None, :]) / np.sqrt(var)
+        M_s = fw["M_s"] / safe
+        cmf = fw["M_c"] / (fw["M_s"] + fw["M_c"])
     chi2 = np.where(np.all(np.isfinite(r), axis=1), (r ** 2).sum(axis=1), np.inf)
     cons = []
     if p.mantle_Fe is not None:
-        a_fe = np.maximum(fwd["bulk"][:, p.fe_index], 1e-300)
-        cons.append(fwd["core"][:, p.fe_index] / a_fe)
+        cons.append(fw["core_fe"] / np.maximum(fw["bulk_fe"], 1e-300))
     if has_late:
         # scaled by the bound, but not below 1e-3: a tiny bound must not turn rounding
         # in the weights into a violation
-        cons.append((_v_max(p, fwd["M_s"]) - U[:, K]) / max(p.late_max_fraction, 1e-3))
+        cons.append((_v_max(p, M_s) - U[:, K]) / max(p.late_max_fraction, 1e-3))
     if cmf_range is not None:
-        cons.append(fwd["cmf"] - cmf_range[0])
-        cons.append(cmf_range[1] - fwd["cmf"])
+        cons.append(cmf - cmf_range[0])
+        cons.append(cmf_range[1] - cmf)
     for iso in p.isotopes:
         # |eps_planet(u) - eps_obs| <= n sigma_eff(u): nonlinear through the widening of
         # the window by the end-members' uncertainties, so linearised with the rest
@@ -189,8 +280,8 @@ def evaluate(p: Problem, U: np.ndarray, TH: np.ndarray, *,
                             1e3 * np.minimum(C, 0.0)], axis=1)
         chi2 = (r ** 2).sum(axis=1)
         C = np.zeros((U.shape[0], 0))
-    return {"r": r, "chi2": chi2, "cons": C, "cmf": fwd["cmf"], "M_s": fwd["M_s"],
-            "k": fwd["k"]}
+    return {"r": r, "chi2": chi2, "cons": C, "cmf": cmf, "M_s": M_s,
+            "k": fw["state"][:, 0], "fw": fw}
 
 
 def isotope_sigma(p: Problem, iso: dict, U: np.ndarray) -> np.ndarray:
@@ -239,28 +330,97 @@ def isotope_prediction(p: Problem, iso: dict, U: np.ndarray) -> np.ndarray:
 def _jacobian(p: Problem, U: np.ndarray, TH: np.ndarray, base: dict[str, np.ndarray],
               settings: JointSettings, cmf_range, upper: np.ndarray | None = None,
               restore: bool = False) -> tuple[np.ndarray, np.ndarray]:
-    """Forward-difference Jacobians of residuals and constraints in (u, theta); the
-    volatility steps go backwards where a forward step would pass ``upper``."""
+    """Jacobians of residuals and constraints in (u, theta), by forward differences
+    with the core fixed point linearised (no fixed-point solve per column).
+
+    Each column perturbs one parameter by its step (the volatility steps go backwards
+    where a forward step would pass ``upper``). The bulk of the perturbed point is
+    exact (linear in the weights; the volatility factor recomputed); the core state
+    follows from the implicit-function derivative at the base state ``s*``,
+    ``ds = (I - dG/ds)^-1 (G(a + da, s*) - G(a, s*))``, and the reservoirs from one step
+    of :func:`inversion.kernel.core_step` at ``(a + da, s*)`` plus ``d(res)/ds ds``:
+    first-order in the step, as the difference quotient itself, at one core step per
+    column instead of a solve (``dG/ds`` and ``d(res)/ds`` by a difference in ``s``,
+    one more step per state variable). The late weight moves no bulk: its column only
+    changes the mixing with the late component.
+    """
     B, m = U.shape
     pp = TH.shape[1]
+    K = p.Q.shape[-2]
     f = get_form(p.volatility_form)
     span = np.array(f.upper) - np.array(f.lower)
     steps = np.concatenate([np.full(m, settings.fd_step_weights),
                             settings.fd_step_volatility * span])
-    Z = np.concatenate([U, TH], axis=1)
     n = m + pp
     # step away from the upper bound of the volatility parameters
     sign = np.ones((B, n))
     top = np.array(f.upper) if upper is None else upper
     sign[:, m:] = np.where(TH + steps[m:] > top, -1.0, 1.0)
-    Zp = np.repeat(Z[:, None, :], n, axis=1)
+    hstep = sign * steps  # (B, n)
+    c = kernel.static_of(p)
+    fw0 = base["fw"]
+    s = fw0["state"]
+    d = s.shape[1]
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        logr0 = kernel.relative_log_retained(np, c, TH)
+        a0 = kernel.bulk(np, c, U[:, :K], logr0)
+        mix = kernel.bulk(np, c, U[:, :K], np.zeros_like(logr0))
+        # bulk of the perturbed points that move it: blocks, then volatility parameters
+        Q3 = p.Q if p.Q.ndim == 3 else p.Q[None]
+        a_blocks = a0[:, None, :] + hstep[:, :K, None] * Q3 * (10.0 ** logr0)[:, None, :]
+        THp = TH[:, None, :] + hstep[:, None, m:] * np.eye(pp)  # (B, pp, pp)
+        logr_t = kernel.relative_log_retained(np, c, THp.reshape(B * pp, pp))
+        a_vol = mix[:, None, :] * 10.0 ** logr_t.reshape(B, pp, -1)
+        A = np.concatenate([a_blocks, a_vol], axis=1)  # (B, nc, nn)
+        nc = A.shape[1]
+        nn = A.shape[2]
+        delta = 1e-7 * (1.0 + np.abs(s))  # (B, d)
+        s_probe = s[:, None, :] + delta[:, None, :] * np.eye(d)  # (B, d, d)
+        a_all = np.concatenate([a0[:, None, :], A, np.repeat(a0[:, None, :], d, axis=1)],
+                               axis=1)  # (B, 1 + nc + d, nn)
+        s_all = np.concatenate([s[:, None, :], np.repeat(s[:, None, :], nc, axis=1),
+                                s_probe], axis=1)
+        nq = 1 + nc + d
+        D = p.D if np.ndim(p.D) == 1 else np.repeat(p.D, nq, axis=0)
+        g, res = kernel.core_step(np, c, a_all.reshape(B * nq, nn), D,
+                                  s_all.reshape(B * nq, d))
+        g = g.reshape(B, nq, d)
+        fe = p.fe_index
+        fi = p.fit_index
+        quant = {"mantle": res["mantle"][:, fi], "core_fe": res["core"][:, fe:fe + 1],
+                 "M_s": res["M_s"], "M_c": res["M_c"]}
+        quant = {k: v.reshape(B, nq, -1) for k, v in quant.items()}
+        Js = np.swapaxes((g[:, 1 + nc:] - g[:, :1]) / delta[:, :, None], 1, 2)  # dG_i/ds_j
+        ds = np.linalg.solve(np.eye(d) - Js, np.swapaxes(g[:, 1:1 + nc] - g[:, :1], 1, 2))
+        ds = np.swapaxes(ds, 1, 2)  # (B, nc, d)
+        # perturbed forward quantities: base + change at s* + d(res)/ds ds
+        pert = {}
+        for key, q in quant.items():
+            dq_ds = (q[:, 1 + nc:] - q[:, :1]) / delta[:, :, None]  # (B, d, width)
+            dq = q[:, 1:1 + nc] - q[:, :1] + np.einsum("bcd,bdw->bcw", ds, dq_ds)
+            b0 = fw0[key] if fw0[key].ndim == 2 else fw0[key][:, None]
+            pert[key] = b0[:, None, :] + dq  # (B, nc, width)
+    # every column's forward quantities, the late weight's equal to the base
+    cols = list(range(K)) + list(range(m, n))
+    fw_cols = {}
+    for key in ("mantle", "core_fe", "M_s", "M_c"):
+        b0 = fw0[key] if fw0[key].ndim == 2 else fw0[key][:, None]
+        full = np.repeat(b0[:, None, :], n, axis=1)
+        full[:, cols] = pert[key]
+        fw_cols[key] = full.reshape(B * n, -1)
+    for key in ("core_fe", "M_s", "M_c"):
+        fw_cols[key] = fw_cols[key][:, 0]
+    bulk_fe = np.repeat(a0[:, None, fe], n, axis=1)
+    bulk_fe[:, cols] = A[:, :, fe]
+    fw_cols["bulk_fe"] = bulk_fe.reshape(B * n)
+    fw_cols["state"] = np.repeat(s, n, axis=0)
+    Zp = np.repeat(np.concatenate([U, TH], axis=1)[:, None, :], n, axis=1)
     idx = np.arange(n)
-    Zp[:, idx, idx] += sign * steps
+    Zp[:, idx, idx] += hstep
     Zp = Zp.reshape(B * n, n)
-    rows = np.repeat(np.arange(B), n)
-    pr = row_problem(p, rows)
-    ev = evaluate(pr, Zp[:, :m], Zp[:, m:], cmf_range=cmf_range, restore=restore)
-    denom = (sign * steps)[:, :, None]
+    pr = row_problem(p, np.repeat(np.arange(B), n))
+    ev = _misfit(pr, Zp[:, :m], fw_cols, cmf_range, restore)
+    denom = hstep[:, :, None]
     Jr = (ev["r"].reshape(B, n, -1) - base["r"][:, None, :]) / denom
     Jc = (ev["cons"].reshape(B, n, -1) - base["cons"][:, None, :]) / denom
     return np.swapaxes(Jr, 1, 2), np.swapaxes(Jc, 1, 2)  # (B, nf, n), (B, c, n)
@@ -425,6 +585,7 @@ def polish(p: Problem, U0: np.ndarray, TH0: np.ndarray, *,
     quiet = np.zeros(B, dtype=int)
     cons = base["cons"].copy()
     r = base["r"].copy()
+    fw = {key: v.copy() for key, v in base["fw"].items()}
     act_sets = None
     stale = np.ones(B, dtype=bool)
     J_r = J_c = None
@@ -440,8 +601,9 @@ def polish(p: Problem, U0: np.ndarray, TH0: np.ndarray, *,
         need = idx[stale[idx]]
         if need.size:
             Jr_n, Jc_n = _jacobian(row_problem(p, need), U[need], TH[need],
-                                   {"r": r[need], "cons": cons[need]}, settings, cmf_range,
-                                   bounds[1][need], restore)
+                                   {"r": r[need], "cons": cons[need],
+                                    "fw": {key: v[need] for key, v in fw.items()}},
+                                   settings, cmf_range, bounds[1][need], restore)
             if J_r is None:
                 J_r = np.zeros((B,) + Jr_n.shape[1:])
                 J_c = np.zeros((B,) + Jc_n.shape[1:])
@@ -454,7 +616,9 @@ def polish(p: Problem, U0: np.ndarray, TH0: np.ndarray, *,
         if act_sets is None:
             act_sets = np.zeros((B, act.shape[1]), dtype=bool)
         act_sets[idx] = act
-        trial = evaluate(pr, Un, Tn, cmf_range=cmf_range, restore=restore)
+        # the core fixed point starts from the state of the row's current point
+        trial = evaluate(pr, Un, Tn, cmf_range=cmf_range, restore=restore,
+                         s0=fw["state"][idx])
         good = (ok & np.isfinite(trial["chi2"]) & (trial["chi2"] <= chi2[idx])
                 & np.all(trial["cons"] >= -tol_c, axis=1))
         gain = np.where(good, chi2[idx] - trial["chi2"], 0.0)
@@ -462,6 +626,8 @@ def polish(p: Problem, U0: np.ndarray, TH0: np.ndarray, *,
         stale[acc] = True
         U[acc], TH[acc] = Un[good], Tn[good]
         r[acc], cons[acc] = trial["r"][good], trial["cons"][good]
+        for key, v in fw.items():
+            v[acc] = trial["fw"][key][good]
         small = good & (gain <= settings.tolerance * (1.0 + chi2[idx]))
         chi2[acc] = trial["chi2"][good]
         lam[idx] = np.where(good, np.maximum(lam[idx] / 3.0, 1e-12), lam[idx] * 4.0)
