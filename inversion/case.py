@@ -70,15 +70,17 @@ class CoreSettings:
     """Core formation: the iron split (mantle FeO or dIW) and effective D overrides."""
 
     mantle_FeO_wt: float | None
-    dIW: float | None
+    #: a value, or (low, high) to infer (single-stage only)
+    dIW: float | tuple[float, float] | None
     D: dict[str, float]
     #: ``effective`` (constant D) or ``single-stage`` (D of the regressions at P, T, dIW;
     #: :mod:`inversion.conditions`)
     partitioning: str = "effective"
     #: single-stage: one pressure [GPa] or (low, high) to infer by the convex fit
     pressure_GPa: float | tuple[float, float] | None = None
-    #: single-stage: a temperature [K] or ``"liquidus"`` (tied to the pressure)
-    temperature_K: float | str | None = None
+    #: single-stage: a temperature [K], (low, high) to infer, or ``"liquidus"`` (tied to
+    #: the pressure)
+    temperature_K: float | str | tuple[float, float] | None = None
 
 
 @dataclass(frozen=True)
@@ -149,7 +151,8 @@ TEMPERATURE_LIMITS_K = (1200.0, 6000.0)
 
 
 def _core_conditions(core_raw: dict, D: dict[str, float], file: str
-                     ) -> tuple[str, float | tuple[float, float] | None, float | str | None]:
+                     ) -> tuple[str, float | tuple[float, float] | None,
+                                float | str | tuple[float, float] | None]:
     """``[core] partitioning``, ``pressure_GPa`` and ``temperature_K``, checked."""
     model = check_option("partitioning model", core_raw.get("partitioning", "effective"),
                          PARTITIONING_MODELS, file=file, field="core.partitioning")
@@ -185,8 +188,16 @@ def _core_conditions(core_raw: dict, D: dict[str, float], file: str
         if not lo_P <= P <= hi_P:
             raise InputError(f"pressure_GPa must lie in [{lo_P:g}, {hi_P:g}]", file=file,
                              field="core.pressure_GPa", value=P_raw)
-    T: float | str = "liquidus" if T_raw is None else T_raw
-    if isinstance(T, str):
+    T: float | str | tuple[float, float] = "liquidus" if T_raw is None else T_raw
+    if isinstance(T, list):
+        # [low, high]: inferred (inversion.conditions)
+        T = tuple(_num(v, file=file, field="core.temperature_K") for v in T)
+        if not (len(T) == 2 and TEMPERATURE_LIMITS_K[0] <= T[0] < T[1]
+                <= TEMPERATURE_LIMITS_K[1]):
+            raise InputError(f"temperature_K = [low, high] needs {TEMPERATURE_LIMITS_K[0]:g} "
+                             f"<= low < high <= {TEMPERATURE_LIMITS_K[1]:g}", file=file,
+                             field="core.temperature_K", value=T_raw)
+    elif isinstance(T, str):
         if T != "liquidus":
             raise InputError("temperature_K is a value [K] or \"liquidus\"", file=file,
                              field="core.temperature_K", value=T)
@@ -344,6 +355,12 @@ def load_case(path: str | Path, *, staged: bool = False) -> Case:
                                                     and not math.isfinite(v)):
             raise InputError("a sampler setting is a number, a name or true/false", file=file,
                              field=f"sampler.{k}", value=v)
+    if raw.get("sampler"):
+        # checked here too, not only by `planetmix sample`: no command accepts a case
+        # with a setting the sampler would refuse (the check imports no sampler)
+        from .bayes.settings import check_sampler_settings
+
+        check_sampler_settings(raw["sampler"], file=file)
 
     tgt = raw.get("target")
     if not tgt or "table" not in tgt:
@@ -438,7 +455,17 @@ def load_case(path: str | Path, *, staged: bool = False) -> Case:
     if feo is not None:
         feo = _num(feo, file=file, field="core.mantle_FeO_wt", positive=True)
         check_in_range(feo, "mantle_FeO_wt", file=file, field="core.mantle_FeO_wt")
-    if diw is not None:
+    if isinstance(diw, list):
+        # [low, high]: inferred with the single-stage regressions (checked below)
+        if len(diw) != 2:
+            raise InputError("give dIW as one value or [low, high]", file=file,
+                             field="core.dIW", value=diw)
+        diw = tuple(check_in_range(_num(v, file=file, field="core.dIW"), "dIW", file=file,
+                                   field="core.dIW") for v in diw)
+        if not diw[0] < diw[1]:
+            raise InputError("dIW = [low, high] needs low < high", file=file,
+                             field="core.dIW", value=list(diw))
+    elif diw is not None:
         diw = _num(diw, file=file, field="core.dIW")
         check_in_range(diw, "dIW", file=file, field="core.dIW")
     D = {}
@@ -467,6 +494,9 @@ def load_case(path: str | Path, *, staged: bool = False) -> Case:
         raise InputError("the iron split is unknown: give [core] mantle_FeO_wt or dIW, or Fe "
                          "in the target table", file=file, field="core")
     core = CoreSettings(feo, diw, D, *_core_conditions(core_raw, D, file))
+    if isinstance(diw, tuple) and core.partitioning != "single-stage":
+        raise InputError("dIW = [low, high] is inferred with partitioning = \"single-stage\" "
+                         "only; give one value", file=file, field="core.dIW", value=list(diw))
 
     la = raw.get("late_accretion", {})
     la_name = la.get("component", "CI")

@@ -43,6 +43,8 @@ from . import partitioning as pt
 from .exceptions import InputError
 
 __all__ = ["at_conditions", "at_case_conditions", "fit_at_conditions", "infer_pressure",
+           "infer_conditions", "free_conditions", "start_case", "start_problem",
+           "CONDITIONS",
            "conditions_block", "conditions_lines", "reference_metal", "silicate_molar_mass",
            "PROFILE_GRID_POINTS", "DELTA_CHI2_68", "DELTA_CHI2_95"]
 
@@ -57,6 +59,8 @@ STATE_ITERATIONS = 8
 #: Resolution [GPa] of the minimum and of the interval ends.
 PRESSURE_TOL_GPA = 0.25
 LIQUIDUS = "peridotite liquidus, Fiquet et al. (2010)"
+#: The conditions that ``[core]`` may give as ``[low, high]`` (inferred), in this order.
+CONDITIONS = ("pressure_GPa", "temperature_K", "dIW")
 
 
 def silicate_molar_mass(p: Any) -> float:
@@ -127,15 +131,53 @@ def at_conditions(p: Any, base_D: np.ndarray, chem: pt.CoreChemistry, P: float, 
     return replace(p, D=D, D_sources=sources, core_conditions=cond)
 
 
+def free_conditions(case: Any) -> dict[str, tuple[float, float]]:
+    """The conditions given as ``[low, high]`` in ``[core]`` (inferred), in the order
+    :data:`CONDITIONS`."""
+    cc = case.core
+    vals = {"pressure_GPa": cc.pressure_GPa, "temperature_K": cc.temperature_K,
+            "dIW": cc.dIW}
+    return {k: (float(vals[k][0]), float(vals[k][1])) for k in CONDITIONS
+            if isinstance(vals[k], tuple)}
+
+
+def start_case(case: Any) -> Any:
+    """The case with every ``[low, high]`` condition at its mid-range (the start of the
+    inference; the ranges stay in ``free_conditions(case)``)."""
+    mid = {k: 0.5 * (lo + hi) for k, (lo, hi) in free_conditions(case).items()}
+    return replace(case, core=replace(case.core, **mid)) if mid else case
+
+
+def start_problem(case: Any) -> Any:
+    """The compiled problem of a single-stage case at the mid-range of its inferred
+    conditions, with the ranges in ``core_conditions["ranges"]`` (what ``planetmix fit``
+    and ``planetmix sample`` start from)."""
+    from .model import compile_problem
+
+    p = compile_problem(start_case(case))
+    ranges = free_conditions(case)
+    if ranges and p.core_conditions is not None:
+        p = replace(p, core_conditions={**p.core_conditions,
+                                        "ranges": {k: list(v) for k, v in ranges.items()}})
+    return p
+
+
 def _setup(p: Any, case: Any) -> dict[str, Any]:
     chem = pt.compile_chemistry(p.elements, oxygen=False)
     x_fe, mbar_met = reference_metal(p)
     cc = case.core
+    free = free_conditions(case)
     return {"chem": chem, "base_D": np.asarray(p.D, float).copy(), "T": cc.temperature_K,
             "Mbar_sil": silicate_molar_mass(p), "x_FeO": _x_FeO_target(p),
-            "dIW_fixed": cc.dIW, "x_Fe": x_fe, "Mbar_met": mbar_met,
-            "dIW_from": ("[core] dIW of the case" if cc.dIW is not None else
-                         "mantle FeO of the target and the Fe of the fitted core")}
+            "dIW_fixed": cc.dIW, "x_Fe": x_fe, "Mbar_met": mbar_met, "free": free,
+            "dIW_from": ("inferred over [core] dIW = [low, high] (the model's iron split "
+                         "follows it)" if "dIW" in free else
+                         "[core] dIW of the case" if cc.dIW is not None else
+                         "mantle FeO of the target and the Fe of the fitted core"),
+            "temperature_from": ("inferred over [core] temperature_K = [low, high]"
+                                 if "temperature_K" in free else
+                                 LIQUIDUS if cc.temperature_K == "liquidus"
+                                 else "[core] temperature_K of the case")}
 
 
 def _dIW(s: dict[str, Any], x_fe: float) -> float:
@@ -145,12 +187,16 @@ def _dIW(s: dict[str, Any], x_fe: float) -> float:
 
 
 def _at(p: Any, s: dict[str, Any], P: float, x_fe: float, mbar_met: float,
-        extra: dict[str, Any] | None = None) -> Any:
-    T = temperature_at(s["T"], P)
-    return at_conditions(p, s["base_D"], s["chem"], P, T, _dIW(s, x_fe), s["Mbar_sil"],
-                         mbar_met, {"temperature_from": LIQUIDUS if s["T"] == "liquidus"
-                                    else "[core] temperature_K of the case",
-                                    "dIW_from": s["dIW_from"], **(extra or {})})
+        extra: dict[str, Any] | None = None, *, T: float | None = None,
+        dIW: float | None = None) -> Any:
+    """The problem at pressure P; ``T`` and ``dIW`` override the case's (inferred
+    conditions); a given ``dIW`` also sets the model's iron split."""
+    T = temperature_at(s["T"], P) if T is None else float(T)
+    d = _dIW(s, x_fe) if dIW is None else float(dIW)
+    pc = at_conditions(p, s["base_D"], s["chem"], P, T, d, s["Mbar_sil"], mbar_met,
+                       {"temperature_from": s["temperature_from"],
+                        "dIW_from": s["dIW_from"], **(extra or {})})
+    return replace(pc, dIW=d, mantle_Fe=None) if dIW is not None else pc
 
 
 def at_case_conditions(p: Any, case: Any, pressure_GPa: float | None = None) -> Any:
@@ -162,6 +208,12 @@ def at_case_conditions(p: Any, case: Any, pressure_GPa: float | None = None) -> 
                          "'planetmix sample' only; give one value for this command",
                          file=case.path,
                          field="core.pressure_GPa", value=list(P))
+    for key in ("temperature_K", "dIW"):
+        v = getattr(case.core, key)
+        if isinstance(v, tuple):
+            raise InputError(f"{key} = [low, high] is inferred by 'planetmix fit' and "
+                             "'planetmix sample' only; give one value for this command",
+                             file=case.path, field=f"core.{key}", value=list(v))
     s = _setup(p, case)
     return _at(p, s, float(P), s["x_Fe"], s["Mbar_met"],
                {"iterated_with_fit": False})
@@ -286,6 +338,194 @@ def infer_pressure(p: Any, case: Any, settings: Any) -> tuple[Any, Any]:
     return r_full, replace(pc, core_conditions=cond)
 
 
+#: Joint inference of the conditions: at most this many fits alternating with the
+#: minimisation over the conditions at a fixed mixture; stop when the conditions move by
+#: less than this fraction of their ranges.
+JOINT_ITERATIONS = 8
+JOINT_TOL = 2e-3
+#: Elements reported as pulling each condition up or down.
+PULL_ELEMENTS = 3
+
+
+def _cond_values(s: dict[str, Any], names: list[str], theta: np.ndarray,
+                 fixed_P: float | None) -> tuple[float, float | None, float | None]:
+    v = dict(zip(names, map(float, theta), strict=True))
+    P = v.get("pressure_GPa", fixed_P)
+    return float(P), v.get("temperature_K"), v.get("dIW")
+
+
+def _evaluate(pc: Any, res: Any, settings: Any) -> dict[str, np.ndarray]:
+    from .solver import evaluate
+
+    u = np.asarray(res.u, float)[None]
+    th = np.array(list(res.volatility.values()), float)[None]
+    return evaluate(pc, u, th, cmf_range=settings.cmf_range)
+
+
+def _chi2_of(ev: dict[str, np.ndarray]) -> float:
+    c = float(ev["chi2"][0])
+    if ev["cons"].size and np.any(ev["cons"][0] < -1e-9):
+        return math.inf
+    return c if np.isfinite(c) else math.inf
+
+
+def infer_conditions(p: Any, case: Any, settings: Any) -> tuple[Any, Any]:
+    """The fit with the conditions given as ``[low, high]`` inferred jointly with it.
+
+    Only the pressure free: :func:`infer_pressure` (the exact profile). With the
+    temperature and/or dIW free as well, the fit alternates with a minimisation of chi2
+    over the conditions at the fitted mixture (bounded L-BFGS-B in range-scaled
+    coordinates, after a 3-point-per-axis grid on the first pass) until the conditions
+    settle; each step lowers chi2, so it ends at a joint minimum. The intervals are those
+    of the Laplace approximation of the joint Gauss-Newton curvature (mixture, volatility,
+    late weight and conditions together, the mixture on the free directions of its
+    active constraints), so they account for the mixture; 68% and 95% = value +- 1 and
+    1.96 sd, clipped to the range. ``core_conditions["conditions_inferred"]`` records
+    them, the correlations of the conditions, the conditional sd (the others held), the
+    elements that pull each condition up and down, and what Ni and Co alone constrain.
+
+    A given dIW sets the model's iron split too, so the mantle's FeO (when the target
+    has Fe) is a datum that bears on dIW.
+    """
+    from scipy.optimize import minimize
+
+    from .fit import fit_problem, forward_of, refit
+
+    free = free_conditions(case)
+    if list(free) == ["pressure_GPa"]:
+        return infer_pressure(p, case, settings)
+    s = _setup(p, case)
+    names = list(free)
+    lo = np.array([free[k][0] for k in names])
+    hi = np.array([free[k][1] for k in names])
+    span = hi - lo
+    fixed_P = None if "pressure_GPa" in free else float(case.core.pressure_GPa)
+    quick = replace(settings, intervals=False)
+    state = (s["x_Fe"], s["Mbar_met"])
+
+    def problem(theta: np.ndarray, st: tuple[float, float], extra: dict | None = None) -> Any:
+        P, T, d = _cond_values(s, names, theta, fixed_P)
+        return _at(p, s, P, st[0], st[1], extra, T=T, dIW=d)
+
+    def conditional(theta0: np.ndarray, res: Any, st: tuple[float, float], grid: bool
+                    ) -> np.ndarray:
+        def f(z: np.ndarray) -> float:
+            c = _chi2_of(_evaluate(problem(lo + z * span, st), res, quick))
+            return c if np.isfinite(c) else 1e30
+
+        z0 = (theta0 - lo) / span
+        if grid:
+            axes = np.meshgrid(*[np.array([1 / 6, 0.5, 5 / 6])] * len(names),
+                               indexing="ij")
+            pts = np.stack([a.ravel() for a in axes], axis=1)
+            vals = [f(z) for z in pts]
+            if min(vals) < f(z0):
+                z0 = pts[int(np.argmin(vals))]
+        opt = minimize(f, z0, method="L-BFGS-B", bounds=[(0.0, 1.0)] * len(names),
+                       options={"eps": 1e-6, "ftol": 1e-12, "gtol": 1e-8, "maxiter": 200})
+        z = opt.x if opt.fun <= f(z0) else z0
+        return lo + np.clip(z, 0.0, 1.0) * span
+
+    theta = 0.5 * (lo + hi)
+    res = fit_problem(problem(theta, state), quick)
+    history = [{"conditions": dict(zip(names, map(float, theta), strict=True)),
+                "chi2": float(res.chi2)}]
+    fits = 1
+    for it in range(JOINT_ITERATIONS):
+        if not res.feasible:
+            break
+        core = forward_of(problem(theta, state), res)["core"][0]
+        state = _metal(p, core)
+        new = conditional(theta, res, state, grid=it == 0)
+        moved = float(np.max(np.abs(new - theta) / span))
+        theta = new
+        res_new = refit(problem(theta, state), res, quick)
+        fits += 1
+        history.append({"conditions": dict(zip(names, map(float, theta), strict=True)),
+                        "chi2": float(res_new.chi2)})
+        settled = res_new.feasible and abs(res.chi2 - res_new.chi2) < 1e-4 * (1 + res.chi2)
+        res = res_new if res_new.feasible else res
+        if moved < JOINT_TOL and settled:
+            break
+    # the reported fit, with the fit's own intervals, at the joint optimum
+    pc = problem(theta, state, {"iterated_with_fit": True})
+    r_full = refit(pc, res, settings)
+    if not r_full.feasible or r_full.chi2 > res.chi2 * (1 + 1e-9) + 1e-9:
+        r_full = res if not settings.intervals else fit_problem(pc, settings)
+    fits += 1
+    info = _joint_curvature(pc, r_full, settings, names, theta, lo, hi, problem, state)
+    info.update({"method": "alternating fit and bounded minimisation over the conditions "
+                           "(scipy L-BFGS-B), Laplace intervals of the joint Gauss-Newton "
+                           "curvature", "ranges": {k: list(v) for k, v in free.items()},
+                 "fits": fits, "history": history})
+    cond = {**pc.core_conditions, "conditions_inferred": info}
+    return r_full, replace(pc, core_conditions=cond)
+
+
+def _joint_curvature(pc: Any, res: Any, settings: Any, names: list[str],
+                     theta: np.ndarray, lo: np.ndarray, hi: np.ndarray, problem: Any,
+                     state: tuple[float, float]) -> dict[str, Any]:
+    """Laplace intervals, correlations, pulls and the Ni-Co-only rank at the optimum."""
+    from .solver import curvature
+
+    u = np.asarray(res.u, float)
+    th = np.array(list(res.volatility.values()), float)
+    _, J, N, active = curvature(pc, u, th, settings=settings.joint,
+                                cmf_range=settings.cmf_range)
+    ev0 = _evaluate(pc, res, settings)
+    r0 = ev0["r"][0]
+    span = hi - lo
+    Jc = np.empty((r0.size, len(names)))
+    for j in range(len(names)):
+        h = 1e-4 * span[j]
+        tp, tm = theta.copy(), theta.copy()
+        tp[j] = min(theta[j] + h, hi[j])
+        tm[j] = max(theta[j] - h, lo[j])
+        rp = _evaluate(problem(tp, state), res, settings)["r"][0]
+        rm = _evaluate(problem(tm, state), res, settings)["r"][0]
+        Jc[:, j] = (rp - rm) / (tp[j] - tm[j])
+    at_bound = [bool(theta[j] <= lo[j] + 1e-6 * span[j] or theta[j] >= hi[j] - 1e-6 * span[j])
+                for j in range(len(names))]
+    A = np.concatenate([J @ N, Jc], axis=1)
+    C = np.linalg.pinv(A.T @ A)
+    cov = C[-len(names):, -len(names):]
+    sd = np.sqrt(np.maximum(np.diag(cov), 0.0))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        corr = cov / np.outer(sd, sd)
+        sd_cond = 1.0 / np.sqrt(np.diag(Jc.T @ Jc))
+    fit_els = [pc.elements[j] for j in pc.fit_index]
+    out: dict[str, Any] = {"names": names, "correlation": np.round(corr, 4).tolist(),
+                           "active_constraints": active, "at_range_edge": at_bound}
+    for j, k in enumerate(names):
+        v = float(theta[j])
+        iv = {}
+        for name, z in (("interval_68", 1.0), ("interval_95", 1.959964)):
+            a, b = v - z * sd[j], v + z * sd[j]
+            iv[name] = [float(max(a, lo[j])), float(min(b, hi[j]))]
+            iv[name + "_open"] = [bool(a <= lo[j]), bool(b >= hi[j])]
+        # pull: -d chi2_i / d theta / 2 = -r_i dr_i/dtheta; positive pulls upward
+        pull = -r0 * Jc[:, j]
+        order = np.argsort(pull)
+        up = {fit_els[i]: float(pull[i]) for i in order[::-1][:PULL_ELEMENTS] if pull[i] > 0}
+        down = {fit_els[i]: float(pull[i]) for i in order[:PULL_ELEMENTS] if pull[i] < 0}
+        width = iv["interval_95"][1] - iv["interval_95"][0]
+        out[k] = {"value": v, "sd": float(sd[j]), "sd_others_held": float(sd_cond[j]),
+                  **iv, "interval_95_fraction_of_range": float(width / span[j]),
+                  "pulls_up": up, "pulls_down": down}
+    # what Ni and Co alone constrain: rank and least-constrained direction of their rows
+    rows = [i for i, e in enumerate(fit_els) if e in ("Ni", "Co")]
+    if rows:
+        _, sv, vt = np.linalg.svd(Jc[rows] * span[None, :])
+        rank = int(np.sum(sv > 1e-8 * max(sv.max(), 1e-300)))
+        null = vt[-1] if rank < len(names) else vt[np.argmin(sv)]
+        out["ni_co_only"] = {
+            "rank": rank, "parameters": len(names),
+            "singular_values_range_scaled": [float(x) for x in sv],
+            "least_constrained_direction_per_range": dict(
+                zip(names, map(float, null / np.max(np.abs(null))), strict=True))}
+    return out
+
+
 def conditions_block(p: Any) -> dict[str, Any] | None:
     """The ``core_conditions`` block of fit.json (None with the effective D)."""
     if p.core_conditions is None:
@@ -303,6 +543,29 @@ def conditions_lines(p: Any) -> list[str]:
            f"T = {c['temperature_K']:.0f} K ({c['temperature_from']}), dIW = "
            f"{c['dIW']:.2f} ({c['dIW_from']}); regression D for {', '.join(regs)}, "
            "effective D for the other siderophiles"]
+    j = c.get("conditions_inferred")
+    if j:
+        unit = {"pressure_GPa": ("P", " GPa", ".1f"), "temperature_K": ("T", " K", ".0f"),
+                "dIW": ("dIW", "", ".2f")}
+        parts = []
+        for k in j["names"]:
+            lab, u, f = unit[k]
+            q = j[k]
+            lo_, hi_ = q["interval_95"]
+            op = q["interval_95_open"]
+            parts.append(f"{lab} {q['value']:{f}} [{'<=' if op[0] else ''}{lo_:{f}}, "
+                         f"{'>=' if op[1] else ''}{hi_:{f}}]{u}")
+        out.append(f"  conditions inferred jointly ({j['fits']} fits; 95% Laplace "
+                   "intervals): " + "; ".join(parts))
+        n = j["names"]
+        pairs = [f"{unit[n[a]][0]}-{unit[n[b]][0]} {j['correlation'][a][b]:+.2f}"
+                 for a in range(len(n)) for b in range(a + 1, len(n))]
+        if pairs:
+            out.append("  correlations: " + ", ".join(pairs))
+        nc = j.get("ni_co_only")
+        if nc and nc["rank"] < nc["parameters"]:
+            out.append(f"  Ni and Co alone constrain {nc['rank']} of the "
+                       f"{nc['parameters']} conditions (degenerate)")
     q = c.get("pressure_inferred")
     if q:
         def fmt(v: list[float], op: list[bool]) -> str:

@@ -52,6 +52,15 @@ def _case(folder: Path, core: str, target: str = "target.csv") -> Path:
      'dIW = -2.0', "core.temperature_K"),
     ('partitioning = "single-stage"\npressure_GPa = 40.0\ndIW = -2.0\nD = {Ni = 25.0}',
      "core.D.Ni"),
+    ('dIW = [-3.0, -1.0]', "core.dIW"),
+    ('partitioning = "single-stage"\npressure_GPa = 40.0\ndIW = [-1.0, -3.0]', "core.dIW"),
+    ('partitioning = "single-stage"\npressure_GPa = 40.0\ndIW = [-3.0, -2.0, -1.0]',
+     "core.dIW"),
+    ('partitioning = "single-stage"\npressure_GPa = 40.0\ndIW = [-30.0, -1.0]', "core.dIW"),
+    ('partitioning = "single-stage"\npressure_GPa = 40.0\ntemperature_K = [4000.0, 3000.0]\n'
+     'dIW = -2.0', "core.temperature_K"),
+    ('partitioning = "single-stage"\npressure_GPa = 40.0\ntemperature_K = [100.0, 3000.0]\n'
+     'dIW = -2.0', "core.temperature_K"),
 ])
 def test_refusals(tmp_path, core, field) -> None:
     path = _case(tmp_path, "[core]\n" + core)
@@ -66,6 +75,17 @@ def test_range_refused_outside_the_fit(tmp_path) -> None:
                            'pressure_GPa = [10.0, 80.0]\ndIW = -2.0')
     with pytest.raises(InputError, match="planetmix fit"):
         compile_problem(load_case(path))
+
+
+@pytest.mark.parametrize("key, value", [("temperature_K", "[2500.0, 4000.0]"),
+                                        ("dIW", "[-3.0, -1.0]")])
+def test_temperature_and_dIW_ranges_refused_outside_the_fit(tmp_path, key, value) -> None:
+    other = "dIW = -2.0" if key == "temperature_K" else ""
+    path = _case(tmp_path, f'[core]\npartitioning = "single-stage"\npressure_GPa = 40.0\n'
+                           f'{key} = {value}\n{other}')
+    with pytest.raises(InputError) as err:
+        compile_problem(load_case(path))
+    assert err.value.field == f"core.{key}" and "planetmix fit" in str(err.value)
 
 
 def test_two_stages_refused(tmp_path) -> None:
@@ -115,19 +135,23 @@ def test_fixed_conditions_replace_the_regression_elements(tmp_path) -> None:
             assert src[e] == "effective" and p.D[j] == eff.D[j]
 
 
-def _simulate(folder: Path, noise: float, seed: int) -> tuple[Path, float]:
-    """A body made at TRUE_P on the liquidus, dIW = TRUE_DIW, by model.forward with the
-    D of the regressions, Mbar_sil and Mbar_met iterated to the body's own mantle and
-    core; noise: ``noise`` (relative 1-sigma) on every concentration, stated as such."""
-    seed_case = _case(folder, '[core]\ndIW = -2.0\npartitioning = "single-stage"\n'
-                              f'pressure_GPa = {TRUE_P}', target="seed.csv")
+def _simulate(folder: Path, noise: float, seed: int, *, P: float = TRUE_P,
+              T: float | None = None, dIW: float = TRUE_DIW,
+              infer: str = 'dIW = -2.0\npressure_GPa = [10.0, 80.0]\n'
+                           'temperature_K = "liquidus"') -> tuple[Path, float]:
+    """A body made at (P, T, dIW) (T on the liquidus by default) by model.forward with
+    the D of the regressions (the iron split at dIW too), Mbar_sil and Mbar_met iterated
+    to the body's own mantle and core; noise: ``noise`` (relative 1-sigma) on every
+    concentration, stated as such. The case returned has the ``[core]`` keys ``infer``."""
+    seed_case = _case(folder, f'[core]\ndIW = {dIW}\npartitioning = "single-stage"\n'
+                              f'pressure_GPa = {P}', target="seed.csv")
     p = compile_problem(load_case(seed_case))
     chem = pt.compile_chemistry(p.elements, oxygen=False)
-    T = float(pt.peridotite_liquidus(np.array(TRUE_P)))
+    T = float(pt.peridotite_liquidus(np.array(P))) if T is None else T
     w = np.array([[TRUTH["w"].get(c, 0.0) for c in p.components]])
     mbar_sil, mbar_met = 50.0, 52.0
     for _ in range(20):
-        pc = at_conditions(p, p.D, chem, TRUE_P, T, TRUE_DIW, mbar_sil, mbar_met)
+        pc = at_conditions(p, p.D, chem, P, T, dIW, mbar_sil, mbar_met)
         fwd = forward(pc, w, np.array([[TRUTH["T0"], TRUTH["slope"]]]), TRUTH["lam"])
         core = np.maximum(fwd["core"][0], 0)
         planet = assemble(pc, fwd)
@@ -138,9 +162,8 @@ def _simulate(folder: Path, noise: float, seed: int) -> tuple[Path, float]:
     rng = np.random.default_rng(seed)
     noisy = conc * np.exp(rng.normal(0.0, noise, size=conc.size))
     write_target(folder / "target.csv", noisy, noise)
-    return write_case(folder, candidates=CANDS, extra='[core]\ndIW = -2.0\n'
-                      'partitioning = "single-stage"\npressure_GPa = [10.0, 80.0]\n'
-                      'temperature_K = "liquidus"'), float(fwd["cmf"][0])
+    return write_case(folder, candidates=CANDS, extra='[core]\npartitioning = '
+                      '"single-stage"\n' + infer), float(fwd["cmf"][0])
 
 
 def test_simulate_then_recover_pressure(tmp_path) -> None:
@@ -164,6 +187,47 @@ def test_simulate_then_recover_pressure(tmp_path) -> None:
     assert res.chi2 <= min(e["chi2"] for e in q["evaluated"]) * (1 + 1e-6)
     # the interval is not the whole range (the pressure is constrained)
     assert hi95 - lo95 < 60.0
+
+
+TRUE_T = 3300.0  # K, 270 K above the liquidus at 40 GPa (Fiquet et al. 2010: 3029 K)
+
+
+def test_simulate_then_recover_pressure_temperature_dIW(tmp_path) -> None:
+    """A body made at 40 GPa, 3300 K, dIW -2.0 (5% noise, seed 7), fitted with all three
+    conditions free over [10, 80] GPa, [2000, 4500] K, [-3, -1]: each true value lies in
+    its 95% interval (joint Laplace), the best values within the stated tolerances (8 GPa,
+    500 K, 0.25 log units), and the mixture's CMF within 0.03. The data constrain dIW much
+    better than T: its interval spans a smaller part of its range. Ni and Co alone
+    constrain only two of the three conditions (rank 2), and T and dIW correlate
+    strongly (measured sign: positive). Measured: P 37.4 [29.0, 45.9] GPa, T 3512 [2829, 4195] K, dIW -1.94
+    [-2.16, -1.71], correlations P-T -0.61, P-dIW -0.79, T-dIW +0.92; 8 fits."""
+    from inversion.conditions import infer_conditions, start_problem
+
+    path, cmf = _simulate(tmp_path, 0.05, seed=7, T=TRUE_T,
+                          infer="pressure_GPa = [10.0, 80.0]\n"
+                                "temperature_K = [2000.0, 4500.0]\ndIW = [-3.0, -1.0]")
+    case = load_case(path)
+    res, pc = infer_conditions(start_problem(case), case, FitSettings(intervals=False))
+    j = pc.core_conditions["conditions_inferred"]
+    assert j["names"] == ["pressure_GPa", "temperature_K", "dIW"]
+    truth = {"pressure_GPa": (TRUE_P, 8.0), "temperature_K": (TRUE_T, 500.0),
+             "dIW": (TRUE_DIW, 0.25)}
+    for k, (true, tol) in truth.items():
+        q = j[k]
+        lo, hi = q["interval_95"]
+        assert lo <= true <= hi, (k, q)
+        assert abs(q["value"] - true) < tol, (k, q)
+        assert q["sd"] >= q["sd_others_held"] * (1 - 1e-9)  # marginal >= conditional
+        assert pc.core_conditions[k] == pytest.approx(q["value"])
+    assert pc.dIW == pytest.approx(j["dIW"]["value"]) and pc.mantle_Fe is None
+    assert (j["dIW"]["interval_95_fraction_of_range"]
+            < j["temperature_K"]["interval_95_fraction_of_range"])
+    assert j["ni_co_only"]["rank"] == 2
+    corr = np.array(j["correlation"])
+    assert corr[1, 2] > 0.5
+    assert res.feasible and abs(res.core_mass_fraction - cmf) < 0.03
+    # the joint search ends below its start at mid-range
+    assert res.chi2 < j["history"][0]["chi2"]
 
 
 def test_fixed_point_of_the_metal(tmp_path) -> None:
