@@ -38,8 +38,9 @@ import numpy as np
 from .volatility import log10_retained
 
 __all__ = ["Static", "static_of", "bulk", "core_step", "solve_core", "assemble",
-           "forward", "physical_state", "isotope_balance", "isotope_variance",
-           "end_member_variance", "CORE_ITERATIONS", "CORE_RTOL", "K_START"]
+           "forward", "physical_state", "solve_feo_element_major", "isotope_balance",
+           "isotope_variance", "end_member_variance", "CORE_ITERATIONS", "CORE_RTOL",
+           "K_START"]
 
 #: Maximum fixed-point iterations of the core split; chondritic bulks need about ten
 #: with the mantle FeO fixed and about twenty-five with the redox split.
@@ -173,6 +174,8 @@ def solve_core(xp: Any, c: Static, a: Any, D: Any, s0: Any | None = None
     :data:`CORE_ITERATIONS`). JAX: the same iteration in ``lax.while_loop``, then the
     implicit-function Newton step of the module notes (exact gradient).
     """
+    if xp is np and c.mantle_Fe is not None:
+        return _solve_feo_numpy(c, a, D, None if s0 is None else s0[..., 0])
     s = start_state(xp, c, tuple(a.shape[:-1])) if s0 is None else s0
     if xp is np:
         res: dict[str, Any] = {}
@@ -184,6 +187,116 @@ def solve_core(xp: Any, c: Static, a: Any, D: Any, s0: Any | None = None
                 break
         return s, res
     return _solve_core_jax(c, a, D, s)
+
+
+def _solve_feo_numpy(c: Static, a: np.ndarray, D: np.ndarray, k0: np.ndarray | None
+                     ) -> tuple[np.ndarray, dict[str, np.ndarray]]:
+    """The mantle-FeO fixed point on numpy, by Newton's method on k (batch shape of ``a``
+    (..., n); ``D`` (n,) or with the same batch shape; ``k0`` warm start)."""
+    n = a.shape[-1]
+    batch = a.shape[:-1]
+    at = np.ascontiguousarray(a.reshape(-1, n).T)
+    Dt = (np.asarray(D, float)[:, None] if np.ndim(D) == 1
+          else np.ascontiguousarray(np.broadcast_to(D, a.shape).reshape(-1, n).T))
+    k = None if k0 is None else np.asarray(k0, float).reshape(-1)
+    k, mt, core, M_s = solve_feo_element_major(c, at, Dt, k)
+    out = {"mantle": mt.T.reshape(a.shape), "core": core.T.reshape(a.shape),
+           "M_s": M_s.reshape(batch + (1,)), "M_c": core.sum(axis=0).reshape(batch + (1,)),
+           "D_Fe": np.full(batch + (1,), np.nan)}
+    return k.reshape(batch + (1,)), out
+
+
+def solve_feo_element_major(c: Static, at: np.ndarray, Dt: np.ndarray,
+                            k0: np.ndarray | None = None
+                            ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """The fixed point of :func:`core_step` with the mantle FeO fixed, by Newton's method.
+
+    The same mass balance as :func:`core_step`: ``m_i = a_i / (1 + D_i k)`` (i != Fe),
+    ``M_s = sum_i f_i m_i / (1 - f_Fe F)``, ``m_Fe = F M_s``, ``M_c = sum(a - m)``; the
+    fixed point ``k = max(M_c, 0) / M_s`` is the root (clamped at 0) of
+    ``h(k) = M_c(k) - k M_s(k)``, found by Newton's method over the elements with D > 0
+    (the others enter through one sum). Each column stops at its own convergence
+    (``|dk| <= CORE_RTOL (1 + k)``), so a result never depends on the rest of the batch.
+    A root where the fixed point repels (G' >= 1: Newton can land there, the plain
+    iteration cannot), or a column Newton did not settle, takes the plain iteration's
+    point. Element-major layout:
+    long inner loops at catalogue scale.
+
+    Parameters
+    ----------
+    c : Static
+        With ``mantle_Fe`` set.
+    at : ndarray, shape (n, B)
+        Bulk per unit R, element-major.
+    Dt : ndarray, shape (n, 1) or (n, B)
+        Effective mass partition coefficients.
+    k0 : ndarray, shape (B,), optional
+        Start (default :data:`K_START`).
+
+    Returns
+    -------
+    k (B,), mantle (n, B), core (n, B), M_s (B,)
+    """
+    fe = c.fe_index
+    f = c.oxide_factor
+    F = float(c.mantle_Fe)
+    n, B = at.shape
+    others = np.arange(n) != fe
+    sid = np.flatnonzero(others & (Dt > 0).any(axis=1))
+    lith = np.flatnonzero(others & ~(Dt > 0).any(axis=1))
+    scale = 1.0 / (1.0 - f[fe] * F)
+    Lf = f[lith] @ at[lith]
+    a_s = at[sid]
+    D_s = Dt[sid]
+    f_s = f[sid]
+    a_fixed = at[fe] + a_s.sum(axis=0)
+    k = np.full(B, K_START) if k0 is None else np.array(k0, float)
+    frozen = np.zeros(B, dtype=bool)
+    for _ in range(CORE_ITERATIONS):
+        den = 1.0 + D_s * k
+        m_s = a_s / den
+        dm = m_s * D_s / den  # minus dm_s/dk
+        M_s = (Lf + f_s @ m_s) * scale
+        dM_s = -(f_s @ dm) * scale
+        M_c = a_fixed - m_s.sum(axis=0) - F * M_s
+        h = M_c - k * M_s
+        dh = dm.sum(axis=0) - F * dM_s - M_s - k * dM_s
+        with np.errstate(divide="ignore", invalid="ignore"):
+            k_new = np.maximum(k - h / dh, 0.0)
+        k_new = np.where(np.isfinite(k_new), k_new, 0.0)
+        done = np.abs(k_new - k) <= CORE_RTOL * (1.0 + k)
+        k = np.where(frozen, k, k_new)
+        frozen |= done
+        if frozen.all():
+            break
+    # a root with dh/dk >= 0 is a repelling fixed point of k = G(k) (G' >= 1 there): the
+    # plain iteration leaves it (to k = 0 or another root), so those columns, and any
+    # Newton did not settle (cycling between k = 0 and a step off it where M_c < 0), take
+    # the plain iteration from K_START, the attracting point the iteration reaches
+    den = 1.0 + D_s * k
+    m_s = a_s / den
+    dm = m_s * D_s / den
+    M_s = (Lf + f_s @ m_s) * scale
+    dM_s = -(f_s @ dm) * scale
+    repel = ((k > 0) & (dm.sum(axis=0) - F * dM_s - M_s - k * dM_s >= 0)) | ~frozen
+    if repel.any():
+        sub = np.flatnonzero(repel)
+        a_sub = np.ascontiguousarray(at[:, sub].T)
+        D_sub = Dt[:, 0] if Dt.shape[1] == 1 else np.ascontiguousarray(Dt[:, sub].T)
+        sk = np.full((sub.size, 1), K_START)
+        for _ in range(CORE_ITERATIONS):
+            nxt, _ = core_step(np, c, a_sub, D_sub, sk)
+            done = _converged(np, nxt, sk)
+            sk = nxt
+            if done:
+                break
+        k = k.copy()
+        k[sub] = sk[:, 0]
+    mt = at / (1.0 + Dt * k)
+    mt[fe] = 0.0
+    M_s = (f @ mt) * scale
+    mt[fe] = F * M_s
+    return k, mt, at - mt, M_s
 
 
 def _inv_i_minus(xp: Any, J: Any) -> Any:

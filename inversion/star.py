@@ -49,6 +49,7 @@ import pandas as pd
 import components
 from components.units import PLAUSIBLE
 
+from . import kernel
 from .case import CONDENSATION_TABLES, Case, CoreSettings, Target
 from .exceptions import InputError
 from .handoff import PlanetDraws, planet_draws
@@ -79,10 +80,6 @@ EARTH_MANTLE_FEO_WT = 8.0
 EARTH_EXCLUDE = ("S", "Se", "Te", "Pb", "In", "Cl", "Br", "I", "Tl", "Hg", "Cd", "B")
 #: Relative 1-sigma given to BSE values without an uncertainty in the calibration.
 _DEFAULT_REL_UNC = 0.15
-#: Newton iterations of the fast core split and its tolerance on the last step in k
-#: (convergence is quadratic: after a step of 1e-10 the error is ~1e-20).
-_NEWTON_MAX = 40
-_NEWTON_TOL = 1e-10
 _LN10 = math.log(10.0)
 
 
@@ -278,16 +275,8 @@ def problem_for_bulk(elements: tuple[str, ...] | list[str], *, mantle_FeO_wt: fl
 
 
 def core_split_fast(a: np.ndarray, p: Problem, D: np.ndarray) -> dict[str, np.ndarray]:
-    """The engine's core mass balance for the mantle-FeO iron split, solved by Newton.
-
-    Same equations and fixed point as :func:`inversion.model._core_split` (mantle FeO
-    given): ``m_i = a_i / (1 + D_i k)`` for i != Fe, ``M_s = sum_i f_i m_i / (1 - f_Fe F)``,
-    ``m_Fe = F M_s``, ``M_c = sum(a - m)``, ``k = max(M_c, 0) / M_s``. Newton's method on
-    ``h(k) = M_c(k) - k M_s(k)`` over the siderophile elements only reaches the fixed
-    point in a few steps (the engine's 30 plain iterations over every element cost ~10x
-    more at catalogue scale); the tests check both agree to 1e-9. Falls back to the
-    engine for the dIW split.
-    """
+    """The engine's core mass balance (:func:`inversion.kernel.solve_core`; with the mantle
+    FeO fixed, Newton's method on k, :func:`inversion.kernel.solve_feo_element_major`)."""
     if p.mantle_Fe is None:
         return _core_split(a, p, D)
     r = _core_split_t(np.ascontiguousarray(a.T), p, D)
@@ -299,44 +288,9 @@ def core_split_fast(a: np.ndarray, p: Problem, D: np.ndarray) -> dict[str, np.nd
 
 def _core_split_t(at: np.ndarray, p: Problem, D: np.ndarray) -> dict[str, np.ndarray]:
     """:func:`core_split_fast` on the element-major layout: ``at`` (n, B), results (n, B)
-    and (B,). Long inner loops; plain sums rather than BLAS, whose threads cost more than
-    they give at this size."""
-    fe = p.fe_index
-    f = p.oxide_factor
-    F = p.mantle_Fe
-    n, B = at.shape
-    sid = np.array([j for j in range(n) if j != fe and D[j] > 0], dtype=int)
-    lith = np.array([j for j in range(n) if j != fe and D[j] <= 0], dtype=int)
-    c = 1.0 / (1.0 - f[fe] * F)
-    Lf = (at[lith] * f[lith, None]).sum(axis=0)
-    a_s = at[sid]
-    D_s = D[sid][:, None]
-    f_s = f[sid][:, None]
-    a_fixed = at[fe] + a_s.sum(axis=0)
-    k = np.full(B, 0.5)
-    # a draw stops at its own convergence, so its result never depends on the others
-    frozen = np.zeros(B, dtype=bool)
-    for _ in range(_NEWTON_MAX):
-        den = 1.0 + D_s * k[None, :]
-        m_s = a_s / den
-        dm = m_s * D_s / den  # minus the derivative of m_s with respect to k
-        M_s = (Lf + (m_s * f_s).sum(axis=0)) * c
-        dM_s = -(dm * f_s).sum(axis=0) * c
-        M_c = a_fixed - m_s.sum(axis=0) - F * M_s
-        dM_c = dm.sum(axis=0) - F * dM_s
-        h = M_c - k * M_s
-        dh = dM_c - M_s - k * dM_s
-        k_new = np.maximum(k - h / dh, 0.0)
-        done = np.abs(k_new - k) <= _NEWTON_TOL * (1.0 + k)
-        k = np.where(frozen, k, k_new)
-        frozen |= done
-        if frozen.all():
-            break
-    mt = at / (1.0 + D[:, None] * k[None, :])
-    mt[fe] = 0.0
-    M_s = (mt * f[:, None]).sum(axis=0) * c
-    mt[fe] = F * M_s
-    core = at - mt
+    and (B,)."""
+    k, mt, core, M_s = kernel.solve_feo_element_major(kernel.static_of(p), at,
+                                                       np.asarray(D, float)[:, None])
     return {"mantle": mt, "core": core, "M_s": M_s, "M_c": core.sum(axis=0), "k": k}
 
 

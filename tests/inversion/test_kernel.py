@@ -31,14 +31,24 @@ def _with_form(p, form):
 
 @pytest.mark.parametrize(("case", "variant"), CASES)
 def test_numpy_model_reproduces_the_recorded_values(case, variant):
-    """Every output of every volatility form at 5 random points per form, 1e-10 relative."""
+    """Every output of every volatility form at 5 random points per form, 1e-10 relative.
+
+    The logarithms (``log10N``, ``logr``) are compared as the quantities they stand for:
+    1e-10 relative in the quantity is 1e-10 / ln 10 = 4.3e-11 dex (a relative tolerance on
+    a logarithm near 0 means nothing). The mantle-FeO split is now solved by Newton's
+    method to the fixed point (k to ~1e-15); the recorded plain iteration stopped when k
+    changed by 1e-12 relative, and its Os (D = 1e4) on Mars lies 7.4e-11 from the fixed
+    point (measured), the largest difference of the comparison.
+    """
     p = load_reference_problem(case, variant)
     for run in reference_runs(case, variant):
         out = forward(_with_form(p, run["form"]), np.array(run["w"]), np.array(run["vol"]),
                       np.array(run["lam"]))
         for key in KEYS:
             ref = np.asarray(run["out"][key], float)
-            np.testing.assert_allclose(out[key], ref, rtol=1e-10, atol=0,
+            log = key in ("log10N", "logr")
+            np.testing.assert_allclose(out[key], ref, rtol=0.0 if log else 1e-10,
+                                       atol=1e-10 / np.log(10.0) if log else 0.0,
                                        err_msg=f"{case} {variant} {run['form']} {key}")
 
 
