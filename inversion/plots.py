@@ -5,8 +5,11 @@ returns a :class:`matplotlib.figure.Figure`; :func:`save_figure` writes PNG and 
 :func:`png_bytes` and :func:`svg_text` give the bytes for embedding in a report. The
 backend is Agg (no display needed).
 
-Style: the Okabe & Ito (2008) colour-blind-safe palette; every class also has its own
-marker shape so that the figures read in grey scale as well.
+Style (every figure): one journal column (3.5 in, :data:`SINGLE_COLUMN`) or two (7.2 in,
+:data:`DOUBLE_COLUMN`) wide; PNG at 300 dpi and SVG with editable ``<text>``
+(:func:`save_figure`); the Okabe & Ito (2008) colour-blind-safe palette, every class also
+with its own marker shape so that the figures read in grey scale as well; symbols and
+formulae as mathtext with subscripts (``T_0``, ``Al_2O_3``).
 
 Figures
 -------
@@ -16,6 +19,7 @@ Figures
   cosmochemical classes as labelled bands, uncertainty bars, the fitted pattern (and its
   credible band when draws exist) and the flagged outliers labelled.
 - :func:`residuals_plot`: z-scores by element, ordered by condensation temperature.
+- :func:`predictive_plot`: observed values against their posterior-predictive intervals.
 - :func:`weights_plot`: building-block weights, point estimates or posterior draws.
 - :func:`pair_plot`: pairwise posterior of the main parameters.
 - :func:`ranking_plot`: the hypothesis ranking (delta BIC / AIC / LOO).
@@ -47,7 +51,38 @@ from .volatility import log10_retained  # noqa: E402
 __all__ = ["OKABE_ITO", "CLASS_STYLE", "plot_style", "volatility_diagram", "residuals_plot",
            "weights_plot", "pair_plot", "ranking_plot", "planet_plot", "heat_plot",
            "distribution_plot", "trace_rank_plot", "prior_posterior_plot", "save_figure",
-           "png_bytes", "svg_text", "isotope_plot", "siderophile_plot", "SIDEROPHILE_PANEL"]
+           "png_bytes", "svg_text", "isotope_plot", "siderophile_plot", "SIDEROPHILE_PANEL",
+           "predictive_plot", "parameter_label", "SINGLE_COLUMN", "DOUBLE_COLUMN"]
+
+#: Figure widths [in]: one and two journal columns (common practice).
+SINGLE_COLUMN = 3.5
+DOUBLE_COLUMN = 7.2
+
+
+def _width(natural: float) -> float:
+    """The journal width nearest above a figure's natural width (3.5 or 7.2 in)."""
+    return SINGLE_COLUMN if natural <= SINGLE_COLUMN + 1.0 else DOUBLE_COLUMN
+
+
+#: Sampled parameters as readers know them (mathtext symbols, units).
+_PARAM_LABELS = {
+    "T0": r"$T_0$ [K]", "slope": "slope [dex/K]", "log10_floor": "floor [dex]",
+    "a": r"$a$", "b": r"$b$", "T50": r"$T_{50}$ [K]", "width": "width [K]",
+    "slope_offset": "slope offset [dex/K]", "lam": r"$\lambda_{\mathrm{late}}$ [kg/kg]",
+    "cmf": "core mass fraction", "tau": r"$\tau$ [dex]",
+}
+
+
+def parameter_label(name: str) -> str:
+    """An axis label for a sampled parameter: ``$T_0$ [K]``, ``slope [dex/K]``,
+    ``mass fraction of CI`` (``x_CI``), ``weight of CI`` (``w_CI``)."""
+    if name in _PARAM_LABELS:
+        return _PARAM_LABELS[name]
+    if name.startswith("x_"):
+        return f"mass fraction of {name[2:]}"
+    if name.startswith("w_"):
+        return f"weight of {name[2:]}"
+    return name
 
 #: The eight colours of Okabe & Ito (2008, "Color Universal Design").
 OKABE_ITO = {
@@ -344,8 +379,7 @@ def residuals_plot(residuals: pd.DataFrame, *, title: str | None = None,
     fitted = df["fitted"].astype(str).str.lower().isin(["true", "1"]).to_numpy()
     z = df["z"].astype(float).to_numpy()
     with plot_style():
-        fig, ax = plt.subplots(figsize=(max(7.0, 0.16 * len(df) + 1.5), 3.6),
-                               layout="constrained")
+        fig, ax = plt.subplots(figsize=(DOUBLE_COLUMN, 3.4), layout="constrained")
         x = np.arange(len(df))
         geo = np.asarray(geo, dtype=str)
         for cls in list(CLASS_STYLE) + ["other"]:
@@ -364,14 +398,74 @@ def residuals_plot(residuals: pd.DataFrame, *, title: str | None = None,
             ax.axhline(t, color=OKABE_ITO["vermillion"], lw=0.9, ls="--")
         ax.axhspan(-1, 1, color="#eeeeee", zorder=0)
         ax.axhline(0, color="#555555", lw=0.8)
-        ax.set_xticks(x, df["element"], rotation=90, fontsize=7)
+        ax.set_xticks(x, df["element"], rotation=90, fontsize=7 if len(df) <= 40 else 5.5)
         ax.set_xlim(-1, len(df))
-        ax.set_ylabel("z = (observed - model) / sigma")
+        ax.grid(axis="x", visible=False)
+        ax.set_ylabel(r"$z = (y_{\mathrm{obs}} - y_{\mathrm{model}})\,/\,\sigma$")
         ax.set_xlabel("element, ordered by 50% condensation temperature (hot on the left); "
                       "open symbols not fitted")
         if title:
             ax.set_title(title, loc="left")
-        ax.legend(loc="best", ncol=3)
+        fig.legend(loc="outside lower center", ncols=5, fontsize=7)
+    return fig
+
+
+def predictive_plot(table: pd.DataFrame, *, title: str | None = None,
+                    interval_label: str = "90%") -> Figure:
+    """Observed values against their posterior-predictive intervals, element by element.
+
+    Each element's replicated observations (drawn from the likelihood at each posterior
+    draw) give a predictive distribution; the figure shows it as its 50% and outer
+    interval around the predictive median, with the observed value as a symbol. All is
+    drawn relative to the predictive median, so elements of any abundance share one
+    axis. An observed value outside the outer interval is ringed; about a tenth of them
+    outside a 90% interval is what a model that describes the data gives.
+
+    Parameters
+    ----------
+    table : DataFrame
+        ``element``, ``tc50`` [K], ``observed``, ``pp_lo``, ``pp_q25``, ``pp_q50``,
+        ``pp_q75``, ``pp_hi`` [dex: log10 of the normalised abundance].
+    interval_label : str
+        The outer interval (legend).
+    """
+    df = table.sort_values("tc50", ascending=False, na_position="last").reset_index(drop=True)
+    geo = np.asarray(_element_props(df["element"])["geochemical_class"].to_numpy(), dtype=str)
+    med = df["pp_q50"].to_numpy(float)
+    obs = df["observed"].to_numpy(float) - med
+    lo, hi = df["pp_lo"].to_numpy(float) - med, df["pp_hi"].to_numpy(float) - med
+    q25, q75 = df["pp_q25"].to_numpy(float) - med, df["pp_q75"].to_numpy(float) - med
+    outside = (obs < lo) | (obs > hi)
+    x = np.arange(len(df))
+    with plot_style():
+        fig, ax = plt.subplots(figsize=(DOUBLE_COLUMN, 3.4), layout="constrained")
+        ax.vlines(x, lo, hi, color="#c8c8c8", lw=4.0, zorder=2,
+                  label=f"posterior-predictive {interval_label} interval")
+        ax.vlines(x, q25, q75, color="#7f7f7f", lw=4.0, zorder=2.2,
+                  label="posterior-predictive 50% interval")
+        ax.axhline(0.0, color="#555555", lw=0.8, zorder=1)
+        for cls in list(CLASS_STYLE) + ["other"]:
+            m = (geo == cls) if cls != "other" else ~np.isin(geo, list(CLASS_STYLE))
+            if m.any():
+                colour, marker, label = _class_style(cls)
+                ax.plot(x[m], obs[m], marker=marker, color=colour, ms=4.5, ls="none",
+                        zorder=4, label=f"observed, {label}")
+        if outside.any():
+            ax.scatter(x[outside], obs[outside], s=60, facecolors="none",
+                       edgecolors="black", lw=0.9, zorder=5,
+                       label=f"outside its {interval_label} interval")
+        ax.set_xticks(x, df["element"], rotation=90, fontsize=7 if len(df) <= 40 else 5.5)
+        for tick, out in zip(ax.get_xticklabels(), outside, strict=True):
+            if out:
+                tick.set_fontweight("bold")
+        ax.set_xlim(-1, len(df))
+        ax.grid(axis="x", visible=False)
+        ax.set_ylabel(r"$y - \tilde{y}_{\mathrm{pred}}$ [dex]")
+        ax.set_xlabel("element, ordered by 50% condensation temperature (hot on the left); "
+                      r"$\tilde{y}_{\mathrm{pred}}$: posterior-predictive median")
+        if title:
+            ax.set_title(title, loc="left")
+        fig.legend(loc="outside lower center", ncols=3, fontsize=7)
     return fig
 
 
@@ -395,7 +489,7 @@ def weights_plot(weights: Mapping[str, float], *,
     """
     names = list(weights)
     with plot_style():
-        fig, ax = plt.subplots(figsize=(max(4.5, 1.0 * len(names) + 2.5), 3.6),
+        fig, ax = plt.subplots(figsize=(_width(0.8 * len(names) + 1.5), 3.0),
                                layout="constrained")
         x = np.arange(len(names))
         if draws is not None and len(draws) and set(names) <= set(draws.columns):
@@ -458,7 +552,7 @@ def pair_plot(draws: pd.DataFrame, *, columns: Sequence[str] | None = None,
     else:
         data_s = data
     with plot_style():
-        size = max(3.5, 1.7 * n)
+        size = _width(1.3 * n)
         fig, axes = plt.subplots(n, n, figsize=(size, size), squeeze=False)
         fig.subplots_adjust(left=0.1, right=0.97, bottom=0.08, top=0.95, wspace=0.12,
                             hspace=0.3)
@@ -475,8 +569,7 @@ def pair_plot(draws: pd.DataFrame, *, columns: Sequence[str] | None = None,
                     q = np.nanpercentile(data[:, i], [5, 50, 95])
                     for v, ls in zip(q, (":", "-", ":"), strict=True):
                         ax.axvline(v, color="black", lw=0.8, ls=ls)
-                    ax.set_title(f"{columns[i]} = {q[1]:.3g} [{q[0]:.3g}, {q[2]:.3g}]",
-                                 fontsize=7)
+                    ax.set_title(f"{q[1]:.4g} [{q[0]:.4g}, {q[2]:.4g}]", fontsize=6.5)
                 else:
                     ax.scatter(data_s[:, j], data_s[:, i], s=2, alpha=0.3,
                                color=OKABE_ITO["blue"], rasterized=True)
@@ -485,12 +578,13 @@ def pair_plot(draws: pd.DataFrame, *, columns: Sequence[str] | None = None,
                         ax.axvline(truth[columns[j]], color=OKABE_ITO["vermillion"], lw=1)
                     if i != j and columns[i] in truth:
                         ax.axhline(truth[columns[i]], color=OKABE_ITO["vermillion"], lw=1)
+                ax.tick_params(labelsize=6)
                 if i == n - 1:
-                    ax.set_xlabel(columns[j], fontsize=8)
+                    ax.set_xlabel(parameter_label(columns[j]), fontsize=7)
                 else:
                     ax.set_xticklabels([])
                 if j == 0 and i != 0:
-                    ax.set_ylabel(columns[i], fontsize=8)
+                    ax.set_ylabel(parameter_label(columns[i]), fontsize=7)
                 elif i != j:
                     ax.set_yticklabels([])
     return fig
@@ -525,7 +619,8 @@ def ranking_plot(table: pd.DataFrame, *, criterion: str | None = None, top: int 
     t = pd.concat([t[t["_ok"]].sort_values("_delta"), t[~t["_ok"]]]).head(top)
     labels = t["components"].astype(str).str.replace("+", " + ", regex=False).tolist()
     with plot_style():
-        fig, ax = plt.subplots(figsize=(7.5, 0.32 * len(t) + 1.4), layout="constrained")
+        fig, ax = plt.subplots(figsize=(DOUBLE_COLUMN, 0.32 * len(t) + 1.4),
+                               layout="constrained")
         y = np.arange(len(t))[::-1]
         d = t["_delta"].to_numpy(dtype=float)
         finite_max = np.nanmax(d[t["_ok"].to_numpy()]) if t["_ok"].any() else 1.0
@@ -652,6 +747,14 @@ def _subscript(species: str) -> str:
     return "$\\mathrm{" + re.sub(r"(\d+)", r"_{\1}", species) + "}$"
 
 
+def _isotope_label(name: str) -> str:
+    """``238U`` as mathtext with the mass number as a superscript."""
+    import re
+
+    m = re.fullmatch(r"(\d+)([A-Z][a-z]?)", name)
+    return rf"$^{{{m.group(1)}}}\mathrm{{{m.group(2)}}}$" if m else name
+
+
 def heat_plot(heat: pd.DataFrame, *, unit: str = "TW", title: str | None = None,
               interval_label: str = "90% interval") -> Figure:
     """Radiogenic heat production through time.
@@ -666,10 +769,12 @@ def heat_plot(heat: pd.DataFrame, *, unit: str = "TW", title: str | None = None,
     t = heat["time_Gyr_ago"].to_numpy(dtype=float)
     iso = [c for c in heat.columns if c in ("238U", "235U", "232Th", "40K")]
     with plot_style():
-        fig, ax = plt.subplots(figsize=(6.5, 3.8), layout="constrained")
-        for c, colour in zip(iso, (OKABE_ITO["blue"], OKABE_ITO["sky"], OKABE_ITO["green"],
-                                   OKABE_ITO["orange"]), strict=False):
-            ax.plot(t, heat[c], color=colour, lw=1.6, label=c)
+        fig, ax = plt.subplots(figsize=(DOUBLE_COLUMN, 3.6), layout="constrained")
+        for c, colour, ls in zip(iso, (OKABE_ITO["blue"], OKABE_ITO["sky"], OKABE_ITO["green"],
+                                       OKABE_ITO["orange"]), ("-", "--", "-.", ":"),
+                                 strict=False):
+            # isotope names with the mass number as a superscript: 238U as ^238U
+            ax.plot(t, heat[c], color=colour, lw=1.6, ls=ls, label=_isotope_label(c))
         if "total" in heat.columns:
             if {"total_lo", "total_hi"} <= set(heat.columns):
                 ax.fill_between(t, heat["total_lo"], heat["total_hi"], color="#bbbbbb",
@@ -701,8 +806,8 @@ def distribution_plot(values: pd.DataFrame, *, columns: Sequence[str] | None = N
     cols = list(columns or values.select_dtypes("number").columns)
     reference = dict(reference or {})
     with plot_style():
-        fig, axs = plt.subplots(1, len(cols), figsize=(3.3 * len(cols), 3.2), squeeze=False,
-                                layout="constrained")
+        fig, axs = plt.subplots(1, len(cols), figsize=(_width(2.4 * len(cols)), 2.8),
+                                squeeze=False, layout="constrained")
         for ax, c, colour in zip(axs[0], cols, _SERIES, strict=False):
             v = pd.to_numeric(values[c], errors="coerce").dropna().to_numpy()
             if v.size:
@@ -747,7 +852,7 @@ def trace_rank_plot(chains: Mapping[str, np.ndarray], *, title: str | None = Non
                 axs[row, 0].plot(arr[c], lw=0.5, color=colour, alpha=0.8)
                 axs[row, 1].hist(ranks[c], bins=bins, histtype="step", color=colour, lw=1.0)
             axs[row, 1].axhline(n_dr / (len(bins) - 1), color="#555555", lw=0.7, ls=":")
-            axs[row, 0].set_ylabel(name, fontsize=8)
+            axs[row, 0].set_ylabel(parameter_label(name), fontsize=7)
             axs[row, 1].set_yticks([])
             axs[row, 0].grid(False)
             axs[row, 1].grid(False)
@@ -807,7 +912,8 @@ def prior_posterior_plot(draws: Mapping[str, np.ndarray],
             pdf = _prior_pdf(priors[name], x)
             if pdf is not None:
                 ax.plot(x, pdf, color=OKABE_ITO["vermillion"], lw=1.4, label="prior")
-            ax.set_title(f"{name}: prior {priors[name].get('dist')}", fontsize=8, loc="left")
+            ax.set_title(f"prior {priors[name].get('dist')}", fontsize=8, loc="left")
+            ax.set_xlabel(parameter_label(name), fontsize=8)
             ax.set_yticks([])
             ax.grid(False)
         for ax in axs.ravel()[len(names):]:
@@ -884,7 +990,7 @@ def isotope_plot(observed: Mapping[str, tuple[float, float]],
     units = dict(units or {})
     with plot_style():
         fig, axes = plt.subplots(1, max(1, len(systems)), sharey=True, squeeze=False,
-                                 figsize=(2.6 * max(1, len(systems)) + 1.6,
+                                 figsize=(_width(2.6 * max(1, len(systems)) + 1.0),
                                           0.42 * max(1, len(labels)) + 1.5),
                                  layout="constrained")
         y = np.arange(len(labels))[::-1]
@@ -956,7 +1062,7 @@ def siderophile_plot(residuals: pd.DataFrame, conditions: Mapping[str, object], 
     prof = conditions.get("pressure_inferred")
     with plot_style():
         ncols = 2 if prof else 1
-        fig, axes = plt.subplots(1, ncols, figsize=(4.2 * ncols + 1.0, 3.4), squeeze=False,
+        fig, axes = plt.subplots(1, ncols, figsize=(_width(4.2 * ncols), 3.4), squeeze=False,
                                  layout="constrained")
         ax = axes[0][0]
         x = np.arange(len(df))

@@ -15,9 +15,7 @@ import base64
 import html
 import json
 import math
-import os
 import re
-import tempfile
 import tomllib
 from collections.abc import Callable
 from dataclasses import dataclass, field
@@ -714,6 +712,18 @@ def _sample_report(folder: Path) -> Report:
             rep.figures.append(("Residuals by element", "Posterior-predictive z-scores: "
                                 "(observed - median model) / predictive spread.",
                                 lambda: plots.residuals_plot(resid, title=title)))
+    ppc = _predictive_table(idata, prov) if idata is not None else None
+    if ppc is not None and len(ppc):
+        out = ppc[(ppc["observed"] < ppc["pp_lo"]) | (ppc["observed"] > ppc["pp_hi"])]
+        named = f" ({', '.join(out['element'])})" if 0 < len(out) <= 12 else ""
+        rep.figures.append(("Posterior-predictive check", "Each element's observed value "
+                            "(symbol) against the observations the posterior predicts for "
+                            "it (bars: 50% and 90% intervals of replicated data, drawn "
+                            "relative to their median). "
+                            f"{len(out)} of {len(ppc)} elements fall outside their 90% "
+                            f"interval{named}; about {0.1 * len(ppc):.0f} is what a model "
+                            "that describes the data gives.",
+                            lambda: plots.predictive_plot(ppc, title=title)))
     if draws is not None:
         key = "x" if any(f"x_{c}" in draws.columns for c in comps) else "w"
         wcols = {c: f"{key}_{c}" for c in comps if f"{key}_{c}" in draws.columns}
@@ -735,7 +745,9 @@ def _sample_report(folder: Path) -> Report:
                                        if c in draws.columns])
         if chains:
             rep.figures.append(("Traces and rank histograms", "Each chain's draws (left) and "
-                                "the ranks of the pooled draws per chain (right): mixed "
+                                "the ranks of the pooled draws per chain (right; "
+                                "λ_late: late accretion, mass fraction of the mantle; τ: "
+                                "model scatter): mixed "
                                 "chains overlap and give flat histograms (dotted: the flat "
                                 "level; Vehtari et al. 2021).",
                                 lambda: plots.trace_rank_plot(chains)))
@@ -1031,6 +1043,31 @@ def _residuals_from_idata(idata: Any, prov: dict[str, Any]) -> pd.DataFrame | No
     return pd.DataFrame({"element": els, "tc50": tc, "observed": y, "model": med,
                          "sigma": scale, "z": z, "fitted": True, "flag": flag,
                          "model_lo": lo, "model_hi": hi})
+
+
+def _predictive_table(idata: Any, prov: dict[str, Any]) -> pd.DataFrame | None:
+    """Observed values and the posterior-predictive 5, 25, 50, 75, 95% points per element
+    (dex), from the replicated observations ``y_obs`` of the posterior."""
+    import components
+
+    try:
+        pp = idata.posterior_predictive["y_obs"]
+        obs = idata.observed_data["y_obs"]
+    except (AttributeError, KeyError, TypeError):
+        return None
+    dim = next((d for d in pp.dims if d not in ("chain", "draw")), None)
+    if dim is None:
+        return None
+    els = [str(e) for e in pp.coords[dim].values]
+    rep = np.asarray(pp.transpose("chain", "draw", dim).values, float).reshape(-1, len(els))
+    q = np.percentile(rep, [5, 25, 50, 75, 95], axis=0)
+    col = f"tc50_{prov.get('condensation_table', 'lodders2003')}"
+    props = components.elements()
+    tc = props.reindex(els)[col if col in props.columns else "tc50_lodders2003"].to_numpy()
+    return pd.DataFrame({"element": els, "tc50": tc,
+                         "observed": np.asarray(obs.values, float),
+                         "pp_lo": q[0], "pp_q25": q[1], "pp_q50": q[2], "pp_q75": q[3],
+                         "pp_hi": q[4]})
 
 
 def _planet_draws(folder: Path) -> pd.DataFrame | None:
@@ -1524,14 +1561,10 @@ def build_report(folder: str | Path, *, out: str | Path | None = None,
         fig_dir.mkdir(exist_ok=True)
     text = render_html(rep, figure_dir=fig_dir)
     target = Path(out) if out is not None else folder / "report.html"
-    target.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=".report.", suffix=".html", dir=target.parent)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8") as fh:
-            fh.write(text)
-        os.chmod(tmp, 0o644)
-        os.replace(tmp, target)
-    finally:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
+    from .output import atomic_file
+
+    # written beside the target and renamed in place; a killed run's temporary file is
+    # removed by the next report written there
+    with atomic_file(target) as tmp:
+        tmp.write_text(text, encoding="utf-8")
     return target

@@ -61,6 +61,39 @@ def _is_png(fig) -> bool:
     return data.startswith(PNG_MAGIC) and len(data) > 5000
 
 
+def _colours(fig) -> list[tuple[float, float, float]]:
+    """Every colour a figure's data artists use (lines, markers, collections, patches)."""
+    from matplotlib.colors import to_rgba, to_rgba_array
+
+    out = []
+    for ax in fig.axes:
+        for ln in ax.lines:
+            out += [to_rgba(c) for c in (ln.get_color(), ln.get_markerfacecolor(),
+                                         ln.get_markeredgecolor()) if c != "none"]
+        for col in ax.collections:
+            for arr in (col.get_facecolor(), col.get_edgecolor()):
+                out += [tuple(c) for c in to_rgba_array(arr)]
+        for patch in ax.patches:
+            out += [patch.get_facecolor(), patch.get_edgecolor()]
+    return [c[:3] for c in out if c[3] > 0]
+
+
+def _check_house_style(fig, name: str) -> None:
+    """One or two journal columns wide; every colour of the Okabe & Ito (2008) palette
+    or a grey (black and white included)."""
+    from matplotlib.colors import to_rgb
+
+    width = fig.get_size_inches()[0]
+    assert width == pytest.approx(plots.SINGLE_COLUMN) or width == pytest.approx(
+        plots.DOUBLE_COLUMN), (name, width)
+    palette = np.array([to_rgb(c) for c in plots.OKABE_ITO.values()])
+    with plots.plot_style():  # cycle colours ("C0") resolve as they do when saved
+        colours = _colours(fig)
+    for c in colours:
+        grey = max(c) - min(c) < 0.02
+        assert grey or np.abs(palette - np.array(c)).max(axis=1).min() < 0.01, (name, c)
+
+
 # ----------------------------------------------------------------- figures
 def test_every_figure_function_draws_a_png(tmp_path):
     res = _residuals()
@@ -91,8 +124,21 @@ def test_every_figure_function_draws_a_png(tmp_path):
         "distribution": plots.distribution_plot(pd.DataFrame({
             "cmf": np.random.default_rng(1).uniform(0.2, 0.4, 40),
             "Mg/Si": np.random.default_rng(2).uniform(0.9, 1.3, 40)})),
+        "traces": plots.trace_rank_plot({"T0": draws["T0"].to_numpy().reshape(2, 150)}),
+        "prior": plots.prior_posterior_plot(
+            {"T0": draws["T0"].to_numpy()}, {"T0": {"dist": "Uniform", "lower": 900.0,
+                                                    "upper": 1700.0}}),
+        "predictive": plots.predictive_plot(res.assign(
+            pp_lo=res["model"] - 0.1, pp_q25=res["model"] - 0.03, pp_q50=res["model"],
+            pp_q75=res["model"] + 0.03, pp_hi=res["model"] + 0.1)),
+        "isotopes": plots.isotope_plot({"e54Cr": (0.0, 0.1)},
+                                       {"CI+H": {"e54Cr": (-0.3, 0.6)}}),
+        "siderophile": plots.siderophile_plot(res, {"sources": {"Ni": "regression"},
+                                                    "pressure_GPa": 40.0,
+                                                    "temperature_K": 3000.0, "dIW": -2.0}),
     }
     for name, fig in figs.items():
+        _check_house_style(fig, name)
         assert _is_png(fig), name
     # SVG too, through the file writer
     fig = plots.residuals_plot(res)
@@ -101,6 +147,17 @@ def test_every_figure_function_draws_a_png(tmp_path):
     svg = (tmp_path / "resid.svg").read_text()
     assert svg.lstrip().startswith("<?xml") and "<svg" in svg
     assert not re.search(r"(href|src)=\"https?://", svg)
+    assert svg.count("<text") > 20  # tick labels and axis labels stay editable text
+    from PIL import Image
+
+    with Image.open(tmp_path / "resid.png") as im:
+        assert im.info["dpi"][0] == pytest.approx(300, abs=0.5)
+        assert im.size[0] == round(plots.DOUBLE_COLUMN * 300)
+    # symbols as subscripts and superscripts (mathtext), not plain text
+    assert "_{\\mathrm{obs}}" in fig.axes[0].get_ylabel()
+    labels = [t.get_text() for t in figs["heat"].axes[0].get_legend().get_texts()]
+    assert r"$^{238}\mathrm{U}$" in labels
+    assert figs["traces"].axes[0].get_ylabel() == "$T_0$ [K]"
 
 
 def test_ranking_delta_is_measured_from_the_best_feasible():
@@ -317,10 +374,36 @@ def test_sample_report_from_a_posterior(tmp_path):
     for text in ("Volatility diagram", "Building blocks", "Pairwise posterior",
                  "Whole planet", "FAILED", "largest R-hat", "90% credible interval",
                  "mass fraction of CI", "run more draws", "Off-trend elements",
-                 "Posterior summary", "Traces and rank histograms", "Prior and posterior"):
+                 "Posterior summary", "Traces and rank histograms", "Prior and posterior",
+                 "Posterior-predictive check"):
         assert text in html, text
     assert len(re.findall(r"data:image/png;base64,", html)) >= 4
     _no_external(html)
+    # the synthetic posterior's data carry +0.5 dex on Ni against replicates of scatter
+    # 0.05 dex: Ni, and only Ni, falls outside its 90% predictive interval
+    assert "1 of 8 elements fall outside their 90% interval (Ni)" in html
+
+
+def test_predictive_table_against_the_replicated_draws(tmp_path):
+    import arviz as az
+
+    from inversion.report import _predictive_table
+
+    folder = _fake_sample_folder(tmp_path / "sample")
+    idata = az.from_netcdf(str(folder / "posterior.nc"))
+    tab = _predictive_table(idata, {}).set_index("element")
+    rep = idata.posterior_predictive["y_obs"].values.reshape(-1, 8)
+    # percentiles of the replicated observations, recomputed here by sorting
+    ni = np.sort(rep[:, 5])
+    n = len(ni)
+    assert tab.loc["Ni", "pp_q50"] == pytest.approx(0.5 * (ni[n // 2 - 1] + ni[n // 2]))
+    assert tab.loc["Ni", "pp_lo"] == pytest.approx(np.interp(0.05 * (n - 1), np.arange(n), ni))
+    assert tab.loc["Ni", "observed"] == pytest.approx(
+        float(idata.observed_data["y_obs"].values[5]))
+    fig = plots.predictive_plot(tab.reset_index())
+    ticks = {t.get_text(): t.get_fontweight() for t in fig.axes[0].get_xticklabels()}
+    assert ticks["Ni"] == "bold" and ticks["Al"] == "normal"  # the element outside
+    plots.plt.close(fig)
 
 
 def test_compare_report(tmp_path):
