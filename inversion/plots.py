@@ -73,6 +73,15 @@ _PARAM_LABELS = {
 }
 
 
+def _symbol(name: str) -> str:
+    """``T0`` as ``$T_0$``, ``T50`` as ``$T_{50}$`` (subscripted symbols); other names as
+    they are."""
+    import re
+
+    m = re.fullmatch(r"([A-Za-z])(\d+)", name)
+    return rf"${m.group(1)}_{{{m.group(2)}}}$" if m else name
+
+
 def parameter_label(name: str) -> str:
     """An axis label for a sampled parameter: ``$T_0$ [K]``, ``slope [dex/K]``,
     ``mass fraction of CI`` (``x_CI``), ``weight of CI`` (``w_CI``)."""
@@ -125,19 +134,24 @@ def plot_style() -> Iterator[None]:
 
 
 def _log_ratio_axis(ax, lo_dex: float, hi_dex: float) -> None:
-    """A logarithmic y axis of a normalised abundance from ``10**lo_dex`` to ``10**hi_dex``:
-    decades labelled ``10^n``, unlabelled minor ticks at 2-9 (labelled too when the range
-    holds fewer than two decades)."""
-    from matplotlib.ticker import LogFormatterSciNotation, LogLocator, NullFormatter
+    """A logarithmic y axis of a normalised abundance from ``10**lo_dex`` to ``10**hi_dex``.
+
+    Over 2.5 decades or more: decades labelled ``10^n`` with unlabelled minor ticks at
+    2-9; over a narrower range: ticks at 1, 2 and 5 times the decades, labelled as
+    decimals (0.05, 0.1, 0.2...), so that the axis always carries several labels.
+    """
+    from matplotlib.ticker import FuncFormatter, LogFormatterSciNotation, LogLocator, NullFormatter
 
     ax.set_yscale("log")
     ax.set_ylim(10.0 ** lo_dex, 10.0 ** hi_dex)
-    ax.yaxis.set_major_locator(LogLocator(base=10.0, numticks=12))
-    ax.yaxis.set_major_formatter(LogFormatterSciNotation(base=10.0))
-    ax.yaxis.set_minor_locator(LogLocator(base=10.0, subs=np.arange(2, 10),
-                                          numticks=12))
-    if np.floor(hi_dex) - np.ceil(lo_dex) >= 1:
-        ax.yaxis.set_minor_formatter(NullFormatter())
+    ax.yaxis.set_minor_locator(LogLocator(base=10.0, subs=np.arange(2, 10), numticks=12))
+    ax.yaxis.set_minor_formatter(NullFormatter())
+    if hi_dex - lo_dex >= 2.5:
+        ax.yaxis.set_major_locator(LogLocator(base=10.0, numticks=12))
+        ax.yaxis.set_major_formatter(LogFormatterSciNotation(base=10.0))
+    else:
+        ax.yaxis.set_major_locator(LogLocator(base=10.0, subs=(1.0, 2.0, 5.0), numticks=12))
+        ax.yaxis.set_major_formatter(FuncFormatter(lambda v, _pos: f"{v:.4g}"))
 
 
 def _element_props(elements: Sequence[str]) -> pd.DataFrame:
@@ -355,7 +369,7 @@ def _volatility_curve(ax, df: pd.DataFrame, volatility: Mapping[str, object],
                             lw=0, zorder=2,
                             label=f"volatility trend, {interval_label}")
     units = dict(zip(names, FORMS[form].units, strict=True))
-    txt = ", ".join(f"{k} = {float(volatility[k]):.4g}"
+    txt = ", ".join(f"{_symbol(k)} = {float(volatility[k]):.4g}"
                     f"{'' if units[k] == '1' else ' ' + units[k]}" for k in names)
     ax.plot(grid, 10.0 ** curve, color=OKABE_ITO["sky"], lw=2.0, zorder=2.5,
             label=f"volatility trend ({form}: {txt})")

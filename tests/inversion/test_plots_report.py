@@ -567,5 +567,10 @@ def test_report_volatility_diagram_labels_apart_and_inside_the_page():
     # (-4 dex at the coolest element) does not stretch it
     assert fig.axes[0].get_yscale() == "log"
     assert np.log10(fig.axes[0].get_ylim()[0]) > -2.0
+    # a range of under two decades still carries several labelled ticks (1-2-5 steps)
+    lo, hi = fig.axes[0].get_ylim()
+    shown = [t for t, v in zip(fig.axes[0].get_yticklabels(), fig.axes[0].get_yticks(),
+                               strict=True) if lo <= v <= hi and t.get_text()]
+    assert len(shown) >= 4
     assert "Pb (" in " ".join(t.get_text() for t in fig.axes[0].texts)  # outlier with its z
     plots.plt.close(fig)
