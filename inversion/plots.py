@@ -793,9 +793,10 @@ def heat_plot(heat: pd.DataFrame, *, unit: str = "TW", title: str | None = None,
             if {"total_lo", "total_hi"} <= set(heat.columns):
                 ax.fill_between(t, heat["total_lo"], heat["total_hi"], color="#bbbbbb",
                                 alpha=0.5, lw=0, label=f"total, {interval_label}")
-            ax.plot(t, heat["total"], color="black", lw=2.0, label="total")
-            ax.text(t[0], float(heat["total"].iloc[0]), f"today {heat['total'].iloc[0]:.3g} "
-                    f"{unit} ", ha="right", va="bottom", fontsize=8)
+            now = float(heat["total"].iloc[int(np.argmin(t))])
+            # today's value in the legend: a label on the curve ran into the curve and band
+            ax.plot(t, heat["total"], color="black", lw=2.0,
+                    label=f"total (today {now:.3g} {unit})")
         ax.set_xlim(t.max(), t.min())
         ax.set_xlabel("time before present [Gyr]")
         ax.set_ylabel(f"heat production [{unit}]")

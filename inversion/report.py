@@ -589,10 +589,12 @@ def _rank_report(folder: Path) -> Report:
             second = ok.iloc[1]
             rep.key_numbers.append(("runner-up", str(second["components"]),
                                     f"ΔBIC {_fmt(float(second['bic']) - float(best['bic']))}"))
-        for col in ("core_mass_fraction", "late_accretion_fraction"):
-            if col in ok.columns:
-                rep.key_numbers.append((f"{col.replace('_', ' ')} (best)",
-                                        _fmt(best[col]), ""))
+        if "core_mass_fraction" in ok.columns:
+            rep.key_numbers.append(("core mass fraction (best)",
+                                    _fmt(best["core_mass_fraction"]), ""))
+        if "late_accretion_fraction" in ok.columns:
+            rep.key_numbers.append(("late accretion (best) [% of mantle]",
+                                    _fmt(100.0 * float(best["late_accretion_fraction"])), ""))
         near = ok[(ok["bic"] - float(best["bic"])) <= 2.0]
         rep.diagnostics.append(("hypotheses within ΔBIC ≤ 2 of the best", str(len(near)),
                                 ", ".join(near["components"].astype(str).head(10))))
@@ -614,10 +616,21 @@ def _rank_report(folder: Path) -> Report:
         if weights:
             rep.figures.append(("Weights of the best hypothesis", str(best["components"]),
                                 lambda: plots.weights_plot(weights)))
+    from .volatility import FORMS
+
+    vcols = {f"{f}_{n}": f"{n} [{u}]" if u != "1" else n for f, spec in FORMS.items()
+             for n, u in zip(spec.params, spec.units, strict=True)}
     show = [c for c in ("rank", "components", "status", "chi2", "aic", "bic",
-                        "late_accretion_fraction", "core_mass_fraction") if c in table.columns]
+                        *vcols, "late_accretion_fraction", "core_mass_fraction")
+            if c in table.columns]
     show += [c for c in wcols if c not in show]
-    top = table[show].head(20).rename(columns={c: f"weight {c[2:]}" for c in wcols})
+    top = table[show].head(20).copy()
+    if "late_accretion_fraction" in top.columns:
+        top["late_accretion_fraction"] = 100.0 * top["late_accretion_fraction"]
+    top = top.rename(columns={**{c: f"weight {c[2:]}" for c in wcols}, **vcols,
+                              "aic": "AIC", "bic": "BIC",
+                              "late_accretion_fraction": "late accretion [% of mantle]",
+                              "core_mass_fraction": "core mass fraction"})
     rep.tables.append((f"The {len(top)} best of {len(table)} hypotheses (weights on the "
                        f"reference-element basis; empty: not in the mixture)",
                        _table_html(top)))
@@ -1103,6 +1116,17 @@ def _draw_column(name: str) -> tuple[str, str, str] | None:
     return None
 
 
+def _quantity_name(key: str) -> str:
+    """``Mg/Si (bulk, molar)``, ``Mg# (mantle, molar)``, ``core mass fraction``: a planet
+    quantity's key as readers know it."""
+    if key in ("core_mass_fraction", "cmf"):
+        return "core mass fraction"
+    if key in _RATIO_COLS and "_" in key:
+        ratio, where = key.rsplit("_", 1)
+        return f"{ratio} ({where}, molar)"
+    return key
+
+
 def _planet_from_draws(rep: Report, draws: pd.DataFrame, meta: dict[str, Any], *,
                        q: tuple[float, float] = (2.5, 97.5), skip: tuple[str, ...] = ()
                        ) -> None:
@@ -1134,7 +1158,7 @@ def _planet_from_draws(rep: Report, draws: pd.DataFrame, meta: dict[str, Any], *
     for _, r in planet[planet["reservoir"].isin(["planet", "ratio"])].iterrows():
         if r["species"] in skip:
             continue
-        rep.key_numbers.append((str(r["species"]), _fmt(r["value"]),
+        rep.key_numbers.append((_quantity_name(str(r["species"])), _fmt(r["value"]),
                                 f"{width} interval [{_fmt(r['lo'])}, {_fmt(r['hi'])}]"))
     from .plots import MAJOR_OXIDE_MIN_WT
 
@@ -1199,7 +1223,10 @@ def _star_report(folder: Path) -> Report:
                             f"{meta.get('n_draws', '?')} Monte Carlo draws"))
     dv = meta.get("devolatilisation") or {}
     if dv:
-        pars = ", ".join(f"{k} = {_fmt(v)}" for k, v in (dv.get("parameters") or {}).items())
+        from .cli import _unit
+
+        pars = ", ".join(f"{k} = {_fmt(v)}{_unit(str(dv.get('form', '')), k)}"
+                         for k, v in (dv.get("parameters") or {}).items())
         rep.key_numbers.append(("devolatilisation pattern", str(dv.get("label", "")),
                                 f"{dv.get('form', '')}: {pars}"))
     iron = meta.get("iron_split") or {}
@@ -1211,10 +1238,10 @@ def _star_report(folder: Path) -> Report:
         _planet_from_draws(rep, draws, meta)
     else:
         if "core_mass_fraction" in meta:
-            rep.key_numbers.append(("core_mass_fraction", *_stat_text(meta[
+            rep.key_numbers.append((_quantity_name("core_mass_fraction"), *_stat_text(meta[
                 "core_mass_fraction"])))
         for k, st in (meta.get("molar_ratios") or {}).items():
-            rep.key_numbers.append((k, *_stat_text(st)))
+            rep.key_numbers.append((_quantity_name(k), *_stat_text(st)))
     xh = meta.get("star_abundances_dex") or {}
     if xh:
         tab = pd.DataFrame([{"element": k, "[X/H] dex": v.get("value"),

@@ -157,6 +157,7 @@ def test_every_figure_function_draws_a_png(tmp_path):
     assert "_{\\mathrm{obs}}" in fig.axes[0].get_ylabel()
     labels = [t.get_text() for t in figs["heat"].axes[0].get_legend().get_texts()]
     assert r"$^{238}\mathrm{U}$" in labels
+    assert f"total (today {heat['total'].iloc[0]:.3g} TW)" in labels
     assert figs["traces"].axes[0].get_ylabel() == "$T_0$ [K]"
 
 
@@ -215,6 +216,16 @@ def test_rank_report(result_folders, tmp_path):
     _no_external(html)
     table = pd.read_csv(folder / "ranking.csv")
     assert str(table.loc[0, "components"]) in html
+    # the table's headers carry units; the late accretion is shown in % of the mantle
+    for head in ("T0 [K]", "slope [dex/K]", "late accretion [% of mantle]", "BIC"):
+        assert f"<th>{head}</th>" in html, head
+    assert _fmt_pct(100 * table.loc[0, "late_accretion_fraction"]) in html
+
+
+def _fmt_pct(v: float) -> str:
+    from inversion.report import _fmt
+
+    return _fmt(v)
 
 
 def test_report_of_a_folder_that_is_no_result(tmp_path, capsys):
@@ -289,7 +300,8 @@ def test_star_and_batch_reports(shared_results):
     whole = pd.read_parquet(batch_dir / "parts")
     n_rows = len(pd.read_csv(tpl / "catalog.csv", comment="#"))
     assert len(whole) == n_rows and whole["row"].is_unique
-    for folder, expect in ((star_dir, ("Whole planet", "core_mass_fraction", "Caution")),
+    for folder, expect in ((star_dir, ("Whole planet", "core_mass_fraction", "Caution",
+                                       "Mg/Si (bulk, molar)", " dex/K")),
                            (batch_dir, ("Across the catalogue", "CMF, median star",
                                         "Mg/Si (bulk, molar), median star", "demo-002"))):
         assert main(["report", str(folder), "--figures"]) == 0
