@@ -188,6 +188,10 @@ def _interval_text(key: str, q: dict, form: str) -> str:
         return f"late accretion [{100 * lo:.3g}, {100 * hi:.3g}] % of the mantle"
     if key == "core_mass_fraction":
         return f"core mass fraction [{lo:.3g}, {hi:.3g}]"
+    if key.startswith("weight:"):
+        # a weight at its bound has a numerically zero interval end (1e-18): shown as 0
+        lo, hi = (0.0 if abs(v) < 1e-9 else v for v in (lo, hi))
+        return f"{name} [{lo:.3g}, {hi:.3g}]"
     unit = _unit(form, name) if key.startswith("volatility:") else ""
     return f"{name} [{lo:.4g}, {hi:.4g}]{unit}"
 

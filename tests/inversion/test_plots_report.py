@@ -586,3 +586,22 @@ def test_report_volatility_diagram_labels_apart_and_inside_the_page():
     assert len(shown) >= 4
     assert "Pb (" in " ".join(t.get_text() for t in fig.axes[0].texts)  # outlier with its z
     plots.plt.close(fig)
+
+
+def test_cli_numbers_carry_units(result_folders):
+    from inversion.cli import _interval_text, _ranking_text
+
+    table = pd.read_csv(result_folders["rank"] / "ranking.csv")
+    text = _ranking_text(table, "kinked")
+    head = text.splitlines()[0]
+    for col in ("T0 [K]", "slope [dex/K]", "late [% mantle]", "CMF"):
+        assert col in head, col
+    assert max(len(line) for line in text.splitlines()) <= 100
+    best = table.iloc[0]
+    assert f"{100 * best['late_accretion_fraction']:.3g}" in text.splitlines()[1]
+    q = {"p2.5": 1287.4, "p97.5": 1321.2}
+    assert _interval_text("volatility:T0", q, "kinked") == "T0 [1287, 1321] K"
+    assert _interval_text("late_accretion_fraction", {"p2.5": 0.00346, "p97.5": 0.00428},
+                          "kinked") == "late accretion [0.346, 0.428] % of the mantle"
+    assert _interval_text("weight:CI", {"p2.5": 0.0, "p97.5": 1.1e-18},
+                          "kinked") == "CI [0, 0]"
