@@ -134,14 +134,17 @@ def _sample(parser: argparse.ArgumentParser):
         from .model import compile_problem
 
         case = load_case(args.case)
-        P_range = case.core.pressure_GPa if case.core.partitioning == "single-stage" else None
-        if isinstance(P_range, tuple):
-            # the equilibration pressure is a parameter: start the D at mid-range
+        if case.core.partitioning == "single-stage":
+            # conditions given as [low, high] are parameters: start at mid-range
             from dataclasses import replace
 
-            p = compile_problem(case, pressure_GPa=0.5 * (P_range[0] + P_range[1]))
-            p = replace(p, core_conditions={**p.core_conditions,
-                                            "pressure_range_GPa": list(P_range)})
+            from .conditions import free_conditions, start_problem
+
+            p = start_problem(case)
+            if "pressure_GPa" in free_conditions(case):
+                p = replace(p, core_conditions={
+                    **p.core_conditions,
+                    "pressure_range_GPa": list(free_conditions(case)["pressure_GPa"])})
         else:
             p = compile_problem(case)
         priors = check_priors(p, case.priors, file=case.path)
@@ -196,10 +199,13 @@ def _sample(parser: argparse.ArgumentParser):
         if "class_test" in extra:
             print(f"  class test (Bayesian): {extra['class_test']['statement']}")
         cc = extra.get("core_conditions", {})
-        if isinstance(cc.get("pressure_GPa"), dict):
-            print(f"  core equilibration pressure {_fmt(cc['pressure_GPa'], spec='.1f')} GPa"
-                  f" (prior {cc['pressure_range_GPa']}); T and dIW: {cc['temperature_from']}, "
-                  f"dIW {cc['dIW']:.2f}")
+        units = {"pressure_GPa": ("equilibration pressure", " GPa", ".1f"),
+                 "temperature_K": ("temperature", " K", ".0f"), "dIW": ("dIW", "", ".2f")}
+        parts = [f"{lab} {_fmt(cc[k], spec=f)}{u} (prior {cc[k]['range']})"
+                 for k, (lab, u, f) in units.items()
+                 if isinstance(cc.get(k), dict) and "range" in cc[k]]
+        if parts:
+            print("  core formation: " + "; ".join(parts) + f"; {cc['sampled']}")
         if not result.passed:
             print("  DIAGNOSTICS GATE FAILED; results are marked as failing:")
             for m in result.diagnostics.messages():
@@ -216,11 +222,23 @@ def _posterior_conditions(p: Any, idata: Any) -> dict[str, Any]:
     it implies."""
     import numpy as np
 
+    from .jaxmodel import condition_ranges
+
     cc = dict(p.core_conditions)
-    if "pressure_GPa" in idata.posterior:
-        P = np.asarray(idata.posterior["pressure_GPa"], float).ravel()
-        q = np.percentile(P, [50.0, 5.0, 95.0])
-        cc["pressure_GPa"] = {"median": float(q[0]), "q05": float(q[1]), "q95": float(q[2])}
+    post = idata.posterior
+    sampled = [k for k in condition_ranges(p) if k in post]
+    for k in sampled:
+        v = np.asarray(post[k], float).ravel()
+        q = np.percentile(v, [50.0, 5.0, 95.0])
+        cc[k] = {"median": float(q[0]), "q05": float(q[1]), "q95": float(q[2]),
+                 "prior": "Uniform", "range": list(condition_ranges(p)[k])}
+    if len(sampled) > 1:
+        # posterior correlations of the sampled conditions (their degeneracy)
+        X = np.stack([np.asarray(post[k], float).ravel() for k in sampled])
+        cc["posterior_correlation"] = {"names": sampled,
+                                       "matrix": np.round(np.corrcoef(X), 4).tolist()}
+    if "pressure_GPa" in sampled and "temperature_K" not in sampled:
+        P = np.asarray(post["pressure_GPa"], float).ravel()
         if "liquidus" in str(cc.get("temperature_from", "")).lower():
             from .partitioning import peridotite_liquidus
 
@@ -228,8 +246,11 @@ def _posterior_conditions(p: Any, idata: Any) -> dict[str, Any]:
             t = np.percentile(T, [50.0, 5.0, 95.0])
             cc["temperature_K"] = {"median": float(t[0]), "q05": float(t[1]),
                                    "q95": float(t[2])}
-        cc["sampled"] = ("pressure (Uniform prior over the case's range); dIW and the mean "
-                         "molar masses held at their mid-range values")
+    if sampled:
+        held = [k for k in ("temperature_K", "dIW") if k not in sampled]
+        cc["sampled"] = (", ".join(sampled) + " (Uniform priors over the case's ranges); "
+                         + (" and ".join(held) + " as the case gives them; " if held else "")
+                         + "the mean molar masses held at their start values")
     return cc
 
 

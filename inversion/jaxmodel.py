@@ -17,6 +17,7 @@ of a case loads its log density instead of compiling it.
 from __future__ import annotations
 
 import os
+from dataclasses import replace
 from functools import lru_cache
 from pathlib import Path
 from typing import Any
@@ -26,7 +27,10 @@ import numpy as np
 from . import kernel
 
 __all__ = ["jax_setup", "predictions", "PREDICTION_KEYS", "cache_dir", "pressure_range",
-           "pressure_D"]
+           "pressure_D", "condition_ranges", "conditions_D", "SAMPLED_CONDITIONS"]
+
+#: Core-formation conditions the sampler may take as parameters, in argument order.
+SAMPLED_CONDITIONS = ("pressure_GPa", "temperature_K", "dIW")
 
 #: Outputs of :func:`predictions`, in order.
 PREDICTION_KEYS = ("mu", "sigma_model2", "eps_pred", "eps_var", "cmf", "v",
@@ -68,9 +72,19 @@ def pressure_range(p: Any) -> tuple[float, float] | None:
     """The pressure range [GPa] sampled as a parameter, or None (fixed conditions or the
     effective D). Set by ``planetmix sample`` from ``[core] pressure_GPa = [low, high]``
     in ``Problem.core_conditions["pressure_range_GPa"]``."""
+    return condition_ranges(p).get("pressure_GPa")
+
+
+def condition_ranges(p: Any) -> dict[str, tuple[float, float]]:
+    """The core-formation conditions sampled as parameters and their ranges, in the order
+    of :data:`SAMPLED_CONDITIONS`: ``Problem.core_conditions["ranges"]`` (set by
+    :func:`inversion.conditions.start_problem` from ``[core]`` values given as
+    ``[low, high]``), or the older ``pressure_range_GPa`` entry."""
     cc = getattr(p, "core_conditions", None) or {}
-    r = cc.get("pressure_range_GPa")
-    return None if r is None else (float(r[0]), float(r[1]))
+    r = dict(cc.get("ranges") or {})
+    if "pressure_range_GPa" in cc and "pressure_GPa" not in r:
+        r["pressure_GPa"] = cc["pressure_range_GPa"]
+    return {k: (float(r[k][0]), float(r[k][1])) for k in SAMPLED_CONDITIONS if k in r}
 
 
 @lru_cache(maxsize=8)
@@ -80,6 +94,37 @@ def _chemistry(elements: tuple[str, ...]) -> Any:
     from . import partitioning as pt
 
     return pt.compile_chemistry(elements, oxygen=False)
+
+
+def conditions_D(p: Any) -> tuple[np.ndarray, Any]:
+    """The metal/silicate D of the regression elements as a function of (P, T, dIW).
+
+    Returns ``(mask, D_of)``: ``D_of(P, T=None, dIW=None, xp=np)`` gives the (n,) mass D
+    at pressure P [GPa], temperature T [K] (None: the case's, fixed or the peridotite
+    liquidus at P) and dIW (None: the one in ``p.core_conditions``), with the mean molar
+    masses of ``p.core_conditions`` (held at the start of the sampling), the problem's
+    own D elsewhere.
+    """
+    from . import partitioning as pt
+
+    cc = p.core_conditions
+    chem = _chemistry(tuple(p.elements))
+    mask = np.isin(chem.kind, (1, 2))
+    mask[p.fe_index] = False
+    base = np.asarray(p.D, float)
+    liquidus = "liquidus" in str(cc.get("temperature_from", "")).lower()
+    T_fixed = float(cc["temperature_K"])
+    dIW_fixed = float(cc["dIW"])
+    state = np.array([0.5, float(cc["Mbar_sil_g_mol"]), float(cc["Mbar_met_g_mol"]), 0.0,
+                      0.0])
+
+    def D_of(P: Any, T: Any = None, dIW: Any = None, xp: Any = np) -> Any:
+        if T is None:
+            T = pt.peridotite_liquidus(P, xp=xp) if liquidus else T_fixed
+        Dm = pt.mass_D(chem, P, T, dIW_fixed if dIW is None else dIW, state, xp=xp)
+        return xp.where(mask, Dm, base)
+
+    return mask, D_of
 
 
 def pressure_D(p: Any) -> tuple[np.ndarray, Any]:
@@ -124,8 +169,9 @@ def predictions(p: Any, partitioned: list[int] | tuple[int, ...] = ()) -> Any:
     Returns
     -------
     callable
-        ``f(w (K,), vol (p,), lam (), log10D (len(partitioned),)[, P])`` (``P`` [GPa]
-        when the problem samples the pressure, :func:`pressure_range`) returning the arrays
+        ``f(w (K,), vol (p,), lam (), log10D (len(partitioned),), *conditions)`` (the
+        sampled core-formation conditions of :func:`condition_ranges`, in the order of
+        :data:`SAMPLED_CONDITIONS`: P [GPa], T [K], dIW) returning the arrays
         of :data:`PREDICTION_KEYS`: ``mu`` (n_fit,) predicted log10 N of the fitted
         elements; ``sigma_model2`` (n_fit,) end-member variance [dex^2] (zeros without
         block uncertainties); ``eps_pred``, ``eps_var`` (n_iso,) isotope predictions and
@@ -144,19 +190,33 @@ def predictions(p: Any, partitioned: list[int] | tuple[int, ...] = ()) -> Any:
     has_em = q_sig is not None and bool(np.any(np.asarray(q_sig)[:, fit] > 0))
     Q_fit = np.asarray(p.Q, float)[:, fit]
     S_fit = np.asarray(q_sig, float)[:, fit] if has_em else None
+    # end-member variance as two small products (kernel.end_member_variance in the
+    # form sum_k w_k^2 (Q_ki s_ki)^2 / (sum_k w_k Q_ki)^2): the broadcast (K, m)
+    # form and its gradient cost ~10 us more per log density and gradient (measured,
+    # docs/forward_model.md)
+    QS2_fit = (Q_fit * S_fit) ** 2 if has_em else None
     isotopes = [{k: (np.asarray(v, float) if isinstance(v, np.ndarray) else v)
                  for k, v in d.items()} for d in p.isotopes]
 
-    sampled_P = pressure_range(p) is not None
-    D_of_P = pressure_D(p)[1] if sampled_P else None
+    sampled = list(condition_ranges(p))
+    D_of = conditions_D(p)[1] if sampled else None
+    P_fixed = float((p.core_conditions or {}).get("pressure_GPa", np.nan))
 
-    def f(w: Any, vol: Any, lam: Any, log10D: Any, P: Any = None) -> tuple[Any, ...]:
-        D = jnp.asarray(D0) if D_of_P is None else D_of_P(P, jnp)
+    def f(w: Any, vol: Any, lam: Any, log10D: Any, *conds: Any) -> tuple[Any, ...]:
+        cv = dict(zip(sampled, conds, strict=True))
+        cs = c
+        if D_of is None:
+            D = jnp.asarray(D0)
+        else:
+            D = D_of(cv.get("pressure_GPa", P_fixed), cv.get("temperature_K"),
+                     cv.get("dIW"), jnp)
+            if "dIW" in cv:  # a sampled dIW sets the iron split too
+                cs = replace(c, dIW=cv["dIW"])
         if part.size:
             D = D.at[part].set(10.0 ** log10D)
-        out = kernel.forward(jnp, c, w, vol, lam, D)
+        out = kernel.forward(jnp, cs, w, vol, lam, D)
         mu = out["log10N"][fit]
-        em = (kernel.end_member_variance(jnp, Q_fit, S_fit, w) if has_em
+        em = ((w * w) @ QS2_fit / (w @ Q_fit) ** 2 if has_em
               else jnp.zeros(fit.size))
         preds, vars_ = [], []
         for iso in isotopes:

@@ -14,7 +14,7 @@ from typing import Any
 
 import numpy as np
 
-from ..jaxmodel import pressure_range
+from ..jaxmodel import condition_ranges
 from ..model import Problem
 from ..volatility import get_form
 from .diagnostics import Diagnostics, diagnose
@@ -108,14 +108,15 @@ def start_points(p: Problem, priors: dict[str, dict[str, Any]], fit: Any, chains
             else:
                 for j, v in zip(part, vals, strict=True):
                     iv[f"log10D_{p.elements[j]}"] = v
-        if "pressure_GPa" in priors and pressure_range(p) is not None:
-            spec = priors["pressure_GPa"]
-            P0 = (p.core_conditions or {}).get("pressure_GPa")
+        for name in condition_ranges(p):  # sampled core-formation conditions
+            if name not in priors:
+                continue
+            spec = priors[name]
+            P0 = (p.core_conditions or {}).get(name)
             if P0 is None:
                 lo, hi = _support_of(spec["dist"], spec)
                 P0 = 0.5 * (lo + hi)
-            iv["pressure_GPa"] = _inside(float(P0) + jitter * _scale(spec) * rng.normal(),
-                                         spec)
+            iv[name] = _inside(float(P0) + jitter * _scale(spec) * rng.normal(), spec)
         iv["tau"] = _inside(tau0 * (1 + jitter * rng.normal()), priors["tau"])
         out.append(iv)
     return out

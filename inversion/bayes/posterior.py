@@ -9,7 +9,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from ..jaxmodel import pressure_D
+from ..jaxmodel import condition_ranges, conditions_D
 from ..model import Problem, forward
 from ..volatility import get_form
 from .priors import _partitioned
@@ -103,15 +103,39 @@ def posterior_arrays(p: Problem, idata: Any) -> dict[str, np.ndarray]:
     vol = np.stack([post[n].values.reshape(S) for n in form.params], axis=1)
     lam = post["lam"].values.reshape(S) if "lam" in post else np.zeros(S)
     D = np.broadcast_to(p.D, (S, p.D.size)).copy()
-    if "pressure_GPa" in post:
-        _, D_of_P = pressure_D(p)
-        D = np.stack([D_of_P(float(P)) for P in post["pressure_GPa"].values.reshape(S)])
+    sampled = [k for k in condition_ranges(p) if k in post]
+    if sampled:
+        _, D_of = conditions_D(p)
+        cv = {k: post[k].values.reshape(S) for k in sampled}
+        P_fix = float(p.core_conditions["pressure_GPa"])
+        D = np.stack([D_of(float(cv["pressure_GPa"][i]) if "pressure_GPa" in cv else P_fix,
+                           float(cv["temperature_K"][i]) if "temperature_K" in cv else None,
+                           float(cv["dIW"][i]) if "dIW" in cv else None)
+                      for i in range(S)])
     part = _partitioned(p)
     if part:
         D[:, part] = 10.0 ** post["log10D"].values.reshape(S, len(part))
     chain, draw = np.meshgrid(post["chain"].values, post["draw"].values, indexing="ij")
-    return {"w": w, "vol": vol, "lam": lam, "D": D, "tau": post["tau"].values.reshape(S),
-            "chain": chain.ravel(), "draw": draw.ravel()}
+    out = {"w": w, "vol": vol, "lam": lam, "D": D, "tau": post["tau"].values.reshape(S),
+           "chain": chain.ravel(), "draw": draw.ravel()}
+    if "dIW" in sampled:
+        out["dIW"] = cv["dIW"]
+    return out
+
+
+def _forward_draws(p: Problem, d: dict[str, np.ndarray]) -> dict[str, Any]:
+    """The numpy forward model at the posterior draws; with a sampled dIW (which sets
+    the iron split) one draw at a time, each at its own dIW."""
+    if "dIW" not in d:
+        return forward(p, d["w"], d["vol"], d["lam"], D=d["D"])
+    from dataclasses import replace
+
+    rows = [forward(replace(p, dIW=float(x)), d["w"][i:i + 1], d["vol"][i:i + 1],
+                    d["lam"][i:i + 1], D=d["D"][i:i + 1]) for i, x in enumerate(d["dIW"])]
+    first = rows[0]
+    return {k: (np.concatenate([r[k] for r in rows], axis=0)
+                if isinstance(v, np.ndarray) and v.ndim >= 1 and v.shape[0] == 1 else v)
+            for k, v in first.items()}
 
 
 def posterior_planet(p: Problem, idata: Any, *, planet_mass_kg: float | None = None
@@ -135,7 +159,7 @@ def posterior_planet(p: Problem, idata: Any, *, planet_mass_kg: float | None = N
     from ..planet import assemble
 
     d = posterior_arrays(p, idata)
-    fwd = forward(p, d["w"], d["vol"], d["lam"], D=d["D"])
+    fwd = _forward_draws(p, d)
     pl = assemble(p, fwd)
     hand = handoff_draws(p, pl, planet_mass_kg=planet_mass_kg)
     cols: dict[str, np.ndarray] = {"chain": d["chain"], "draw": d["draw"]}
@@ -177,7 +201,7 @@ def outliers(p: Problem, idata: Any, *, threshold: float = 3.0) -> pd.DataFrame:
     from .. import kernel
 
     d = posterior_arrays(p, idata)
-    fwd = forward(p, d["w"], d["vol"], d["lam"], D=d["D"])
+    fwd = _forward_draws(p, d)
     obs = np.isfinite(p.y_all)
     obs[p.ref_index] = False
     mu = fwd["log10N"][:, obs]

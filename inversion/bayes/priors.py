@@ -10,7 +10,7 @@ from typing import Any
 import numpy as np
 
 from ..exceptions import InputError
-from ..jaxmodel import pressure_D, pressure_range
+from ..jaxmodel import condition_ranges, pressure_D
 from ..model import Problem
 from ..volatility import get_form
 
@@ -69,9 +69,8 @@ def default_priors(p: Problem) -> dict[str, dict[str, Any]]:
     for j in _partitioned(p):
         pri[f"log10D_{p.elements[j]}"] = {"dist": "Normal", "mu": float(np.log10(p.D[j])),
                                           "sigma": float(p.D_spread[j])}
-    P = pressure_range(p)
-    if P is not None:
-        pri["pressure_GPa"] = {"dist": "Uniform", "lower": P[0], "upper": P[1]}
+    for name, (lo, hi) in condition_ranges(p).items():  # P, T, dIW over their ranges
+        pri[name] = {"dist": "Uniform", "lower": lo, "upper": hi}
     pri["tau"] = {"dist": "HalfNormal", "sigma": 0.05}
     return pri
 
@@ -92,9 +91,7 @@ def _supports(p: Problem) -> dict[str, tuple[float, float]]:
         sup["lam"] = (0.0, 0.999)
     for j in _partitioned(p):
         sup[f"log10D_{p.elements[j]}"] = (-math.inf, math.inf)
-    P = pressure_range(p)
-    if P is not None:
-        sup["pressure_GPa"] = P
+    sup.update(condition_ranges(p))
     return sup
 
 
@@ -102,7 +99,7 @@ def _partitioned(p: Problem) -> list[int]:
     """Indices of elements whose effective log10 D is a parameter (spread > 0, D > 0;
     not those whose D follows the pressure when the pressure is sampled)."""
     reg = np.zeros(len(p.elements), bool)
-    if pressure_range(p) is not None:
+    if condition_ranges(p):
         reg = pressure_D(p)[0]
     return [j for j in range(len(p.elements))
             if p.D_spread[j] > 0 and p.D[j] > 0 and j != p.fe_index and not reg[j]]

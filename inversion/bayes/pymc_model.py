@@ -9,7 +9,7 @@ from typing import Any
 import numpy as np
 
 from .. import kernel
-from ..jaxmodel import pressure_range
+from ..jaxmodel import condition_ranges
 from ..model import Problem
 from ..volatility import get_form
 from .priors import _partitioned, default_priors
@@ -113,11 +113,10 @@ def build_model(p: Problem, priors: dict[str, dict[str, Any]] | None = None, *,
                 log10D = pt.stack([_prior_rv(f"log10D_{p.elements[j]}", s)
                                    for j, s in zip(part, mus, strict=True)])
                 pm.Deterministic("log10D", log10D, dims="partitioned")
-        P_args = []
-        if pressure_range(p) is not None:
-            # the equilibration pressure: the D of the regression elements follow it
-            P_args = [pt.as_tensor_variable(_prior_rv("pressure_GPa", priors["pressure_GPa"]),
-                                            dtype="float64")]
+        # the core-formation conditions sampled (P, T, dIW in this order): the D of the
+        # regression elements follow them, a sampled dIW sets the iron split too
+        P_args = [pt.as_tensor_variable(_prior_rv(name, priors[name]), dtype="float64")
+                  for name in condition_ranges(p)]
         tau = _prior_rv("tau", priors["tau"])
         pred = _jax_predictions(p, part)
         vol_v = pt.stack([pt.as_tensor_variable(v, dtype="float64") for v in vol])
