@@ -503,8 +503,9 @@ def _joint_curvature(pc: Any, res: Any, settings: Any, names: list[str],
             a, b = v - z * sd[j], v + z * sd[j]
             iv[name] = [float(max(a, lo[j])), float(min(b, hi[j]))]
             iv[name + "_open"] = [bool(a <= lo[j]), bool(b >= hi[j])]
-        # pull: -d chi2_i / d theta / 2 = -r_i dr_i/dtheta; positive pulls upward
-        pull = -r0 * Jc[:, j]
+        # pull of element i: -(1/2) d chi2_i / d theta x the range = -r_i dr_i/dtheta x
+        # range (chi2 units per range, comparable between conditions); positive pulls up
+        pull = -r0 * Jc[:, j] * span[j]
         order = np.argsort(pull)
         up = {fit_els[i]: float(pull[i]) for i in order[::-1][:PULL_ELEMENTS] if pull[i] > 0}
         down = {fit_els[i]: float(pull[i]) for i in order[:PULL_ELEMENTS] if pull[i] < 0}
