@@ -101,6 +101,27 @@ def _fmt(d: dict[str, float], scale: float = 1.0, spec: str = ".4g") -> str:
             f"{d['q95'] * scale:{spec}}]")
 
 
+def _comparison_text(table: Any) -> str:
+    """The comparison table as printed: units in the headers, within 100 columns (the
+    elements with a high Pareto k are named in the readings below it)."""
+    import pandas as pd
+
+    show = pd.DataFrame({
+        "rank": table["rank"], "components": table["components"],
+        "elpd [nats]": table["elpd_loo"].map(lambda v: f"{v:.2f}"),
+        "p_loo": table["p_loo"].map(lambda v: f"{v:.1f}"),
+        "Δelpd [nats]": table["elpd_diff"].map(lambda v: f"{v:.2f}"),
+        "dse [nats]": table["dse"].map(lambda v: f"{v:.2f}"),
+        "weight": table["weight"].map(lambda v: f"{v:.3f}"),
+        "within 2 dse": table["within_uncertainty"].map(lambda v: "yes" if v else "no"),
+        "max Pareto k": table["pareto_k_max"].map(lambda v: f"{v:.2f}"),
+        "gate": table["gate"].map(lambda v: "passed" if v == "passed" else "FAILED")})
+    if "log10_bayes_factor_vs_best" in table:
+        show["log10 BF vs best"] = table["log10_bayes_factor_vs_best"].map(
+            lambda v: "n/a" if v is None or v != v else f"{v:.2f}")
+    return show.to_string(index=False, line_width=100)
+
+
 @register("sample", "sample the posterior of a case with NUTS (PyMC) and gate it")
 def _sample(parser: argparse.ArgumentParser):
     parser.add_argument("case", help="case file (TOML)")
@@ -323,15 +344,20 @@ def _compare(parser: argparse.ArgumentParser):
         cols += ["within_uncertainty", "pareto_k_max", "pareto_k_high", "reading"]
         attrs = dict(table.attrs)
         table = table[cols]
-        print(table.drop(columns=["run", "reading"]).to_string(
-            index=False, float_format=lambda v: f"{v:.3f}"))
+        print(_comparison_text(table))
+        import textwrap
+
+        def say(text: str) -> None:  # prose wrapped to a 100-column terminal
+            print(textwrap.fill(text, width=100, initial_indent="  ",
+                                subsequent_indent="    "))
+
         for _, r in table.iterrows():
-            print(f"  {r['components']} ({r['run']}): {r['reading']}")
+            say(f"{r['components']} ({r['run']}): {r['reading']}")
         for label, els in attrs.get("left_out", {}).items():
             print(f"  compared on the {len(attrs['shared_elements'])} shared elements; "
                   f"left out of {label}: {', '.join(els)}")
         if table["pareto_k_high"].astype(bool).any():
-            print("  " + attrs["pareto_k_advice"])
+            say(attrs["pareto_k_advice"])
         if "log10_bayes_factor_vs_best" in table:
             for _, r in table.iloc[1:].iterrows():
                 bf = r["log10_bayes_factor_vs_best"]

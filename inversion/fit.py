@@ -32,6 +32,7 @@ from .solver import (
     JointSettings,
     curvature,
     first_order_residual,
+    forward_from,
     isotope_prediction,
     isotope_sigma,
     kink_boxes,
@@ -147,6 +148,10 @@ class FitResult:
 
     def to_dataframe(self) -> pd.DataFrame:
         """One-row tidy view of the estimates."""
+        return pd.DataFrame([self.row()])
+
+    def row(self) -> dict[str, Any]:
+        """The estimates as one row of a table (:meth:`to_dataframe`, the ranking)."""
         row: dict[str, Any] = {"components": "+".join(self.components), "status": self.status,
                                "chi2": self.chi2, "aic": self.aic, "bic": self.bic,
                                "n_elements": self.n_elements, "n_params": self.n_params,
@@ -159,7 +164,7 @@ class FitResult:
                     "optimality_agreeing": o.get("agreeing"),
                     "optimality_kkt_residual": o.get("kkt_residual"),
                     "optimality_worst_start_chi2": o.get("worst_start_chi2")})
-        return pd.DataFrame([row])
+        return row
 
 
 def _design(p: Problem, vol: np.ndarray, k: np.ndarray, D_Fe: np.ndarray,
@@ -249,6 +254,7 @@ def _profile_points(p: Problem, vol: np.ndarray, passes: int) -> dict[str, np.nd
                                                      np.nan)}
     feasible_any = np.zeros(B, dtype=bool)
     u_prev = np.full((B, K + (p.late_name is not None)), 1.0 / (K + 1))
+    state = None
     for _ in range(passes):
         A, G, h, _names = _design(p, vol, k, D_Fe, M_s, u_prev)
         Af = A[:, fi, :]
@@ -265,7 +271,9 @@ def _profile_points(p: Problem, vol: np.ndarray, passes: int) -> dict[str, np.nd
         w = np.where(sw > 0, w / np.where(sw > 0, sw, 1.0), 1.0 / K)
         v = u[:, K] if p.late_name is not None else np.zeros(B)
         # the core split does not depend on the late veneer: one forward pass, then mix
-        fwd = forward(p, w, vol, 0.0)
+        # (its fixed point started from the previous pass's)
+        fwd = forward_from(p, w, vol, state)
+        state = fwd["state"]
         ratio = (1.0 - v)[:, None] * fwd["mantle"][:, fi] + v[:, None] * p.q_late[None, fi]
         with np.errstate(divide="ignore", invalid="ignore"):
             model = np.log10(ratio / p.q_ci[None, fi])
@@ -712,7 +720,11 @@ def _residual_table(p: Problem, fwd: dict[str, np.ndarray], row: int = 0) -> pd.
     fitted = np.zeros(len(p.elements), dtype=bool)
     fitted[p.fit_index] = True
     z = (p.y_all - fwd["log10N"][row]) / p.sigma_all
-    df = pd.DataFrame({
+    with np.errstate(invalid="ignore"):
+        flag = np.where(~np.isfinite(p.y_all), "not observed",
+                        np.where(np.abs(z) > 3, np.where(z > 0, "above model", "below model"),
+                                 ""))
+    return pd.DataFrame({
         "element": list(p.elements),
         "tc50": p.tc,
         "observed": p.y_all,
@@ -720,11 +732,8 @@ def _residual_table(p: Problem, fwd: dict[str, np.ndarray], row: int = 0) -> pd.
         "sigma": p.sigma_all,
         "z": z,
         "fitted": fitted,
+        "flag": flag.astype(object),
     })
-    df["flag"] = np.where(~np.isfinite(df["observed"]), "not observed",
-                          np.where(np.abs(z) > 3, np.where(z > 0, "above model", "below model"),
-                                   ""))
-    return df
 
 
 def _isotope_reasons_at_weights(p: Problem) -> list[str]:
@@ -932,7 +941,7 @@ def screen(case: Case, *, settings: FitSettings | None = None, workers: int = 1,
     p = compile_problem(case)
     fits = _solve_nested(p, case.max_mixture_size, settings, workers=workers,
                          progress=progress)
-    table = pd.concat([f.to_dataframe() for f in fits], ignore_index=True)
+    table = pd.DataFrame([f.row() for f in fits])
     table["n_components"] = [len(f.components) for f in fits]
     table["reasons"] = ["; ".join(f.reasons) for f in fits]
     order = np.lexsort((table["chi2"].to_numpy(), table["bic"].to_numpy()))

@@ -37,7 +37,7 @@ first-order (KKT) conditions of the linearised problem.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 
@@ -46,8 +46,8 @@ from .model import Problem
 from .qp import solve_quadratic_batch
 from .volatility import get_form
 
-__all__ = ["JointSettings", "evaluate", "polish", "first_order_residual", "curvature",
-           "row_problem", "kink_boxes", "isotope_sigma"]
+__all__ = ["JointSettings", "evaluate", "forward_from", "polish", "first_order_residual",
+           "curvature", "row_problem", "kink_boxes", "isotope_sigma", "gram"]
 
 _LN10 = float(np.log(10.0))
 
@@ -120,64 +120,6 @@ def _model_sigma(p: Problem, U: np.ndarray, fi: np.ndarray) -> np.ndarray | None
     return np.nan_to_num(rel) ** 2
 
 
-def core_fixed_point(c: kernel.Static, a: np.ndarray, D: np.ndarray,
-                     s0: np.ndarray | None = None) -> tuple[np.ndarray, dict[str, np.ndarray]]:
-    """The fixed point ``s = G(s)`` of :func:`inversion.kernel.core_step` for a batch,
-    by Newton's method, and the reservoirs at it.
-
-    The same fixed point and stopping rule as :func:`inversion.kernel.solve_core` (k
-    changes by at most ``CORE_RTOL * (1 + k)``), reached in fewer steps: the derivative
-    ``J = dG/ds`` is taken by a forward difference of ``G`` (one more step per state
-    variable) at the first iterate, then held (chord steps, each one evaluation of
-    ``G``), and taken again when a chord step does not shrink the change. A Newton step
-    that leaves the physical range (k < 0, D_Fe <= 0, not finite) is replaced by the
-    plain step ``G(s)``. ``s0`` (B, d) warm-starts the iteration.
-
-    Returns
-    -------
-    s : ndarray (B, d)
-    res : dict
-        The reservoirs of :func:`inversion.kernel.core_step` at ``s`` (``mantle``,
-        ``core``, ``M_s``, ``M_c``, ``D_Fe``).
-    """
-    B = a.shape[0]
-    s = kernel.start_state(np, c, (B,))
-    if s0 is not None:  # a warm start, where it is a state at all
-        s0 = np.asarray(s0, float)
-        s = np.where(np.isfinite(s0).all(axis=1, keepdims=True), s0, s)
-    d = s.shape[1]
-    Jinv = None
-    prev_change = None
-    res: dict[str, np.ndarray] = {}
-    for _ in range(kernel.CORE_ITERATIONS):
-        g, res = kernel.core_step(np, c, a, D, s)
-        if Jinv is None:
-            h = 1e-7 * (1.0 + np.abs(s))
-            probe = np.concatenate([s + h[:, j:j + 1] * np.eye(d)[j] for j in range(d)])
-            gp = kernel.core_step(np, c, np.concatenate([a] * d),
-                                  D if np.ndim(D) == 1 else np.concatenate([D] * d),
-                                  probe)[0]
-            J = np.stack([(gp[j * B:(j + 1) * B] - g) / h[:, j:j + 1] for j in range(d)],
-                         axis=-1)  # (B, d, d): J[b, i, j] = dG_i / ds_j
-            Jinv = np.linalg.inv(np.eye(d) - J)
-        nxt = s + np.einsum("bij,bj->bi", Jinv, g - s)
-        ok = np.isfinite(nxt).all(axis=1) & (nxt[:, 0] >= 0.0)
-        if d > 1:
-            ok &= (nxt[:, 1:] > 0.0).all(axis=1)
-        nxt = np.where(ok[:, None], nxt, g)
-        change = np.abs(nxt[:, 0] - s[:, 0])
-        # a row that is not finite stays so (as under the plain iteration): it is done
-        done = (change <= kernel.CORE_RTOL * (1.0 + np.abs(nxt[:, 0]))) | ~np.isfinite(change)
-        if np.all(done):
-            # s is within the tolerance of the fixed point: returned with its reservoirs
-            break
-        if prev_change is not None and np.any(change[~done] > 0.5 * prev_change[~done]):
-            Jinv = None  # the held derivative no longer contracts: take it again
-        prev_change = change
-        s = nxt
-    return s, res
-
-
 def _forward_rows(p: Problem, U: np.ndarray, TH: np.ndarray,
                   s0: np.ndarray | None = None) -> dict[str, np.ndarray]:
     """The forward quantities the misfit and the constraints read, for weights ``U``
@@ -188,8 +130,26 @@ def _forward_rows(p: Problem, U: np.ndarray, TH: np.ndarray,
     with np.errstate(divide="ignore", invalid="ignore"):
         logr = kernel.relative_log_retained(np, c, TH)
         a = kernel.bulk(np, c, U[:, :K], logr)
-        s, res = core_fixed_point(c, a, p.D, s0)
+        if s0 is not None:  # a warm start where it is a state at all
+            s0 = np.asarray(s0, float)
+            s0 = np.where(np.isfinite(s0).all(axis=1, keepdims=True), s0,
+                          kernel.start_state(np, c, (a.shape[0],)))
+        s, res = kernel.solve_core(np, c, a, p.D, s0)
     return _outputs(p, a, s, res)
+
+
+def forward_from(p: Problem, w: np.ndarray, vol: np.ndarray,
+                 s0: np.ndarray | None = None) -> dict[str, np.ndarray]:
+    """:func:`inversion.model.forward` (no late accretion) with the core fixed point
+    started from ``s0`` (B, d), e.g. the ``state`` of a previous call at nearby
+    parameters; rows of ``s0`` that are not finite start from the default."""
+    c = kernel.static_of(p)
+    if s0 is not None:
+        s0 = np.asarray(s0, float)
+        s0 = np.where(np.isfinite(s0).all(axis=1, keepdims=True), s0,
+                      kernel.start_state(np, c, (w.shape[0],)))
+    with np.errstate(divide="ignore"):
+        return kernel.forward(np, c, w, vol, np.zeros(w.shape[0]), p.D, s0)
 
 
 def _outputs(p: Problem, a: np.ndarray, s: np.ndarray, res: dict[str, np.ndarray]
@@ -240,48 +200,99 @@ def _misfit(p: Problem, U: np.ndarray, fw: dict[str, np.ndarray],
             cmf_range: tuple[float, float] | None, restore: bool) -> dict[str, np.ndarray]:
     """Residuals and constraint values of :func:`evaluate` from the forward quantities."""
     K = p.Q.shape[-2]
-    has_late = p.late_name is not None
     fi = p.fit_index
     sK = U[:, :K].sum(axis=1)
     safe = np.where(sK > 0, sK, 1.0)
-    ratio = fw["mantle"]
-    if has_late:
-        ratio = ratio + U[:, K:K + 1] * p.q_late[None, fi]
+    ratio = _ratio(p, U, fw)
     with np.errstate(divide="ignore", invalid="ignore"):
         model = np.log10(ratio / p.q_ci[None, fi])
-        var = np.broadcast_to(p.sigma[None, :] ** 2, model.shape)
-        extra = _model_sigma(p, U, fi)
-        if extra is not None:
-            var = var + extra
+        var = _variance(p, U)
         r = (model - p.y[None, :]) / np.sqrt(var)
         M_s = fw["M_s"] / safe
         cmf = fw["M_c"] / (fw["M_s"] + fw["M_c"])
     chi2 = np.where(np.all(np.isfinite(r), axis=1), (r ** 2).sum(axis=1), np.inf)
-    cons = []
-    if p.mantle_Fe is not None:
-        cons.append(fw["core_fe"] / np.maximum(fw["bulk_fe"], 1e-300))
-    if has_late:
-        # scaled by the bound, but not below 1e-3: a tiny bound must not turn rounding
-        # in the weights into a violation
-        cons.append((_v_max(p, M_s) - U[:, K]) / max(p.late_max_fraction, 1e-3))
-    if cmf_range is not None:
-        cons.append(cmf - cmf_range[0])
-        cons.append(cmf_range[1] - cmf)
-    for iso in p.isotopes:
-        # |eps_planet(u) - eps_obs| <= n sigma_eff(u): nonlinear through the widening of
-        # the window by the end-members' uncertainties, so linearised with the rest
-        eps_pl = isotope_prediction(p, iso, U)
-        win = p.isotope_window_sigma * isotope_sigma(p, iso, U)
-        cons.append((win - (eps_pl - iso["value"])) / iso["sigma"])
-        cons.append((eps_pl - iso["value"] + win) / iso["sigma"])
-    C = np.stack(cons, axis=1) if cons else np.zeros((U.shape[0], 0))
+    C = _constraints(p, U, fw, cmf_range, p.isotopes)
     if restore:
         r = np.concatenate([1e-4 * np.nan_to_num(r, nan=1e6, posinf=1e6, neginf=-1e6),
                             1e3 * np.minimum(C, 0.0)], axis=1)
         chi2 = (r ** 2).sum(axis=1)
         C = np.zeros((U.shape[0], 0))
     return {"r": r, "chi2": chi2, "cons": C, "cmf": cmf, "M_s": M_s,
-            "k": fw["state"][:, 0], "fw": fw}
+            "k": fw["state"][:, 0], "fw": fw, "var": var, "ratio": ratio}
+
+
+def _ratio(p: Problem, U: np.ndarray, fw: dict[str, np.ndarray]) -> np.ndarray:
+    """Final silicate ratios to R of the fitted elements: mantle plus late component."""
+    if p.late_name is None:
+        return fw["mantle"]
+    K = p.Q.shape[-2]
+    return fw["mantle"] + U[:, K:K + 1] * p.q_late[None, p.fit_index]
+
+
+def _variance(p: Problem, U: np.ndarray) -> np.ndarray:
+    """Variance [dex^2] of each fitted element's residual: observation plus end-members."""
+    var = np.broadcast_to(p.sigma[None, :] ** 2, (U.shape[0], p.fit_index.size))
+    extra = _model_sigma(p, U, p.fit_index)
+    return var if extra is None else var + extra
+
+
+def _constraints(p: Problem, U: np.ndarray, fw: dict[str, np.ndarray],
+                 cmf_range: tuple[float, float] | None,
+                 isotopes: tuple[dict, ...]) -> np.ndarray:
+    """Nonlinear constraint values (>= 0 when met) of :func:`evaluate`, shape (B, c);
+    ``isotopes`` are the isotope systems with their per-block arrays for these rows."""
+    K = p.Q.shape[-2]
+    has_late = p.late_name is not None
+    sK = U[:, :K].sum(axis=1)
+    safe = np.where(sK > 0, sK, 1.0)
+    cons = []
+    with np.errstate(divide="ignore", invalid="ignore"):
+        if p.mantle_Fe is not None:
+            cons.append(fw["core_fe"] / np.maximum(fw["bulk_fe"], 1e-300))
+        if has_late:
+            # scaled by the bound, but not below 1e-3: a tiny bound must not turn
+            # rounding in the weights into a violation
+            cons.append((_v_max(p, fw["M_s"] / safe) - U[:, K])
+                        / max(p.late_max_fraction, 1e-3))
+        if cmf_range is not None:
+            cmf = fw["M_c"] / (fw["M_s"] + fw["M_c"])
+            cons.append(cmf - cmf_range[0])
+            cons.append(cmf_range[1] - cmf)
+    for iso in isotopes:
+        # |eps_planet(u) - eps_obs| <= n sigma_eff(u): nonlinear through the widening of
+        # the window by the end-members' uncertainties, so linearised with the rest
+        eps_pl = isotope_prediction(p, iso, U)
+        win = p.isotope_window_sigma * isotope_sigma(p, iso, U)
+        cons.append((win - (eps_pl - iso["value"])) / iso["sigma"])
+        cons.append((eps_pl - iso["value"] + win) / iso["sigma"])
+    return np.stack(cons, axis=1) if cons else np.zeros((U.shape[0], 0))
+
+
+def _variance_jacobian(p: Problem, U: np.ndarray) -> np.ndarray | None:
+    """d(variance)/d(block weight) (B, n_fit, K) of :func:`_variance`, or None.
+
+    The end-member term is ``E_i = num_i / mix_i**2`` with ``num_i = sum_k u_k**2 S_ki``
+    (``S_ki = (Q_ki s_ki)**2``) and ``mix_i = sum_k u_k Q_ki``:
+    ``dE_i/du_k = 2 u_k S_ki / mix_i**2 - 2 num_i Q_ki / mix_i**3``.
+    """
+    q_sig = getattr(p, "Q_sigma_dex", None)
+    if q_sig is None:
+        return None
+    K = p.Q.shape[-2]
+    fi = p.fit_index
+    Qf = p.Q[..., fi]
+    S = (Qf * np.asarray(q_sig)[..., fi]) ** 2
+    UK = U[:, :K]
+    if Qf.ndim == 2:
+        Qf = np.broadcast_to(Qf, (U.shape[0],) + Qf.shape)
+        S = np.broadcast_to(S, Qf.shape)
+    mix = np.einsum("bk,bkn->bn", UK, Qf)
+    num = np.einsum("bk,bkn->bn", UK * UK, S)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        dE = (2.0 * UK[:, :, None] * S / mix[:, None, :] ** 2
+              - 2.0 * (num / mix ** 3)[:, None, :] * Qf)
+    dE = np.where(np.isfinite(dE) & (mix[:, None, :] != 0), dE, 0.0)
+    return np.swapaxes(dE, 1, 2)
 
 
 def isotope_sigma(p: Problem, iso: dict, U: np.ndarray) -> np.ndarray:
@@ -400,81 +411,119 @@ def _jacobian(p: Problem, U: np.ndarray, TH: np.ndarray, base: dict[str, np.ndar
             dq = q[:, 1:1 + nc] - q[:, :1] + np.einsum("bcd,bdw->bcw", ds, dq_ds)
             b0 = fw0[key] if fw0[key].ndim == 2 else fw0[key][:, None]
             pert[key] = b0[:, None, :] + dq  # (B, nc, width)
-    # every column's forward quantities, the late weight's equal to the base
-    cols = list(range(K)) + list(range(m, n))
-    fw_cols = {}
-    for key in ("mantle", "core_fe", "M_s", "M_c"):
-        b0 = fw0[key] if fw0[key].ndim == 2 else fw0[key][:, None]
-        full = np.repeat(b0[:, None, :], n, axis=1)
-        full[:, cols] = pert[key]
-        fw_cols[key] = full.reshape(B * n, -1)
+    # d(final ratio)/dz of every column: the mantle's change over the step (blocks and
+    # volatility parameters), the late component's ratios for the late weight
+    fi = p.fit_index
+    cols = list(range(K)) + list(range(m, n))  # the columns that move the bulk
+    dratio = np.zeros((B, n, fi.size))
+    dratio[:, cols] = (pert["mantle"] - fw0["mantle"][:, None, :]) / hstep[:, cols, None]
+    if m > K:
+        dratio[:, K] = p.q_late[fi]
+    ratio = _ratio(p, U, fw0)
+    var = _variance(p, U)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        r_fit = (np.log10(ratio / p.q_ci[None, fi]) - p.y[None, :]) / np.sqrt(var)
+        Jr = dratio / (_LN10 * ratio * np.sqrt(var))[:, None, :]
+        dvar = _variance_jacobian(p, U)
+        if dvar is not None:
+            Jr[:, :K] -= np.swapaxes((r_fit / (2.0 * var))[:, :, None] * dvar, 1, 2)
+    # constraints: by difference of their values at the perturbed points
+    cons_fw = {key: None for key in ("core_fe", "bulk_fe", "M_s", "M_c")}
     for key in ("core_fe", "M_s", "M_c"):
-        fw_cols[key] = fw_cols[key][:, 0]
+        full = np.repeat(fw0[key][:, None], n, axis=1)
+        full[:, cols] = pert[key][:, :, 0]
+        cons_fw[key] = full.reshape(B * n)
     bulk_fe = np.repeat(a0[:, None, fe], n, axis=1)
     bulk_fe[:, cols] = A[:, :, fe]
-    fw_cols["bulk_fe"] = bulk_fe.reshape(B * n)
-    fw_cols["state"] = np.repeat(s, n, axis=0)
-    Zp = np.repeat(np.concatenate([U, TH], axis=1)[:, None, :], n, axis=1)
-    idx = np.arange(n)
-    Zp[:, idx, idx] += hstep
-    Zp = Zp.reshape(B * n, n)
-    pr = row_problem(p, np.repeat(np.arange(B), n))
-    ev = _misfit(pr, Zp[:, :m], fw_cols, cmf_range, restore)
-    denom = hstep[:, :, None]
-    Jr = (ev["r"].reshape(B, n, -1) - base["r"][:, None, :]) / denom
-    Jc = (ev["cons"].reshape(B, n, -1) - base["cons"][:, None, :]) / denom
+    cons_fw["bulk_fe"] = bulk_fe.reshape(B * n)
+    Zp = np.repeat(U[:, None, :], n, axis=1)
+    idx = np.arange(m)
+    Zp[:, idx, idx] += hstep[:, :m]
+    rows = np.repeat(np.arange(B), n)
+    iso = (row_problem(replace(p, Q=p.Q[..., :0], Q_sigma_dex=None), rows).isotopes
+           if p.isotopes else ())
+    cons = _constraints(p, Zp.reshape(B * n, m), cons_fw, cmf_range, iso)
+    c_base = (_constraints(p, U, fw0, cmf_range, p.isotopes) if restore
+              else base["cons"])
+    Jc = (cons.reshape(B, n, -1) - c_base[:, None, :]) / hstep[:, :, None]
+    if restore:
+        ok = np.isfinite(r_fit)  # nan_to_num: no slope where not finite
+        Jr = np.concatenate([1e-4 * np.where(ok[:, None, :], Jr, 0.0),
+                             1e3 * (c_base < 0.0)[:, None, :] * Jc], axis=2)
+        Jc = np.zeros((B, n, 0))
     return np.swapaxes(Jr, 1, 2), np.swapaxes(Jc, 1, 2)  # (B, nf, n), (B, c, n)
 
 
-def _step(U, TH, r0, Jr, c0, Jc, lam, free, fix, m, guess=None):
-    """One damped linearised step for every row; returns (U_new, TH_new, predicted)."""
-    Ju = Jr[:, :, :m]
-    Jt = Jr[:, :, m:] * free[:, None, :]
-    pp = Jt.shape[2]
-    r0f = r0 + np.einsum("bnj,bj->bn", Jr[:, :, m:], fix)
-    st = np.einsum("bnj,bnj->bj", Jt, Jt)
+def gram(Jr: np.ndarray, r0: np.ndarray) -> np.ndarray:
+    """Gram matrix ``[J r0]' [J r0]`` (B, n + 1, n + 1) of the residual Jacobian and the
+    residuals: every quantity of a linearised step is a function of it (and of the
+    constraint Jacobian), so a step costs O(n^3), not O(n_fit n^2)."""
+    X = np.concatenate([Jr, r0[:, :, None]], axis=2)
+    return np.matmul(np.swapaxes(X, 1, 2), X)
+
+
+def _step(U, TH, Gm, c0, Jc, lam, free, fix, m, guess=None):
+    """One damped linearised step for every row; returns (U_new, TH_new, predicted).
+
+    ``Gm`` is :func:`gram` of the residual Jacobian (u columns first) and residuals.
+    """
+    pp = TH.shape[1]
+    n = m + pp
+    Guu = Gm[:, :m, :m]
+    Gut = Gm[:, :m, m:n]
+    Gtt = Gm[:, m:n, m:n]
+    Gur = Gm[:, :m, n]
+    Gtr = Gm[:, m:n, n]
+    Grr = Gm[:, n, n]
+    F = free.astype(float)
+    # J_t = J_theta F (held parameters masked out); r0f = r0 + J_theta fix
+    Gtt_fix = np.matmul(Gtt, fix[:, :, None])[:, :, 0]
+    Jt_r0f = F * (Gtr + Gtt_fix)                       # J_t' r0f
+    Ju_r0f = Gur + np.matmul(Gut, fix[:, :, None])[:, :, 0]  # J_u' r0f
+    r0f_r0f = Grr + 2.0 * (fix * Gtr).sum(axis=1) + (fix * Gtt_fix).sum(axis=1)
+    JtJt = F[:, :, None] * Gtt * F[:, None, :]
+    st = np.diagonal(JtJt, axis1=1, axis2=2)
     st = np.where(st > 0, st, 1.0)
-    Mt = (np.einsum("bni,bnj->bij", Jt, Jt) + lam[:, None, None] * st[:, :, None]
-          * np.eye(pp) + (~free)[:, :, None] * np.eye(pp))
+    Mt = JtJt + (lam[:, None] * st + (~free))[:, :, None] * np.eye(pp)
     Minv = np.linalg.inv(Mt)
-    JtJu = np.einsum("bnj,bnk->bjk", Jt, Ju)
-    a0 = -np.einsum("bij,bj->bi", Minv, np.einsum("bnj,bn->bj", Jt, r0f))
-    A1 = -np.einsum("bij,bjk->bik", Minv, JtJu)
-    PJu = Ju + np.einsum("bnj,bjk->bnk", Jt, A1)          # P J_u
-    Pr0 = r0f + np.einsum("bnj,bj->bn", Jt, a0)           # P r0
+    JtJu = F[:, :, None] * np.swapaxes(Gut, 1, 2)      # J_t' J_u
+    a0 = -np.matmul(Minv, Jt_r0f[:, :, None])[:, :, 0]
+    A1 = -np.matmul(Minv, JtJu)
     # objective (r0 + Ju du)' P (r0 + Ju du) = du' Ju'P Ju du + 2 du' Ju'P r0 + r0'P r0
-    Hq = np.einsum("bnj,bnk->bjk", Ju, PJu)
-    gq = np.einsum("bnj,bn->bj", Ju, Pr0)
+    Hq = Guu + np.matmul(np.swapaxes(JtJu, 1, 2), A1)
+    gq = Ju_r0f + np.matmul(np.swapaxes(JtJu, 1, 2), a0[:, :, None])[:, :, 0]
+    rPr = r0f_r0f + (Jt_r0f * a0).sum(axis=1)
     su = np.trace(Hq, axis1=1, axis2=2) / m + 1e-300
     H = Hq + (lam * su)[:, None, None] * np.eye(m)
     # in u: du = u - u0  ->  u'Hu - 2 u'(H u0 - gq) + const
-    c = np.einsum("bij,bj->bi", H, U) - gq
-    const = np.einsum("bi,bij,bj->b", U, H, U) - 2 * np.einsum("bi,bi->b", U, gq)
+    HU = np.matmul(H, U[:, :, None])[:, :, 0]
+    c = HU - gq
+    const = (U * HU).sum(axis=1) - 2 * (U * gq).sum(axis=1)
     # nonlinear constraints linearised with the eliminated volatility step:
     # c0 + Jc_u du + Jc_t (a0 + A1 du + fix) >= 0
-    Jcu = Jc[:, :, :m] + np.einsum("bcj,bjk->bck", Jc[:, :, m:] * free[:, None, :], A1)
-    c_off = c0 + np.einsum("bcj,bj->bc", Jc[:, :, m:], a0 * free + fix)
+    Jct = Jc[:, :, m:] * free[:, None, :]
+    Jcu = Jc[:, :, :m] + np.matmul(Jct, A1)
+    c_off = c0 + np.matmul(Jc[:, :, m:], (a0 * free + fix)[:, :, None])[:, :, 0]
     G = -Jcu
-    h = c_off - np.einsum("bck,bk->bc", Jcu, U)
+    h = c_off - np.matmul(Jcu, U[:, :, None])[:, :, 0]
     if guess is None:
         guess = np.zeros((U.shape[0], m + G.shape[1]), dtype=bool)
     sol = solve_quadratic_batch(H, c, const, G, h, guess=guess)
     du = np.where(sol.feasible[:, None], sol.u - U, 0.0)
-    dt = (a0 + np.einsum("bik,bk->bi", A1, du)) * free + fix
-    quad = (np.einsum("bj,bjk,bk->b", du, Hq, du) + 2 * np.einsum("bj,bj->b", du, gq)
-            + np.einsum("bn,bn->b", r0f, Pr0))
+    dt = (a0 + np.matmul(A1, du[:, :, None])[:, :, 0]) * free + fix
+    quad = ((du * np.matmul(Hq, du[:, :, None])[:, :, 0]).sum(axis=1)
+            + 2 * (du * gq).sum(axis=1) + rPr)
     return U + du, TH + dt, quad, sol.feasible, sol.active
 
 
-def _linearised_step(U, TH, base, Jr, Jc, lam, bounds, m, guess=None):
+def _linearised_step(U, TH, Gm, c0, Jc, lam, bounds, m, guess=None):
     """A step with the volatility box handled by holding violators at their bound."""
     lo, hi = bounds
     B, pp = TH.shape
     free = np.ones((B, pp), dtype=bool)
     fix = np.zeros((B, pp))
     for _ in range(pp + 1):
-        Un, Tn, pred, ok, act = _step(U, TH, base["r"], Jr, base["cons"], Jc, lam, free,
-                                      fix, m, guess)
+        Un, Tn, pred, ok, act = _step(U, TH, Gm, c0, Jc, lam, free, fix, m, guess)
         out = free & ((Tn < lo) | (Tn > hi))
         if not out.any():
             break
@@ -594,7 +643,6 @@ def polish(p: Problem, U0: np.ndarray, TH0: np.ndarray, *,
         if idx.size == 0:
             break
         pr = row_problem(p, idx)
-        bsub = {"r": r[idx], "cons": cons[idx]}
         bnd = (bounds[0][idx], bounds[1][idx])
         # a row whose last step was rejected is still at the same point: its Jacobian
         # is the one already computed (only the damping changes)
@@ -605,14 +653,14 @@ def polish(p: Problem, U0: np.ndarray, TH0: np.ndarray, *,
                                     "fw": {key: v[need] for key, v in fw.items()}},
                                    settings, cmf_range, bounds[1][need], restore)
             if J_r is None:
-                J_r = np.zeros((B,) + Jr_n.shape[1:])
+                J_r = np.zeros((B, Jr_n.shape[2] + 1, Jr_n.shape[2] + 1))
                 J_c = np.zeros((B,) + Jc_n.shape[1:])
-            J_r[need], J_c[need] = Jr_n, Jc_n
+            J_r[need], J_c[need] = gram(Jr_n, r[need]), Jc_n
             stale[need] = False
         Jr, Jc = J_r[idx], J_c[idx]
         g_act = None if act_sets is None else act_sets[idx]
-        Un, Tn, _pred, ok, act = _linearised_step(U[idx], TH[idx], bsub, Jr, Jc, lam[idx],
-                                                  bnd, m, g_act)
+        Un, Tn, _pred, ok, act = _linearised_step(U[idx], TH[idx], Jr, cons[idx], Jc,
+                                                  lam[idx], bnd, m, g_act)
         if act_sets is None:
             act_sets = np.zeros((B, act.shape[1]), dtype=bool)
         act_sets[idx] = act
@@ -654,7 +702,8 @@ def first_order_residual(p: Problem, U: np.ndarray, TH: np.ndarray, *,
     pr = row_problem(p, np.arange(B))
     base = evaluate(pr, U, TH, cmf_range=cmf_range)
     Jr, Jc = _jacobian(pr, U, TH, base, settings, cmf_range, bounds[1])
-    _, _, pred, ok, _ = _linearised_step(U, TH, base, Jr, Jc, np.full(B, 1e-12), bounds, m)
+    _, _, pred, ok, _ = _linearised_step(U, TH, gram(Jr, base["r"]), base["cons"], Jc,
+                                         np.full(B, 1e-12), bounds, m)
     return np.where(ok, np.maximum(base["chi2"] - pred, 0.0), np.nan)
 
 
