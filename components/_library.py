@@ -17,6 +17,7 @@ import periodictable
 
 from ._tables import check_composition_frame, read_csv_checked, read_header
 from .exceptions import InputError
+from .units import PLAUSIBLE
 
 __all__ = [
     "Component",
@@ -202,7 +203,8 @@ def _check_sources(keys: pd.Series, file: str) -> None:
 
 def _component_from_file(path: Path, *, require_sources: bool, name: str | None = None,
                          kind: str | None = None) -> Component:
-    meta = read_header(path)
+    meta = read_header(path, unique=("name", "kind", "description", "source",
+                                     *ISOTOPE_HEADER_KEYS))
     df = read_csv_checked(path, ["element", "value", "unit"], what="component")
     file = str(path)
     parsed = check_composition_frame(df, file=file, allow_oxides=not require_sources,
@@ -225,6 +227,13 @@ def _component_from_file(path: Path, *, require_sources: bool, name: str | None 
             except ValueError as err:
                 raise InputError(f"give '# {q}: value 1-sigma' (two numbers)", file=file,
                                  field=q, value=meta[q]) from err
+            # the same declared ranges for the library's files and a user's
+            for v, key, what in ((value, "isotope_value", "anomaly"),
+                                 (sigma, "isotope_sigma", "1-sigma")):
+                lim = PLAUSIBLE[key]
+                if not lim.contains(v):
+                    raise InputError(f"the {what} lies outside {lim.describe()}: "
+                                     f"{lim.reason}", file=file, field=q, value=v)
             iso[q] = (value, sigma)
     return Component(
         name=name or meta.get("name") or path.stem,
@@ -417,8 +426,19 @@ def isotopes() -> pd.DataFrame:
                           what="isotope anomalies")
     for c in ("body", "quantity", "unit", "source"):
         df[c] = df[c].str.strip()
-    df["value"] = pd.to_numeric(df["value"]).astype(float)
-    df["uncertainty"] = pd.to_numeric(df["uncertainty"].replace("", np.nan)).astype(float)
+    for col, key in (("value", "isotope_value"), ("uncertainty", "isotope_sigma")):
+        lim = PLAUSIBLE[key]
+        num = pd.to_numeric(df[col].str.strip().replace("", np.nan),
+                            errors="coerce").astype(float)
+        for i in np.flatnonzero(~(df[col].str.strip() == "").to_numpy()):
+            if not lim.contains(float(num.iloc[i])):
+                raise InputError(f"not a number within {lim.describe()}: {lim.reason}",
+                                 file=str(path), row=i + 2, field=col, value=df[col].iloc[i])
+        if col == "value" and num.isna().any():
+            i = int(np.flatnonzero(num.isna().to_numpy())[0])
+            raise InputError("every anomaly needs a value", file=str(path), row=i + 2,
+                             field=col)
+        df[col] = num
     return df
 
 

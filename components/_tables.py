@@ -10,6 +10,7 @@ from __future__ import annotations
 import csv
 import math
 import os
+import re
 import stat
 from pathlib import Path
 
@@ -27,6 +28,7 @@ from .units import (
 )
 
 __all__ = ["read_header", "read_csv_checked", "read_csv_rows", "read_text_checked",
+           "parse_decimal",
            "check_composition_frame", "ParsedComposition", "CsvRows"]
 
 # Row numbers in messages count the header line as row 1 and data from row 2, as a
@@ -97,13 +99,23 @@ def read_text_checked(path: str | Path, *, what: str,
     return text
 
 
-def read_header(path: str | Path) -> dict[str, str]:
+def read_header(path: str | Path, *, unique: tuple[str, ...] = ()) -> dict[str, str]:
     """Return the ``# key: value`` metadata lines at the top of a CSV file.
 
     Blank lines among them are skipped; the first other line ends the header.
+
+    Parameters
+    ----------
+    path : str or Path
+        The CSV file.
+    unique : tuple of str
+        Keys that may appear once only (``name``, an isotope anomaly...): a second line
+        with such a key is an error, since silently keeping one of the two values would
+        hide which one is used.
     """
     meta: dict[str, str] = {}
-    for line in read_text_checked(path, what="CSV").splitlines():
+    seen: dict[str, int] = {}
+    for n, line in enumerate(read_text_checked(path, what="CSV").splitlines(), start=1):
         if not line.strip():
             continue
         if not line.startswith("#"):
@@ -111,7 +123,13 @@ def read_header(path: str | Path) -> dict[str, str]:
         body = line[1:].strip()
         if ":" in body:
             key, value = body.split(":", 1)
-            meta[key.strip()] = value.strip()
+            key = key.strip()
+            if key in unique and key in seen:
+                raise InputError(f"the header line '# {key}:' appears twice (lines "
+                                 f"{seen[key]} and {n}); keep one", file=str(path),
+                                 field=key, value=value.strip())
+            seen.setdefault(key, n)
+            meta[key] = value.strip()
     return meta
 
 
@@ -206,6 +224,32 @@ def read_csv_checked(path: str | Path, required: list[str], *, what: str) -> pd.
     return tab.frame()
 
 
+#: A number as tables write it: ASCII digits, an optional sign, decimal point and
+#: exponent. Python's float() also takes "1_000", full-width digits and "infinity";
+#: none of them is a table value, so they are refused rather than read.
+_DECIMAL = re.compile(r"[+-]?(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?", re.ASCII)
+_NON_FINITE = {"nan", "+nan", "-nan", "inf", "+inf", "-inf", "infinity", "+infinity",
+               "-infinity"}
+
+
+def parse_decimal(value: object) -> float:
+    """A table cell as a float: a plain decimal number, or nan/inf spelled out.
+
+    Raises
+    ------
+    ValueError
+        For anything else (``1_000``, full-width digits, ``0x10``, ``1,5``...).
+    """
+    if isinstance(value, bool):
+        raise ValueError(f"not a number: {value!r}")
+    if isinstance(value, int | float):
+        return float(value)
+    text = str(value).strip()
+    if _DECIMAL.fullmatch(text) or text.lower() in _NON_FINITE:
+        return float(text)
+    raise ValueError(f"not a number: {value!r}")
+
+
 def _number(text: str, *, file: str, row: int, field: str, allow_empty: bool) -> float:
     text = text.strip() if isinstance(text, str) else text
     if text == "" or text is None:
@@ -213,7 +257,7 @@ def _number(text: str, *, file: str, row: int, field: str, allow_empty: bool) ->
             return math.nan
         raise InputError("value is missing", file=file, row=row, field=field)
     try:
-        value = float(text)
+        value = parse_decimal(text)
     except (TypeError, ValueError) as err:
         raise InputError("not a number", file=file, row=row, field=field, value=text) from err
     if not math.isfinite(value):

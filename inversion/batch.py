@@ -67,6 +67,19 @@ _FLAG_COLUMNS = ("row", "star_id", "status", "reason", "solar_ratio", "ci_refere
                  "not_used", "infeasible_draw_fraction", "n_draws")
 
 
+def _alive(pid: int) -> bool:
+    """Whether process ``pid`` runs (this one counts as running)."""
+    if pid == os.getpid():
+        return True
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    return True
+
+
 def partition_name(i: int) -> str:
     """File name of partition ``i``."""
     return _PART.format(i)
@@ -448,7 +461,17 @@ def run_batch(catalogue: str | Path, out: str | Path, settings: StarSettings, *,
                              "continue it or choose another --out", file=str(out))
         import json
 
-        old = json.loads(run_file.read_text()) if run_file.exists() else {}
+        from components._tables import read_text_checked
+
+        old = {}
+        if run_file.exists():
+            try:
+                old = json.loads(read_text_checked(run_file, what="batch run record"))
+            except (json.JSONDecodeError, RecursionError):
+                old = None
+            if not isinstance(old, dict):
+                raise InputError("the run record is damaged (not a JSON object); start "
+                                 "again in another --out", file=str(run_file))
         if {k: old.get(k) for k in fp} != _jsonable(fp):
             raise InputError("--resume with another catalogue or other settings than the "
                              "run in this folder; use the same options or another --out",
@@ -461,8 +484,12 @@ def run_batch(catalogue: str | Path, out: str | Path, settings: StarSettings, *,
             component_names=["CI", "BSE_MS95"],
             extra={"catalogue": str(Path(catalogue).resolve()), "command": "batch"})})
         os.replace(tmp, run_file)
-    for stale in pdir.glob(".part-*.parquet.tmp-*"):  # left by a run killed while writing
-        stale.unlink(missing_ok=True)
+    # temporary files of runs killed while writing (partitions, run.json, summary.json,
+    # failed.csv); those of a process still running are left alone
+    for stale in [*pdir.glob(".part-*.parquet.tmp-*"), *out.glob(".*.tmp-*")]:
+        pid = stale.name.rsplit("-", 1)[-1]
+        if stale.is_file() and not (pid.isdigit() and _alive(int(pid))):
+            stale.unlink(missing_ok=True)
     parts = list(_chunks(rows, partition_size))
     todo = [(i, r) for i, r in parts if not (pdir / partition_name(i)).exists()]
     skipped = [(i, r) for i, r in parts if (pdir / partition_name(i)).exists()]

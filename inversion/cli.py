@@ -394,6 +394,9 @@ def _rank(parser: argparse.ArgumentParser):
         workers = args.workers if args.workers is not None else os.cpu_count() or 1
         if workers < 1:
             raise InputError("must be at least 1", field="--workers", value=args.workers)
+        if args.top < 1:
+            raise InputError("must be at least 1 (rows to print)", field="--top",
+                             value=args.top)
         ranking = screen(case, workers=workers, progress=True)
         table = ranking.table
         with atomic_folder(args.out) as tmp:
@@ -482,6 +485,7 @@ def main(argv: list[str] | None = None) -> int:
         return EXIT_INTERRUPTED
     if not getattr(args, "command", None):
         parser.print_help()
+        print("planetmix: error: give a command (see 'planetmix --help')", file=sys.stderr)
         return EXIT_INPUT
     try:
         _check_common(args)
@@ -495,16 +499,19 @@ def main(argv: list[str] | None = None) -> int:
     except KeyboardInterrupt:
         print("planetmix: interrupted; no partial output was left", file=sys.stderr)
         return EXIT_INTERRUPTED
-    except (IsADirectoryError, NotADirectoryError, PermissionError, FileExistsError) as err:
-        # a path the user gave cannot be written or read as asked
-        print(f"planetmix: error: {err.filename}: {err.strerror}", file=sys.stderr)
+    except OSError as err:
+        if err.filename is None or isinstance(err, BrokenPipeError):
+            if isinstance(err, BrokenPipeError):
+                # the reader went away (e.g. `| head`): stop quietly; point stdout at
+                # /dev/null so that the interpreter's final flush does not fail again
+                devnull = os.open(os.devnull, os.O_WRONLY)
+                os.dup2(devnull, sys.stdout.fileno())
+                return EXIT_BROKEN_PIPE
+            raise
+        # a path the user gave cannot be read or written as asked (a folder given for a
+        # file, no permission, a name too long, an --out under /proc...)
+        print(f"planetmix: error: {err.filename}: {err.strerror or err}", file=sys.stderr)
         return EXIT_INPUT
-    except BrokenPipeError:
-        # the reader went away (e.g. `| head`): stop quietly; point stdout at /dev/null
-        # so that the interpreter's final flush does not fail again
-        devnull = os.open(os.devnull, os.O_WRONLY)
-        os.dup2(devnull, sys.stdout.fileno())
-        return EXIT_BROKEN_PIPE
 
 
 def _check_common(args: argparse.Namespace) -> None:

@@ -116,7 +116,11 @@ def resolve_composition(name: str) -> components.Component:
     if path.suffix.lower() == ".csv" or path.exists():
         if not path.is_file():
             raise InputError("composition file not found", file=str(path))
-        return components.read_component(path)
+        from .case import _check_user_component
+
+        c = components.read_component(path)
+        _check_user_component(c, str(path), "TABLE")  # not named like a library table
+        return c
     raise InputError(f"not a library table and not a CSV file; the library holds "
                      f"{components.available()}", field="TABLE", value=name)
 
@@ -251,18 +255,47 @@ def read_fit_trend(folder: str | Path) -> FitTrend:
     if not path.is_file():
         raise InputError("not a fit result folder (no fit.json)", file=str(folder),
                          field="--fit")
-    d = json.loads(path.read_text(encoding="utf-8"))
+    from components._tables import read_csv_checked, read_text_checked
+
+    # a result file read back goes through the input door: it may be damaged or edited
+    try:
+        d = json.loads(read_text_checked(path, what="fit result"))
+    except (json.JSONDecodeError, RecursionError) as err:
+        raise InputError(f"not valid JSON ({' '.join(str(err).split()) or 'nested too deeply'}"
+                         "); the result folder is damaged: rerun planetmix fit",
+                         file=str(path), field="--fit") from None
+    if not isinstance(d, dict):
+        raise InputError("not a fit result (no JSON object)", file=str(path), field="--fit")
     if not str(d.get("status", "")).startswith("optimal"):
         raise InputError("the fit in this folder is infeasible and has no trend",
                          file=str(path), field="status", value=d.get("status"))
-    vol = dict(d.get("volatility") or {})
+    vol = d.get("volatility")
+    vol = dict(vol) if isinstance(vol, dict) else {}
     form = str(vol.pop("form", ""))
     if form not in FORMS:
         raise InputError("unknown volatility form in the fit", file=str(path),
                          field="volatility.form", value=form)
-    prov = d.get("provenance") or {}
-    resid = pd.read_csv(folder / "residuals.csv")
-    return FitTrend(form=form, params={k: float(vol[k]) for k in FORMS[form].params},
+    params = {}
+    for k in FORMS[form].params:
+        v = vol.get(k)
+        if isinstance(v, bool) or not isinstance(v, int | float) or not np.isfinite(v):
+            raise InputError(f"parameter {k} of the {form} form is missing or not a finite "
+                             "number", file=str(path), field=f"volatility.{k}", value=v)
+        params[k] = float(v)
+    prov = d.get("provenance") if isinstance(d.get("provenance"), dict) else {}
+    rfile = folder / "residuals.csv"
+    resid = read_csv_checked(rfile, ["element", "tc50", "model"], what="fit residuals")
+    for col in ("tc50", "model"):
+        raw = resid[col].astype(str).str.strip()
+        num = pd.to_numeric(raw.where(raw != ""), errors="coerce")
+        bad = (raw != "") & ~np.isfinite(num.to_numpy(float))
+        if bad.any():
+            i = int(np.flatnonzero(bad.to_numpy())[0])
+            raise InputError("not a finite number; the result folder is damaged: rerun "
+                             "planetmix fit", file=str(rfile), row=i + 2, field=col,
+                             value=raw.iloc[i])
+        resid[col] = num.astype(float)
+    return FitTrend(form=form, params=params,
                     reference=str(prov.get("reference_element", "Mg")),
                     condensation_table=str(prov.get("condensation_table", "lodders2003")),
                     label=str(d.get("title") or folder.name),
@@ -592,6 +625,20 @@ def _diagram(parser: argparse.ArgumentParser):
 
     def run(args: argparse.Namespace) -> int:
         check_option("figure width", args.width, FIGURE_WIDTHS, field="--width")
+        from .case import reference_elements
+
+        check_option("reference element", args.reference, reference_elements(),
+                     field="--reference")
+        from matplotlib.cbook import is_math_text
+
+        if args.title is not None and is_math_text(args.title):
+            from matplotlib.mathtext import MathTextParser
+
+            try:
+                MathTextParser("path").parse(args.title)
+            except ValueError:
+                raise InputError("the $...$ part is not valid math text; escape a dollar "
+                                 "sign as \\$", field="--title", value=args.title) from None
         if Path(args.out).suffix.lower() not in _FORMATS:
             raise InputError(f"unknown figure format; use one of {sorted(_FORMATS)}",
                              file=args.out, field="--out", value=Path(args.out).suffix)

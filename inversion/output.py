@@ -26,7 +26,8 @@ import numpy as np
 
 import components
 
-__all__ = ["atomic_folder", "check_out_folder", "clean_stale", "RESULT_MARK", "write_json",
+__all__ = ["atomic_folder", "atomic_file", "check_out_folder", "clean_stale",
+           "clean_stale_files", "RESULT_MARK", "write_json",
            "provenance", "case_provenance", "to_jsonable",
            "package_version"]
 
@@ -183,6 +184,65 @@ def atomic_folder(out: str | Path) -> Iterator[Path]:
     finally:
         if tmp.exists():
             shutil.rmtree(tmp, ignore_errors=True)
+
+
+@contextlib.contextmanager
+def atomic_file(target: str | Path) -> Iterator[Path]:
+    """Yield a temporary path beside ``target``; on success it replaces ``target``.
+
+    The temporary file is ``.NAME.tmp-PID-*`` in the target's folder; one
+    :func:`os.replace` puts it in place, so ``target`` holds the earlier file or the new
+    one, never a part. On an error or a Ctrl-C the temporary file is removed; one left by
+    a killed run (its process no longer runs) is removed by the next run writing the
+    same target (:func:`clean_stale_files`).
+    """
+    target = Path(os.path.abspath(target))
+    target.parent.mkdir(parents=True, exist_ok=True)
+    clean_stale_files(target)
+    fd, name = tempfile.mkstemp(prefix=f".{target.name}.tmp-{os.getpid()}-",
+                                dir=target.parent)
+    os.close(fd)
+    tmp = Path(name)
+    try:
+        mask = os.umask(0)
+        os.umask(mask)
+        os.chmod(tmp, 0o666 & ~mask)
+        yield tmp
+        os.replace(tmp, target)
+    finally:
+        if os.path.lexists(tmp):
+            tmp.unlink()
+
+
+def clean_stale_files(target: str | Path) -> list[Path]:
+    """Remove the temporary files of killed runs beside ``target``; returns them.
+
+    Removed: ``.NAME.tmp-PID-*`` (:func:`atomic_file`) whose process no longer runs,
+    and the report's older temporary files ``.report.*.html`` of the same folder that
+    are over an hour old (they carry no process id).
+    """
+    import time
+
+    target = Path(os.path.abspath(target))
+    removed: list[Path] = []
+    if not target.parent.is_dir():
+        return removed
+    pat = _side_name(target, "tmp")
+    for side in target.parent.glob(f".{glob_escape(target.name)}.tmp-*"):
+        m = pat.fullmatch(side.name)
+        if m and not _alive(int(m.group(1))) and side.is_file():
+            side.unlink(missing_ok=True)
+            removed.append(side)
+    now = time.time()
+    for side in target.parent.glob(".report.*.html"):
+        try:
+            old = now - side.lstat().st_mtime > 3600
+        except OSError:
+            continue
+        if old and side.is_file():
+            side.unlink(missing_ok=True)
+            removed.append(side)
+    return removed
 
 
 def provenance(*, tables: list[str], extra: dict[str, Any] | None = None,

@@ -47,6 +47,7 @@ import numpy as np
 import pandas as pd
 
 import components
+from components._tables import parse_decimal
 from components.units import PLAUSIBLE
 
 from . import kernel
@@ -318,7 +319,7 @@ def check_star_values(star_id: str, values: dict[str, Any], errors: dict[str, An
                 isinstance(raw, float) and math.isnan(raw)):
             continue
         try:
-            v = float(raw)
+            v = parse_decimal(raw)
         except (TypeError, ValueError):
             raise InputError(f"[{el}/H] is not a number", file=file, row=row, field=el,
                              value=raw) from None
@@ -335,7 +336,7 @@ def check_star_values(star_id: str, values: dict[str, Any], errors: dict[str, An
             raise InputError(f"missing uncertainty for [{el}/H]", file=file, row=row,
                              field=f"{el}_err", value=e_raw)
         try:
-            e = float(e_raw)
+            e = parse_decimal(e_raw)
         except (TypeError, ValueError):
             raise InputError(f"uncertainty of [{el}/H] is not a number", file=file, row=row,
                              field=f"{el}_err", value=e_raw) from None

@@ -42,6 +42,13 @@ def _settings(args: argparse.Namespace):
                                                 and args.planet_mass_kg > 0):
         raise InputError("must be a positive mass in kg", field="--planet-mass-kg",
                          value=args.planet_mass_kg)
+    if args.planet_mass_kg is not None:
+        from components.units import check_in_range
+
+        check_in_range(args.planet_mass_kg, "planet_mass_kg", field="--planet-mass-kg")
+    if getattr(args, "star_id", None) is not None and not args.star_id.strip():
+        raise InputError("must not be empty (leave the option out to use the file name)",
+                         field="--star-id", value=args.star_id)
     if args.mantle_FeO_wt is not None and not 0 < args.mantle_FeO_wt < 60:
         raise InputError("must be between 0 and 60 wt%", field="--mantle-FeO-wt",
                          value=args.mantle_FeO_wt)

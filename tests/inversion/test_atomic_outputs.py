@@ -11,6 +11,7 @@ from __future__ import annotations
 import json
 import os
 import random
+import re
 import shutil
 import signal
 import subprocess
@@ -18,6 +19,7 @@ import sys
 import time
 from pathlib import Path
 
+import pandas as pd
 import pytest
 
 from inversion.cli import main
@@ -321,3 +323,227 @@ def test_kill_9_during_rank_leaves_whole_results(tmp_path: Path) -> None:
     assert _rank_folder_state(out) == "run B"
     assert sorted(p.name for p in tmp_path.glob(".r.*")) == []
     assert killed >= 3
+
+
+# --------------------------------------------------------------------------- Ctrl-C early
+def _console_script() -> list[str]:
+    """The installed ``planetmix`` command (its first module is inversion.entry)."""
+    script = Path(sys.executable).parent / "planetmix"
+    if script.exists():
+        return [str(script)]
+    return [sys.executable, "-c", "import sys; from inversion.entry import main; "
+            "sys.exit(main())"]
+
+
+def _startup_only(err: str) -> bool:
+    """A Ctrl-C inside the interpreter's own start-up (site, before any planetmix code
+    runs): its traceback shows no frame of planetmix's files, or nothing at all."""
+    return not re.search(r"/(inversion|components)/[^/]+\.py", err)
+
+
+def test_ctrl_c_while_the_command_loads_gives_one_line_and_130(tmp_path: Path) -> None:
+    """SIGINT at moments spread over the command's loading (numpy, pandas, the solver
+    libraries: the first second) and its start: exit 130 with one line, or the finished
+    result, never a traceback from planetmix's code."""
+    shutil.copy(TEMPLATES / "star_abundances.csv", tmp_path / "s.csv")
+    interrupted = 0
+    for k, delay in enumerate((0.25, 0.35, 0.5, 0.7, 0.9, 1.2)):
+        out = tmp_path / f"o{k}"
+        p = subprocess.Popen([*_console_script(), "star", "s.csv", "--out", out.name,
+                              "--draws", "20"], cwd=tmp_path, stdout=subprocess.DEVNULL,
+                             stderr=subprocess.PIPE)
+        time.sleep(delay)
+        p.send_signal(signal.SIGINT)
+        err = p.communicate(timeout=120)[1].decode()
+        if p.returncode == 0:
+            assert (out / "planet.json").exists()
+            continue
+        if p.returncode == 130:
+            assert err.count("\n") == 1 and err.startswith("planetmix: interrupted"), err
+            assert not out.exists() and list(tmp_path.glob(f".{out.name}.*")) == []
+            interrupted += 1
+            continue
+        # only the interpreter's own start-up (tens of ms) is left unhandled
+        assert _startup_only(err) and p.returncode in (1, -signal.SIGINT), (delay, err)
+    assert interrupted >= 3
+
+
+# --------------------------------------------------------------------------- batch kill -9
+def _catalogue(folder: Path, n: int) -> Path:
+    """The template catalogue's rows repeated under new ids (n stars)."""
+    lines = (TEMPLATES / "catalog.csv").read_text(encoding="utf-8").splitlines()
+    head = [ln for ln in lines if ln.startswith("star_id")][0]
+    rows = [ln for ln in lines if ln.startswith("demo-")]
+    body = [f"s{i:03d}," + rows[i % len(rows)].split(",", 1)[1] for i in range(n)]
+    path = folder / "cat.csv"
+    path.write_text(head + "\n" + "\n".join(body) + "\n", encoding="utf-8")
+    return path
+
+
+def _batch_table(out: Path) -> pd.DataFrame:
+    """Every partition of a batch folder, read whole (a truncated file fails here)."""
+    parts = sorted((out / "parts").glob("part-*.parquet"))
+    return pd.concat([pd.read_parquet(f) for f in parts], ignore_index=True) if parts \
+        else pd.DataFrame()
+
+
+def _batch_kill_trials(tmp_path: Path, n_kills: int, seed: int) -> int:
+    cat = _catalogue(tmp_path, 24)
+    args = ["batch", cat.name, "--workers", "1", "--draws", "30", "--partition-size", "4",
+            "--seed", "3"]
+    t0 = time.perf_counter()
+    done = _run([*args, "--out", "ref"], tmp_path)
+    duration = time.perf_counter() - t0
+    assert done.returncode == 0, done.stderr
+    ref = _batch_table(tmp_path / "ref").sort_values("row").reset_index(drop=True)
+    assert len(ref) == 24 and ref["row"].is_unique
+    rng = random.Random(seed)
+    killed = 0
+    out = tmp_path / "b"
+    for i in range(n_kills):
+        frac = rng.uniform(0.4, 1.0) if i < n_kills - 1 else 0.6
+        rc = _kill_at([*args, "--out", "b", "--resume"], tmp_path, frac * duration)
+        killed += rc == -signal.SIGKILL
+        if out.exists():
+            got = _batch_table(out)  # every partition on disk is whole
+            assert got.empty or got["row"].is_unique
+    done = _run([*args, "--out", "b", "--resume"], tmp_path)
+    assert done.returncode == 0, done.stderr
+    got = _batch_table(out).sort_values("row").reset_index(drop=True)
+    # each star exactly once, and the same numbers as the uninterrupted run
+    pd.testing.assert_frame_equal(got, ref)
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["complete"] and summary["catalogue_rows"] == 24
+    left = [p.name for p in out.rglob("*") if ".tmp-" in p.name]
+    assert left == [], left
+    return killed
+
+
+def test_kill_9_during_batch_resumes_to_the_uninterrupted_result(tmp_path: Path) -> None:
+    assert _batch_kill_trials(tmp_path, n_kills=2, seed=2) >= 1
+
+
+@pytest.mark.slow
+def test_kill_9_during_batch_many_moments(tmp_path: Path) -> None:
+    assert _batch_kill_trials(tmp_path, n_kills=8, seed=19) >= 4
+
+
+# --------------------------------------------------------------------------- result read back
+@pytest.fixture(scope="module")
+def star_folder(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    d = tmp_path_factory.mktemp("star")
+    shutil.copy(TEMPLATES / "star_abundances.csv", d / "s.csv")
+    assert main(["star", str(d / "s.csv"), "--out", str(d / "res"), "--draws", "20"]) == 0
+    return d / "res"
+
+
+@pytest.mark.parametrize("damage", ["iron_split", "star_abundances_dex", "title", "flags",
+                                    "provenance", "draws-utf16", "bom"])
+def test_damaged_result_folder_gives_one_error_line(star_folder: Path, tmp_path: Path,
+                                                    damage: str) -> None:
+    """Class: report on a result folder whose files were damaged or edited (a value of
+    the wrong kind, a draws table in UTF-16) ended in KeyError/TypeError/
+    UnicodeDecodeError tracebacks or read the damaged table; a BOM is accepted."""
+    from inversion.report import build_report
+
+    folder = tmp_path / "res"
+    shutil.copytree(star_folder, folder)
+    pj = folder / "planet.json"
+    meta = json.loads(pj.read_text(encoding="utf-8"))
+    if damage == "bom":
+        pj.write_bytes(b"\xef\xbb\xbf" + pj.read_bytes())
+        out = build_report(folder, out=tmp_path / "r.html")
+        assert out.read_text(encoding="utf-8").rstrip().endswith("</html>")
+        return
+    if damage == "draws-utf16":
+        draws = folder / "planet_draws.csv"
+        draws.write_bytes(draws.read_text(encoding="utf-8").encode("utf-16-le"))
+    else:
+        # values of the wrong kind (each crashed the report before: AttributeError,
+        # TypeError)
+        meta[damage] = {"title": 5, "provenance": [1, "y"]}.get(damage, "banana")
+        pj.write_text(json.dumps(meta), encoding="utf-8")
+    with pytest.raises(InputError) as err:
+        build_report(folder, out=tmp_path / "r.html")
+    assert str(folder) in str(err.value) and "\n" not in str(err.value)
+    assert not (tmp_path / "r.html").exists()
+    assert [p.name for p in tmp_path.glob(".r.html*")] == []
+
+
+def test_atomic_file_replaces_whole_and_cleans_killed_runs(tmp_path: Path) -> None:
+    """A killed report's temporary file (older layout ``.report.*.html``, or
+    ``.NAME.tmp-PID-*`` of a dead process) is removed by the next write there; a
+    failure keeps the earlier file."""
+    from inversion.output import atomic_file
+
+    target = tmp_path / "r.html"
+    with atomic_file(target) as tmp:
+        tmp.write_text("one")
+    dead = _dead_pid()
+    stale = tmp_path / f".r.html.tmp-{dead}-abc"
+    stale.write_text("half")
+    legacy = tmp_path / ".report.x1y2.html"
+    legacy.write_text("half")
+    hour = time.time() - 7200
+    os.utime(legacy, (hour, hour))
+    live = tmp_path / f".r.html.tmp-{os.getpid()}-zzz"
+    live.write_text("being written")
+    with pytest.raises(RuntimeError), atomic_file(target) as tmp:
+        tmp.write_text("two, half")
+        raise RuntimeError
+    assert target.read_text() == "one"
+    assert not stale.exists() and not legacy.exists() and live.exists()
+    live.unlink()
+    with atomic_file(target) as tmp:
+        tmp.write_text("three")
+    assert target.read_text() == "three"
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["r.html"]
+
+
+# --------------------------------------------------------------------------- sample kill -9
+SAMPLE_FILES = {"sample.json", "planet.json", "diagnostics.json", "summary.csv",
+                "outliers.csv", "planet_draws.parquet", "posterior.nc", RESULT_MARK}
+
+
+def _sample_folder_state(out: Path) -> str | None:
+    """None when ``out`` is absent; else the run title, after checking the folder holds
+    exactly one complete sample result."""
+    if not out.exists():
+        return None
+    names = {p.name for p in out.iterdir()}
+    assert names == SAMPLE_FILES, names
+    title = json.loads((out / "sample.json").read_text())["title"]
+    assert json.loads((out / "planet.json").read_text())["title"] == title
+    return title
+
+
+@pytest.mark.slow
+def test_kill_9_during_sample_leaves_whole_results(tmp_path: Path) -> None:
+    """SIGKILL at random moments of ``planetmix sample`` (most of its time is the
+    sampler's compilation and the chains; the kills are biased to the second half,
+    where the result is written and moved into place): the folder holds the earlier
+    whole result or the new one, never a mixture, and a rerun succeeds and clears what
+    the killed runs left. Short chains: the gate may fail (exit 4), which still writes
+    the whole result."""
+    rng = random.Random(23)
+    cases = {t: _case(tmp_path, t) for t in ("A", "B")}
+    args = ["--draws", "20", "--tune", "20", "--chains", "2", "--quiet"]
+    out = tmp_path / "s"
+    t0 = time.perf_counter()
+    done = _run(["sample", str(cases["A"]), "--out", "s", *args], tmp_path)
+    duration = time.perf_counter() - t0
+    assert done.returncode in (0, 4), done.stderr
+    assert _sample_folder_state(out) == "run A"
+    killed = 0
+    for i in range(3):
+        title = "B" if i % 2 == 0 else "A"
+        before = _sample_folder_state(out)
+        rc = _kill_at(["sample", str(cases[title]), "--out", "s", *args], tmp_path,
+                      rng.uniform(0.5, 1.0) * duration)
+        killed += rc == -signal.SIGKILL
+        assert _sample_folder_state(out) in (before, f"run {title}")
+    done = _run(["sample", str(cases["B"]), "--out", "s", *args], tmp_path)
+    assert done.returncode in (0, 4), done.stderr
+    assert _sample_folder_state(out) == "run B"
+    assert sorted(p.name for p in tmp_path.glob(".s.*")) == []
+    assert killed >= 1

@@ -1,5 +1,6 @@
-"""Mutation fuzzing of every input door: target CSV, component CSV, case TOML, star CSV
-and catalogue CSV.
+"""Mutation fuzzing of every input door: target CSV, component CSV, case TOML, star CSV,
+catalogue CSV, and a fit result read back (fit.json and residuals.csv, as
+``star --pattern`` and ``diagram --fit`` read them).
 
 Each example starts from a template of ``inversion/templates`` and applies one mutation.
 Some mutations plant a value known to be invalid (``must_fail``: 1e30 wt%, ``MgO2``,
@@ -32,7 +33,7 @@ import pytest
 
 TEMPLATES = Path(__file__).resolve().parents[2] / "inversion" / "templates"
 
-#: Examples per input kind in ``make test`` (5 kinds: 2,000 in total).
+#: Examples per input kind in ``make test`` (6 kinds: 2,400 in total).
 FAST_PER_KIND = 400
 #: Examples per input kind behind ``-m slow``.
 SLOW_PER_KIND = 4000
@@ -344,6 +345,57 @@ def gen_case(rng: random.Random) -> Example:
                    must_pass=True, extra=extra)
 
 
+RESULT_FIT = {"title": "fuzz", "status": "optimal",
+              "volatility": {"form": "kinked", "T0": 1380.0, "slope": 0.002},
+              "normaliser": "CI",
+              "provenance": {"reference_element": "Mg", "condensation_table": "lodders2003"}}
+RESULT_RESIDUALS = ("element,tc50,observed,model,sigma\nMg,1336.0,0.0,0.0,0.05\n"
+                    "Na,958.0,-0.8,-0.75,0.1\nZn,726.0,,-1.4,\n")
+
+
+def gen_result(rng: random.Random) -> Example:
+    """A fit result read back (``star --pattern``, ``diagram --fit``): fit.json and
+    residuals.csv of a result folder, one of them damaged or edited."""
+    import json
+
+    text = json.dumps(RESULT_FIT, indent=1)
+    extra = {"residuals.csv": RESULT_RESIDUALS.encode()}
+    r = rng.random()
+    if r < 0.2:
+        data, m = _byte_damage(rng, text.encode())
+        return Example("result", data, m, extra=extra)
+    if r < 0.3:
+        data, m, mf, mp = _encoding_mutation(rng, text)
+        if m == "enc:blank-lines":
+            mp = True
+        return Example("result", data, m, must_fail=mf, must_pass=mp, extra=extra)
+    if r < 0.45:
+        cell = rng.choice(["inf", "-inf", "abc", "1e999", "nan1"])
+        col = rng.choice(["tc50", "model"])
+        lines = RESULT_RESIDUALS.splitlines()
+        i = rng.randrange(1, len(lines))
+        cells = lines[i].split(",")
+        cells[["element", "tc50", "observed", "model", "sigma"].index(col)] = cell
+        lines[i] = ",".join(cells)
+        return Example("result", text.encode(), f"residuals:{col}", True, planted=True,
+                       extra={"residuals.csv": ("\n".join(lines) + "\n").encode()})
+    data = json.loads(text)
+    key = rng.choice(["T0", "slope", "form", "volatility", "root", "provenance"])
+    bad = rng.choice([None, "banana", True, [], {}, "NaN", 1e999, [1, 2]])
+    if key == "root":
+        data = bad
+    elif key == "volatility":
+        data["volatility"] = bad
+    elif key == "provenance":
+        data["provenance"] = bad
+        # provenance is informational: read with its defaults, no expectation
+        return Example("result", json.dumps(data).encode(), "json:provenance", extra=extra)
+    else:
+        data["volatility"][key] = bad
+    return Example("result", json.dumps(data).encode(), f"json:{key}", True, planted=True,
+                   extra=extra)
+
+
 # --------------------------------------------------------------------------- checking
 def _finite_series(*series) -> bool:
     return all(all(math.isfinite(float(v)) for v in s) for s in series)
@@ -383,6 +435,16 @@ def _load(ex: Example, path: Path) -> tuple[bool, str]:
             if ex.bad_row is not None and r.row == ex.bad_row:
                 ok = False
         return ok, "catalogue rows"
+    if ex.kind == "result":
+        from inversion.diagram import read_fit_trend
+
+        p = star.read_pattern(path)
+        t = read_fit_trend(path.parent)
+        ok = all(math.isfinite(v) for v in p.params) and all(
+            math.isfinite(v) for v in t.params.values())
+        ok &= bool(t.model[["tc50", "model"]].apply(
+            lambda c: c.isna() | c.abs().lt(float("inf"))).all().all())
+        return ok, "result values"
     c = case.load_case(path)
     vals = [c.target.composition, c.target.uncertainty]
     ok = _finite_series(*vals) and math.isfinite(c.late_max_fraction) and 0 < \
@@ -400,7 +462,7 @@ def check_example(ex: Example, folder: Path, tally: Tally) -> None:
     from components.exceptions import PlanetmixError
 
     name = {"target": "target.csv", "component": "component.csv", "case": "case.toml",
-            "star": "star.csv", "catalogue": "catalog.csv"}[ex.kind]
+            "star": "star.csv", "catalogue": "catalog.csv", "result": "fit.json"}[ex.kind]
     for f in folder.iterdir():
         if f.is_file():
             f.unlink()
@@ -446,6 +508,7 @@ GENERATORS: dict[str, Callable[[random.Random], Example]] = {
     "star": lambda rng: gen_table(rng, "star"),
     "catalogue": gen_catalogue,
     "case": gen_case,
+    "result": gen_result,
 }
 
 
@@ -488,6 +551,182 @@ def test_fuzz_every_input_door(tmp_path: Path) -> None:
 def test_fuzz_every_input_door_long(tmp_path: Path) -> None:
     tallies = run_fuzz(tmp_path, SLOW_PER_KIND, seed=29)
     _assert_clean(tallies)
+
+
+# --------------------------------------------------------------------------- focused
+# One test per class the outside campaign (benchmarks/fuzz_inputs.py) found; each names
+# the class in its docstring.
+def _component(tmp_path: Path, header: str, name: str = "c.csv") -> Path:
+    text = _template("component.csv").replace("# e54Cr: 1.56 0.06", header)
+    path = tmp_path / name
+    path.write_text(text, encoding="utf-8")
+    return path
+
+
+@pytest.mark.parametrize("header", ["# e54Cr: 1.56 0.06\n# e54Cr: 9 9",
+                                    "# e54Cr: inf 0.06", "# e54Cr: 1.56 -0.06",
+                                    "# e54Cr: 1.56 0.06\n# name: CI"])
+def test_component_headers_checked_at_every_door(tmp_path: Path, header: str) -> None:
+    """Class: a repeated header key (the later value silently won) and non-finite or
+    negative isotope headers, refused for the case door and for the diagram's door
+    (which read the file without the case's checks); a user file named like a library
+    table is refused by the diagram too."""
+    from components.exceptions import InputError
+    from inversion import case
+    from inversion.diagram import resolve_composition
+
+    path = _component(tmp_path, header)
+    with pytest.raises(InputError) as err:
+        resolve_composition(str(path))
+    assert str(path) in str(err.value) and err.value.field in ("e54Cr", "name")
+    with pytest.raises(InputError):
+        case._resolve_component(str(path), tmp_path, "case.toml", "candidates")
+
+
+def test_library_isotope_table_is_range_checked(tmp_path: Path,
+                                                monkeypatch: pytest.MonkeyPatch) -> None:
+    """Class: library isotope values were trusted; a damaged value gives the project's
+    error naming row and field."""
+    import components
+    from components import _library
+    from components.exceptions import InputError
+
+    src = _library.DATA_DIR / "isotopes.csv"
+    lines = src.read_text(encoding="utf-8").splitlines()
+    head = next(k for k, ln in enumerate(lines) if ln.startswith("body"))
+    cols = lines[head].split(",")
+    cells = lines[head + 1].split(",")
+    cells[cols.index("value")] = "1e9"
+    lines[head + 1] = ",".join(cells)
+    (tmp_path / "isotopes.csv").write_text("\n".join(lines) + "\n", encoding="utf-8")
+    assert len(components.isotopes()) > 10  # the real table passes
+    monkeypatch.setattr(_library, "DATA_DIR", tmp_path)
+    _library.isotopes.cache_clear()
+    try:
+        with pytest.raises(InputError) as err:
+            components.isotopes()
+    finally:
+        _library.isotopes.cache_clear()  # the real table again for the other tests
+    assert err.value.field == "value" and err.value.row == 2
+
+
+@pytest.mark.parametrize("cell,ok", [("1_000", False), ("\uff11\uff12", False),
+                                     ("0x10", False), ("4.5E1", True), ("+45.0", True),
+                                     (" 45 ", True)])
+def test_table_numbers_are_plain_decimals(tmp_path: Path, cell: str, ok: bool) -> None:
+    """Class: Python's float() took "1_000" and full-width digits as numbers."""
+    from components.exceptions import InputError
+    from inversion import case
+
+    comments, header, rows = _split(_template("target.csv"))
+    rows[0][header.index("value")] = f'"{cell}"'
+    path = tmp_path / "t.csv"
+    path.write_text(_join(comments, header, rows), encoding="utf-8")
+    if ok:
+        comp, _, _ = case.read_target(path, default_uncertainty_pct=10)
+        assert comp.iloc[0] == pytest.approx(0.45 * 28.0855 / 60.0843, rel=1e-3)  # SiO2
+    else:
+        with pytest.raises(InputError) as err:
+            case.read_target(path, default_uncertainty_pct=10)
+        assert err.value.field == "value" and err.value.row == 2
+
+
+@pytest.mark.parametrize("line,ok", [('chains = "banana"', False), ("draws = 1e308", False),
+                                     ("seed = true", False), ("target_accept = 2", False),
+                                     ("tune = 0", True)])
+def test_sampler_settings_are_checked_when_the_case_is_read(tmp_path: Path, line: str,
+                                                            ok: bool) -> None:
+    """Class: [sampler] values of the wrong kind were accepted by every command but
+    ``sample``."""
+    from components.exceptions import InputError
+    from inversion.case import load_case
+
+    for name in ("target.csv",):
+        (tmp_path / name).write_text(_template(name), encoding="utf-8")
+    key = line.split(" = ")[0]
+    text = "\n".join(ln for ln in _template("case.toml").splitlines()
+                     if not ln.startswith(key + " ="))
+    path = tmp_path / "case.toml"
+    path.write_text(text.replace("[sampler]\n", f"[sampler]\n{line}\n"), encoding="utf-8")
+    if ok:
+        assert load_case(path).sampler[key] == 0
+    else:
+        with pytest.raises(InputError) as err:
+            load_case(path)
+        assert key in str(err.value.field)
+
+
+def _fit_folder(tmp_path: Path) -> Path:
+    import json
+
+    folder = tmp_path / "fit"
+    folder.mkdir()
+    (folder / "fit.json").write_text(json.dumps(RESULT_FIT), encoding="utf-8")
+    (folder / "residuals.csv").write_text(RESULT_RESIDUALS, encoding="utf-8")
+    return folder
+
+
+@pytest.mark.parametrize("damage", ["bytes", "json", "param", "residual", "bom"])
+def test_fit_result_read_back_goes_through_the_door(tmp_path: Path, damage: str) -> None:
+    """Class: ``diagram --fit`` read fit.json with a bare json.loads (UnicodeDecodeError,
+    JSONDecodeError, TypeError tracebacks); a BOM is accepted."""
+    import json
+
+    from components.exceptions import InputError
+    from inversion.diagram import read_fit_trend
+
+    folder = _fit_folder(tmp_path)
+    fj = folder / "fit.json"
+    if damage == "bytes":
+        fj.write_bytes(b"\x85" + fj.read_bytes())
+    elif damage == "json":
+        fj.write_text(fj.read_text()[:-3], encoding="utf-8")
+    elif damage == "param":
+        fj.write_text(json.dumps({**RESULT_FIT, "volatility": {"form": "kinked",
+                                                              "T0": "hot", "slope": 0.0}}))
+    elif damage == "residual":
+        (folder / "residuals.csv").write_text(RESULT_RESIDUALS.replace("-0.75", "inf"))
+    else:
+        fj.write_bytes(b"\xef\xbb\xbf" + fj.read_bytes())
+        assert read_fit_trend(folder).params == {"T0": 1380.0, "slope": 0.002}
+        return
+    with pytest.raises(InputError) as err:
+        read_fit_trend(folder)
+    assert str(folder) in str(err.value) and "\n" not in str(err.value)
+
+
+def test_command_line_classes_give_one_line_and_status_2(
+        tmp_path: Path, capsys: pytest.CaptureFixture[str],
+        monkeypatch: pytest.MonkeyPatch) -> None:
+    """Classes of the command-line sweep: no command (help only, no error line); a
+    path the system refuses (name too long; --out under /proc) as a traceback; a
+    broken math title; a reference element no case accepts; --top 0; an empty
+    --star-id; a planet mass of 1e40 kg; a damaged batch run record on --resume."""
+    from inversion.cli import main
+
+    monkeypatch.chdir(tmp_path)
+    for name in ("star_abundances.csv", "catalog.csv", "case.toml", "target.csv"):
+        (tmp_path / name).write_text(_template(name), encoding="utf-8")
+    (tmp_path / "b").mkdir()
+    (tmp_path / "b" / "run.json").write_text("{not json", encoding="utf-8")
+    runs = [
+        [],
+        ["report", "z" * 300],
+        ["diagram", "BSE_MS95", "--out", "/proc/d.svg"],
+        ["diagram", "BSE_MS95", "--out", "d.svg", "--title", "$\\frac{$"],
+        ["diagram", "BSE_MS95", "--out", "d.svg", "--reference", "O"],
+        ["rank", "case.toml", "--out", "r", "--workers", "1", "--top", "0"],
+        ["star", "star_abundances.csv", "--out", "s", "--star-id", ""],
+        ["star", "star_abundances.csv", "--out", "s", "--planet-mass-kg", "1e40"],
+        ["star", "star_abundances.csv", "--out", "s", "--pattern", "y" * 300],
+        ["batch", "catalog.csv", "--out", "b", "--resume", "--workers", "1"],
+    ]
+    for args in runs:
+        assert main(args) == 2, args
+        err = capsys.readouterr().err
+        assert err.startswith("planetmix: error:") and err.count("\n") == 1, (args, err)
+    assert not (tmp_path / "d.svg").exists() and not (tmp_path / "s").exists()
+    assert not (tmp_path / "r").exists()
 
 
 if __name__ == "__main__":  # pragma: no cover - the report's counts
