@@ -1053,7 +1053,8 @@ SIDEROPHILE_PANEL = ("Ni", "Co", "W", "Mo", "V", "Cr", "Mn", "Si", "Ga", "P", "N
 
 def siderophile_plot(residuals: pd.DataFrame, conditions: Mapping[str, object], *,
                      normaliser: str = "CI", reference: str = "Mg",
-                     title: str | None = None) -> Figure:
+                     title: str | None = None,
+                     pt_draws: np.ndarray | None = None) -> Figure:
     """Core formation at (P, T, dIW): the mantle siderophile pattern and the pressure.
 
     Left: observed (1-sigma bars) and modelled normalised abundances of the moderately
@@ -1068,15 +1069,22 @@ def siderophile_plot(residuals: pd.DataFrame, conditions: Mapping[str, object], 
     residuals : DataFrame
         ``residuals.csv`` of a fit (element, observed, model, sigma, fitted).
     conditions : mapping
-        ``core_conditions`` of ``fit.json``.
+        ``core_conditions`` of ``fit.json`` (or of ``sample.json``).
+    pt_draws : ndarray (S, 2), optional
+        Posterior draws of (P [GPa], T [K]): the right panel then shows the inferred
+        (P, T) region (the draws and their 90% box) with the peridotite liquidus. With
+        ``model_lo``/``model_hi`` columns in ``residuals`` (a sample) the modelled
+        abundances carry their posterior 90% band.
     """
     sources = dict(conditions.get("sources") or {})  # type: ignore[arg-type]
     df = residuals[residuals["element"].isin(SIDEROPHILE_PANEL)].copy()
     df["order"] = [SIDEROPHILE_PANEL.index(e) for e in df["element"]]
     df = df.sort_values("order")
     prof = conditions.get("pressure_inferred")
+    if pt_draws is not None:
+        prof = None  # a sample: the posterior (P, T) region takes the right panel
     with plot_style():
-        ncols = 2 if prof else 1
+        ncols = 2 if prof or pt_draws is not None else 1
         fig, axes = plt.subplots(1, ncols, figsize=(_width(4.2 * ncols), 3.4), squeeze=False,
                                  layout="constrained")
         ax = axes[0][0]
@@ -1087,6 +1095,10 @@ def siderophile_plot(residuals: pd.DataFrame, conditions: Mapping[str, object], 
                 label="observed (D from a regression)")
         ax.plot(x[~reg], df["observed"].to_numpy()[~reg], "o", mfc="white",
                 color=OKABE_ITO["blue"], label="observed (effective D)")
+        if {"model_lo", "model_hi"} <= set(df.columns):
+            lo_, hi_ = df["model_lo"].to_numpy(float), df["model_hi"].to_numpy(float)
+            ax.bar(x, hi_ - lo_, bottom=lo_, width=0.5, color="0.6", alpha=0.5, lw=0,
+                   label="model, posterior 90%")
         ax.plot(x, df["model"], "_", color="black", ms=14, mew=2, label="model")
         ax.set_xticks(x, list(df["element"]))
         ax.set_ylabel(f"log$_{{10}}$ (X/{reference})$_{{mantle}}$ / "
@@ -1125,6 +1137,23 @@ def siderophile_plot(residuals: pd.DataFrame, conditions: Mapping[str, object], 
                 temps = np.interp(ticks, Ps, Ts)
                 top.set_xticks(temps, [f"{t:.0f}" for t in temps])
                 top.set_xlabel("temperature on the liquidus [K]")
+        if pt_draws is not None:
+            from .partitioning import peridotite_liquidus
+
+            ax2 = axes[0][1]
+            pt_ = np.asarray(pt_draws, float)
+            ax2.plot(pt_[:, 0], pt_[:, 1], ".", color=OKABE_ITO["blue"], ms=2, alpha=0.4,
+                     label="posterior draws")
+            (p5, p95), (t5, t95) = (np.percentile(pt_[:, k], [5, 95]) for k in (0, 1))
+            ax2.add_patch(plt.Rectangle((p5, t5), p95 - p5, t95 - t5, fill=False,
+                                        ec="black", lw=1, label="90% of P and of T"))
+            grid = np.linspace(max(0.0, pt_[:, 0].min() * 0.9), pt_[:, 0].max() * 1.1, 50)
+            ax2.plot(grid, peridotite_liquidus(grid), "--", color=OKABE_ITO["vermillion"],
+                     lw=1, label="peridotite liquidus (Fiquet et al. 2010)")
+            ax2.set_xlabel("equilibration pressure [GPa]")
+            ax2.set_ylabel("temperature [K]")
+            ax2.set_title("inferred (P, T) region", loc="left")
+            ax2.legend(loc="best", fontsize="small")
         if title:
             fig.suptitle(title)
     return fig

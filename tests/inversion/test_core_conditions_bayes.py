@@ -170,3 +170,34 @@ def test_sampled_conditions_recover_the_truth(tmp_path):
     corr = cc["posterior_correlation"]
     assert corr["names"] == ["pressure_GPa", "temperature_K", "dIW"]
     assert corr["matrix"][1][2] > 0.5
+
+
+def test_siderophile_figure_with_the_posterior_band():
+    """The sample's siderophile figure: one grey 90% bar per element spanning exactly
+    model_lo..model_hi, and the (P, T) panel whose 90% box spans the 5-95% percentiles
+    of the draws (checked against numpy)."""
+    import pandas as pd
+    from matplotlib.patches import Rectangle
+
+    from inversion import plots
+
+    els = ["Ni", "Co", "W", "V"]
+    resid = pd.DataFrame({"element": els, "observed": [-1.0, -0.9, -1.4, -0.1],
+                          "model": [-1.05, -0.92, -1.2, -0.12], "sigma": 0.05,
+                          "model_lo": [-1.1, -0.95, -1.3, -0.2],
+                          "model_hi": [-1.0, -0.90, -1.1, -0.05]})
+    rng = np.random.default_rng(1)
+    pt = np.stack([rng.normal(40, 4, 400), rng.normal(3300, 300, 400)], axis=1)
+    cc = {"partitioning": "single-stage", "sources": {"Ni": "fischer2015"}}
+    fig = plots.siderophile_plot(resid, cc, pt_draws=pt)
+    assert len(fig.axes) == 2
+    bars = [r for r in fig.axes[0].patches if isinstance(r, Rectangle)]
+    assert len(bars) == len(els)
+    for r, lo, hi in zip(sorted(bars, key=lambda b: b.get_x()), resid["model_lo"],
+                         resid["model_hi"], strict=True):
+        assert r.get_y() == pytest.approx(lo) and r.get_height() == pytest.approx(hi - lo)
+    box = [r for r in fig.axes[1].patches if isinstance(r, Rectangle)][0]
+    p5, p95 = np.percentile(pt[:, 0], [5, 95])
+    t5, t95 = np.percentile(pt[:, 1], [5, 95])
+    assert box.get_x() == pytest.approx(p5) and box.get_width() == pytest.approx(p95 - p5)
+    assert box.get_y() == pytest.approx(t5) and box.get_height() == pytest.approx(t95 - t5)
