@@ -354,8 +354,8 @@ def _compare(parser: argparse.ArgumentParser):
         for _, r in table.iterrows():
             say(f"{r['components']} ({r['run']}): {r['reading']}")
         for label, els in attrs.get("left_out", {}).items():
-            print(f"  compared on the {len(attrs['shared_elements'])} shared elements; "
-                  f"left out of {label}: {', '.join(els)}")
+            say(f"compared on the {len(attrs['shared_elements'])} shared elements; "
+                f"left out of {label}: {', '.join(els)}")
         if table["pareto_k_high"].astype(bool).any():
             say(attrs["pareto_k_advice"])
         if "log10_bayes_factor_vs_best" in table:

@@ -103,17 +103,34 @@ def detect_kind(folder: str | Path) -> str:
 
 
 def _read_json(path: Path) -> dict[str, Any]:
+    # a result file read back goes through the input door (regular file, size, UTF-8)
+    from components._tables import read_text_checked
+
+    text = read_text_checked(path, what="result")
     try:
-        return json.loads(path.read_text(encoding="utf-8"))
-    except (OSError, json.JSONDecodeError) as err:
-        raise InputError(f"cannot read result file: {err}", file=str(path)) from err
+        data = json.loads(text)
+    except json.JSONDecodeError as err:
+        raise InputError(f"cannot read result file: {' '.join(str(err).split())}",
+                         file=str(path)) from None
+    except RecursionError:
+        raise InputError("cannot read result file: nested too deeply",
+                         file=str(path)) from None
+    if not isinstance(data, dict):
+        raise InputError("not a planetmix result file (no JSON object)", file=str(path))
+    return data
 
 
 def _read_csv(path: Path) -> pd.DataFrame:
+    import io
+
+    from components._tables import read_text_checked
+
+    text = read_text_checked(path, what="result table")
     try:
-        return pd.read_csv(path, keep_default_na=False, na_values=[""])
-    except (OSError, pd.errors.ParserError, pd.errors.EmptyDataError) as err:
-        raise InputError(f"cannot read result table: {err}", file=str(path)) from err
+        return pd.read_csv(io.StringIO(text), keep_default_na=False, na_values=[""])
+    except (pd.errors.ParserError, pd.errors.EmptyDataError) as err:
+        raise InputError(f"cannot read result table: {' '.join(str(err).split())}",
+                         file=str(path)) from None
 
 
 def _fmt(v: Any, digits: int = 4) -> str:
@@ -139,12 +156,15 @@ def _planet_mass(fitjson: dict[str, Any]) -> float | None:
     except (KeyError, TypeError, ValueError, ZeroDivisionError):
         pass
     case_file = (fitjson.get("provenance") or {}).get("case_file")
-    if case_file and Path(case_file).exists():
+    if isinstance(case_file, str) and case_file and Path(case_file).is_file():
+        from components._tables import read_text_checked
+
         try:
-            raw = tomllib.loads(Path(case_file).read_text(encoding="utf-8"))
+            raw = tomllib.loads(read_text_checked(case_file, what="case"))
             m = raw.get("target", {}).get("planet_mass_kg")
             return float(m) if m else None
-        except (OSError, tomllib.TOMLDecodeError, TypeError, ValueError):
+        except (InputError, tomllib.TOMLDecodeError, TypeError, ValueError,
+                AttributeError, RecursionError):
             return None
     return None
 
@@ -421,8 +441,8 @@ def _truth_of(prov: dict[str, Any]) -> dict[str, Any] | None:
     if not path.is_file():
         return None
     try:
-        return json.loads(path.read_text(encoding="utf-8"))
-    except (OSError, json.JSONDecodeError):
+        return _read_json(path)
+    except InputError:
         return None
 
 
@@ -1110,11 +1130,13 @@ def _planet_draws(folder: Path) -> pd.DataFrame | None:
     for name in ("planet_draws.parquet", "planet_draws.csv"):
         path = folder / name
         if path.exists():
+            if path.suffix == ".csv":
+                return _read_csv(path)
             try:
-                return (pd.read_parquet(path) if path.suffix == ".parquet"
-                        else pd.read_csv(path))
+                return pd.read_parquet(path)
             except Exception as err:  # noqa: BLE001
-                raise InputError(f"cannot read planet draws: {err}", file=str(path)) from err
+                raise InputError(f"cannot read planet draws: {' '.join(str(err).split())}",
+                                 file=str(path)) from None
     return None
 
 
@@ -1604,12 +1626,23 @@ def build_report(folder: str | Path, *, out: str | Path | None = None,
     """
     folder = Path(folder)
     kind = detect_kind(folder)
-    rep = _BUILDERS[kind](folder)
     fig_dir = None
-    if figures:
-        fig_dir = folder / "figures"
-        fig_dir.mkdir(exist_ok=True)
-    text = render_html(rep, figure_dir=fig_dir)
+    try:
+        rep = _BUILDERS[kind](folder)
+        if figures:
+            fig_dir = folder / "figures"
+            fig_dir.mkdir(exist_ok=True)
+        text = render_html(rep, figure_dir=fig_dir)
+    except (KeyError, TypeError, AttributeError, ValueError, IndexError, OverflowError,
+            ZeroDivisionError) as err:
+        # The result files passed the door (readable, UTF-8, valid JSON/CSV) but a value
+        # inside is missing or of the wrong kind: the folder was damaged or edited
+        # after planetmix wrote it. A folder planetmix wrote never gets here (the report
+        # tests build reports from real runs of every command).
+        what = " ".join(f"{type(err).__name__}: {err}".split())[:160]
+        raise InputError(f"the {kind} result in this folder is damaged or was edited "
+                         f"({what}); rerun the command that wrote it", file=str(folder)
+                         ) from None
     target = Path(out) if out is not None else folder / "report.html"
     from .output import atomic_file
 
