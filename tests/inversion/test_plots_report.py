@@ -482,6 +482,10 @@ def test_compare_on_the_shared_elements_names_the_rest(tmp_path, capsys):
     assert main(["compare", str(good), str(twin), str(bad), "--out", str(out)]) == 0
     printed = capsys.readouterr().out
     assert "left out of" in printed and "Sn" in printed
+    # units in the printed table's headers, every line within a 100-column terminal
+    assert "elpd [nats]" in printed and "dse [nats]" in printed
+    assert max(len(line) for line in printed.splitlines()) <= 100, [
+        line for line in printed.splitlines() if len(line) > 100]
     table = pd.read_csv(out / "comparison.csv").set_index("components")
     assert table.loc["CV", "elpd_diff"] > 2 * table.loc["CV", "dse"]
     assert not table.loc["CV", "within_uncertainty"]
