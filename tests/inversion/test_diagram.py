@@ -57,6 +57,10 @@ def test_values_match_hand_computation_with_other_normaliser_and_reference(table
                                     normaliser=diagram.resolve_composition(n))
     ax = fig.axes[0]
     assert ax.get_yscale() == "log" and ax.get_xlim()[0] > ax.get_xlim()[1]
+    # labels as mathtext with subscripts, the tables named in words, not by their keys
+    assert r"(\mathrm{X}/\mathrm{Al})_{\mathrm{body}}" in ax.get_ylabel()
+    assert r"_{\mathrm{normX}}" in ax.get_ylabel()
+    assert "Lodders 2003" in ax.get_xlabel() and "lodders2003" not in ax.get_xlabel()
     drawn = np.vstack([np.column_stack(ln.get_data()) for ln in ax.lines
                        if ln.get_marker() not in ("None", "", None) and len(ln.get_xdata())])
     tc_el = pts.drop_duplicates("element").set_index("element")["tc50"]
