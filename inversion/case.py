@@ -9,6 +9,7 @@ from __future__ import annotations
 import math
 import tomllib
 from dataclasses import dataclass, field
+from dataclasses import replace as _replace
 from pathlib import Path
 from typing import Any
 
@@ -42,7 +43,8 @@ _ALLOWED: dict[str, set[str]] = {
                "default_uncertainty_pct", "minimum_uncertainty_dex", "normaliser"},
     "building_blocks": {"candidates", "max_mixture_size"},
     "volatility": {"form", "condensation_table"},
-    "core": {"mantle_FeO_wt", "dIW", "D", "partitioning", "pressure_GPa", "temperature_K"},
+    "core": {"mantle_FeO_wt", "dIW", "D", "partitioning", "pressure_GPa", "temperature_K",
+             "accretion_steps", "depth_fraction", "cmb_pressure_GPa", "dIW_final"},
     "late_accretion": {"component", "max_fraction"},
     "elements": {"exclude"},
     "fit": {"isotope_window_sigma", "cmf_range"},
@@ -81,6 +83,9 @@ class CoreSettings:
     #: single-stage: a temperature [K], (low, high) to infer, or ``"liquidus"`` (tied to
     #: the pressure)
     temperature_K: float | str | tuple[float, float] | None = None
+    #: continuous: ``accretion_steps``, ``depth_fraction``, ``cmb_pressure_GPa``,
+    #: ``dIW_start``, ``dIW_final`` (:func:`_continuous`)
+    continuous: dict[str, float] | None = None
 
 
 @dataclass(frozen=True)
@@ -143,11 +148,45 @@ def reference_elements() -> list[str]:
 
 
 #: Partitioning models of ``[core] partitioning``.
-PARTITIONING_MODELS = ("effective", "single-stage")
+PARTITIONING_MODELS = ("effective", "single-stage", "continuous")
+#: ``[core]`` keys of ``partitioning = "continuous"`` (inversion.conditions.fit_continuous)
+CONTINUOUS_KEYS = ("accretion_steps", "depth_fraction", "cmb_pressure_GPa", "dIW_final")
 #: Pressure range [GPa] the regressions are used in (their experiments reach ~100 GPa).
 PRESSURE_LIMITS_GPA = (0.0, 150.0)
 #: Temperatures [K] accepted for ``temperature_K``.
 TEMPERATURE_LIMITS_K = (1200.0, 6000.0)
+
+
+def _continuous(core_raw: dict, diw: Any, file: str) -> dict[str, float]:
+    """The keys of ``partitioning = "continuous"``, checked: ``accretion_steps`` (integer
+    1-200, default 10), ``depth_fraction`` (0-1], default 0.5), ``cmb_pressure_GPa`` (the
+    final core-mantle-boundary pressure, required, (0, 400]), the dIW path from ``dIW``
+    (required, one value) to ``dIW_final`` (default: the same, constant)."""
+    if diw is None or isinstance(diw, tuple):
+        raise InputError("partitioning = \"continuous\" needs dIW (one value: the first "
+                         "step's; dIW_final sets the last)", file=file, field="core.dIW",
+                         value=None if diw is None else list(diw))
+    n = core_raw.get("accretion_steps", 10)
+    if isinstance(n, bool) or not isinstance(n, int) or not 1 <= n <= 200:
+        raise InputError("accretion_steps must be an integer in 1-200", file=file,
+                         field="core.accretion_steps", value=n)
+    fr = _num(core_raw.get("depth_fraction", 0.5), file=file, field="core.depth_fraction")
+    if not 0.0 < fr <= 1.0:
+        raise InputError("depth_fraction must lie in (0, 1]", file=file,
+                         field="core.depth_fraction", value=fr)
+    if "cmb_pressure_GPa" not in core_raw:
+        raise InputError("partitioning = \"continuous\" needs cmb_pressure_GPa (the final "
+                         "core-mantle-boundary pressure; the Earth's is 136 GPa)", file=file,
+                         field="core.cmb_pressure_GPa")
+    pc = _num(core_raw["cmb_pressure_GPa"], file=file, field="core.cmb_pressure_GPa")
+    if not 0.0 < pc <= 400.0:
+        raise InputError("cmb_pressure_GPa must lie in (0, 400]", file=file,
+                         field="core.cmb_pressure_GPa", value=pc)
+    d_end = core_raw.get("dIW_final", diw)
+    d_end = check_in_range(_num(d_end, file=file, field="core.dIW_final"), "dIW", file=file,
+                           field="core.dIW_final")
+    return {"accretion_steps": n, "depth_fraction": fr, "cmb_pressure_GPa": pc,
+            "dIW_start": float(diw), "dIW_final": float(d_end)}
 
 
 def _core_conditions(core_raw: dict, D: dict[str, float], file: str
@@ -157,6 +196,11 @@ def _core_conditions(core_raw: dict, D: dict[str, float], file: str
     model = check_option("partitioning model", core_raw.get("partitioning", "effective"),
                          PARTITIONING_MODELS, file=file, field="core.partitioning")
     P_raw, T_raw = core_raw.get("pressure_GPa"), core_raw.get("temperature_K")
+    if model != "continuous":
+        for key in CONTINUOUS_KEYS:
+            if key in core_raw:
+                raise InputError(f"{key} needs partitioning = \"continuous\"", file=file,
+                                 field=f"core.{key}", value=core_raw[key])
     if model == "effective":
         for key, val in (("pressure_GPa", P_raw), ("temperature_K", T_raw)):
             if val is not None:
@@ -169,8 +213,16 @@ def _core_conditions(core_raw: dict, D: dict[str, float], file: str
     fixed = sorted(e for e in D if e in DEFAULT_CHOICE)
     if fixed:
         raise InputError(f"{fixed[0]} takes its D from its regression with partitioning = "
-                         "\"single-stage\"; remove the D entry", file=file,
+                         f"\"{model}\"; remove the D entry", file=file,
                          field=f"core.D.{fixed[0]}", value=D[fixed[0]])
+    if model == "continuous":
+        for key, val in (("pressure_GPa", P_raw), ("temperature_K", T_raw)):
+            if val is not None:
+                raise InputError("with partitioning = \"continuous\" each step equilibrates "
+                                 "at depth_fraction x the growing core-mantle-boundary "
+                                 "pressure, on the liquidus; remove " + key, file=file,
+                                 field=f"core.{key}", value=val)
+        return model, None, "liquidus"
     if P_raw is None:
         raise InputError("partitioning = \"single-stage\" needs pressure_GPa (a value, or "
                          "[low, high] to infer)", file=file, field="core.pressure_GPa")
@@ -494,6 +546,8 @@ def load_case(path: str | Path, *, staged: bool = False) -> Case:
         raise InputError("the iron split is unknown: give [core] mantle_FeO_wt or dIW, or Fe "
                          "in the target table", file=file, field="core")
     core = CoreSettings(feo, diw, D, *_core_conditions(core_raw, D, file))
+    if core.partitioning == "continuous":
+        core = _replace(core, continuous=_continuous(core_raw, diw, file))
     if isinstance(diw, tuple) and core.partitioning != "single-stage":
         raise InputError("dIW = [low, high] is inferred with partitioning = \"single-stage\" "
                          "only; give one value", file=file, field="core.dIW", value=list(diw))

@@ -308,7 +308,7 @@ def _fit(parser: argparse.ArgumentParser):
 
         case = load_case(args.case, staged=True)
         P_core = case.core.pressure_GPa
-        if case.core.partitioning == "single-stage":
+        if case.core.partitioning != "effective":
             from .conditions import free_conditions, start_problem
 
             p = start_problem(case)  # inferred conditions start at mid-range
@@ -330,6 +330,10 @@ def _fit(parser: argparse.ArgumentParser):
                 result, p = infer_conditions(p, case, settings)
             else:
                 result, p, _ = fit_at_conditions(p, case, P_core, settings)
+        elif case.core.partitioning == "continuous":
+            from .conditions import fit_continuous
+
+            result, p = fit_continuous(p, case, settings)
         else:
             result = fit_problem(p, settings)
         f = findings(p, result, planet_mass_kg=case.target.planet_mass_kg)

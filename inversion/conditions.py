@@ -44,6 +44,7 @@ from .exceptions import InputError
 
 __all__ = ["at_conditions", "at_case_conditions", "fit_at_conditions", "infer_pressure",
            "infer_conditions", "free_conditions", "start_case", "start_problem",
+           "fit_continuous",
            "CONDITIONS",
            "conditions_block", "conditions_lines", "reference_metal", "silicate_molar_mass",
            "PROFILE_GRID_POINTS", "DELTA_CHI2_68", "DELTA_CHI2_95"]
@@ -154,6 +155,11 @@ def start_problem(case: Any) -> Any:
     and ``planetmix sample`` start from)."""
     from .model import compile_problem
 
+    if case.core.partitioning == "continuous":
+        # the effective D until fit_continuous replaces those of the regression elements
+        p = compile_problem(replace(case, core=replace(case.core, partitioning="effective")))
+        return replace(p, core_conditions={"partitioning": "continuous",
+                                           **case.core.continuous})
     p = compile_problem(start_case(case))
     ranges = free_conditions(case)
     if ranges and p.core_conditions is not None:
@@ -202,6 +208,10 @@ def _at(p: Any, s: dict[str, Any], P: float, x_fe: float, mbar_met: float,
 def at_case_conditions(p: Any, case: Any, pressure_GPa: float | None = None) -> Any:
     """The problem at the case's fixed conditions (or at ``pressure_GPa``), with ``x_Fe``
     and ``Mbar_met`` of the reference core (no iteration with a fit)."""
+    if case.core.partitioning == "continuous":
+        raise InputError("partitioning = \"continuous\" is run by 'planetmix fit' only "
+                         "(the D follow the fitted bulk)", file=case.path,
+                         field="core.partitioning", value="continuous")
     P = case.core.pressure_GPa if pressure_GPa is None else pressure_GPa
     if isinstance(P, tuple):
         raise InputError("pressure_GPa = [low, high] is inferred by 'planetmix fit' and "
@@ -527,6 +537,79 @@ def _joint_curvature(pc: Any, res: Any, settings: Any, names: list[str],
     return out
 
 
+#: Continuous accretion in the fit: at most this many fits, until the regression D move
+#: by less than this (dex).
+CONTINUOUS_ITERATIONS = 8
+CONTINUOUS_TOL_DEX = 1e-3
+
+
+def fit_continuous(p: Any, case: Any, settings: Any) -> tuple[Any, Any]:
+    """The fit with ``[core] partitioning = "continuous"``.
+
+    The body grows in ``accretion_steps`` equal increments of the fitted bulk; each step
+    equilibrates at ``depth_fraction`` x the growing body's core-mantle-boundary pressure
+    (``cmb_pressure_GPa`` at the end, scaled as f^(2/3)), on the peridotite liquidus, at
+    a dIW linear from ``dIW`` to ``dIW_final`` (:func:`inversion.partitioning.
+    continuous_accretion`). The regression elements then take the mass D that make the
+    fit's one-stage split leave exactly the mantle of that accretion at the fitted bulk,
+    ``D_i = core_i / (mantle_i k)`` (k the fit's core/mantle mass ratio); the fit and
+    the accretion are iterated until those D move by less than 0.001 dex. The model's
+    iron split is the case's (the final dIW, or the mantle FeO); elements without a
+    regression keep the effective D (and enter the accretion with it).
+    """
+    from .fit import fit_problem, forward_of, refit
+
+    c = dict(case.core.continuous)
+    chem0 = pt.compile_chemistry(p.elements, oxygen=False)
+    reg = np.isin(chem0.kind, (1, 2))
+    reg[p.fe_index] = False
+    base = np.asarray(p.D, float).copy()
+    fixed = {e: float(base[j]) for j, e in enumerate(p.elements)
+             if not reg[j] and base[j] > 0 and j != p.fe_index}
+    chem = pt.compile_chemistry(p.elements, D_fixed=fixed, oxygen=False)
+    quick = replace(settings, intervals=False)
+    pc = replace(p, dIW=c["dIW_final"]) if p.dIW is not None else p
+    res, D = None, base
+    history = []
+    for it in range(1, CONTINUOUS_ITERATIONS + 1):
+        res = fit_problem(pc, quick) if res is None else refit(pc, res, quick)
+        if not res.feasible:
+            break
+        fwd = forward_of(pc, res)
+        acc = pt.continuous_accretion(fwd["bulk"][0], chem, n_steps=c["accretion_steps"],
+                                      P_cmb_final=c["cmb_pressure_GPa"],
+                                      depth_fraction=c["depth_fraction"],
+                                      dIW_start=c["dIW_start"], dIW_end=c["dIW_final"])
+        k = float(fwd["k"][0])
+        with np.errstate(divide="ignore", invalid="ignore"):
+            D_acc = acc["core"] / (acc["mantle"] * k)
+        # an element the bulk lacks has no accretion D: it keeps the effective one
+        use = reg & np.isfinite(D_acc) & (D_acc > 0)
+        D_new = np.where(use, D_acc, base)
+        both = use & (D > 0)
+        moved = float(np.max(np.abs(np.log10(D_new[both]) - np.log10(D[both])))) \
+            if both.any() else 0.0
+        D = D_new
+        history.append({"fit": it, "chi2": float(res.chi2), "max_D_change_dex": moved})
+        src = dict(chem.sources)
+        sources = tuple((e, src[e] if reg[j] else "effective")
+                        for j, e in enumerate(p.elements) if D[j] > 0)
+        cond = {"partitioning": "continuous", **c, "sources": dict(sources),
+                "steps": [{"pressure_GPa": float(P), "temperature_K": float(T),
+                           "dIW": float(d)} for P, T, d in zip(acc["P"], acc["T"],
+                                                               acc["dIW"], strict=True)],
+                "accretion_cmf": float(acc["cmf"]),
+                "accretion_mantle_FeO_wt": float(100 * acc["mantle_FeO_wt"]),
+                "effective_D_of_regression_elements": {
+                    p.elements[j]: float(D[j]) for j in np.flatnonzero(reg)},
+                "temperature_from": LIQUIDUS + " at each step", "history": history}
+        pc = replace(pc, D=D, D_sources=sources, core_conditions=cond)
+        if moved < CONTINUOUS_TOL_DEX:
+            break
+    res = refit(pc, res, settings) if res is not None and res.feasible else res
+    return res, pc
+
+
 def conditions_block(p: Any) -> dict[str, Any] | None:
     """The ``core_conditions`` block of fit.json (None with the effective D)."""
     if p.core_conditions is None:
@@ -539,6 +622,13 @@ def conditions_lines(p: Any) -> list[str]:
     c = p.core_conditions
     if c is None:
         return []
+    if c.get("partitioning") == "continuous":
+        st = c.get("steps") or [{}]
+        return [f"core formation by continuous accretion in {c['accretion_steps']} steps at "
+                f"{c['depth_fraction']:g} x the growing CMB pressure (final "
+                f"{c['cmb_pressure_GPa']:g} GPa; last step {st[-1].get('pressure_GPa', 0):.1f}"
+                f" GPa, {st[-1].get('temperature_K', 0):.0f} K), dIW {c['dIW_start']:.2f} -> "
+                f"{c['dIW_final']:.2f}; accretion CMF {c.get('accretion_cmf', math.nan):.3f}"]
     regs = sorted(e for e, v in c["sources"].items() if v != "effective")
     out = [f"core formation single-stage at P = {c['pressure_GPa']:.1f} GPa, "
            f"T = {c['temperature_K']:.0f} K ({c['temperature_from']}), dIW = "
