@@ -234,9 +234,10 @@ def _design(p: Problem, vol: np.ndarray, k: np.ndarray, D_Fe: np.ndarray,
     return A, G, h, names
 
 
-def _solve(A: np.ndarray, b: np.ndarray, G: np.ndarray, h: np.ndarray):
+def _solve(A: np.ndarray, b: np.ndarray, G: np.ndarray, h: np.ndarray,
+           guess: np.ndarray | None = None):
     if A.shape[2] <= MAX_ENUMERATED_VARIABLES:
-        return solve_batch(A, b, G, h)
+        return solve_batch(A, b, G, h, guess=guess)
     return solve_cvxpy(A, b, G, h)
 
 
@@ -255,14 +256,18 @@ def _profile_points(p: Problem, vol: np.ndarray, passes: int) -> dict[str, np.nd
     feasible_any = np.zeros(B, dtype=bool)
     u_prev = np.full((B, K + (p.late_name is not None)), 1.0 / (K + 1))
     state = None
+    guess = None
     for _ in range(passes):
         A, G, h, _names = _design(p, vol, k, D_Fe, M_s, u_prev)
         Af = A[:, fi, :]
         scale = 1.0 / (m0 * _LN10 * p.sigma[None, :])
         Aw = Af * scale[:, :, None]
         bw = (y_ratio[None, :] - np.log10(m0) + 1.0 / _LN10) / p.sigma[None, :]
-        sol = _solve(Aw, bw, G, h)
+        # the active sets of the previous pass (a nearby problem) start this one
+        sol = _solve(Aw, bw, G, h, guess)
         ok = sol.feasible
+        if sol.active is not None:
+            guess = sol.active & ok[:, None]
         feasible_any |= ok
         u = np.where(ok[:, None], sol.u, 1.0 / sol.u.shape[1])
         u_prev = u

@@ -84,7 +84,8 @@ def _active_sets(n_ineq: int, max_active: int) -> tuple[tuple[int, ...], ...]:
 
 
 def solve_batch(A: np.ndarray, b: np.ndarray, G: np.ndarray | None = None,
-                h: np.ndarray | None = None) -> QPSolution:
+                h: np.ndarray | None = None, *, guess: np.ndarray | None = None
+                ) -> QPSolution:
     """Exact least squares on the simplex with inequalities, for a batch of problems.
 
     Parameters
@@ -96,6 +97,9 @@ def solve_batch(A: np.ndarray, b: np.ndarray, G: np.ndarray | None = None,
     G : ndarray, shape (B, g, m), optional
         Inequality rows (``G u <= h``), in addition to ``u >= 0``.
     h : ndarray, shape (B, g), optional
+    guess : ndarray of bool, shape (B, m + g), optional
+        A guessed active set per row (e.g. ``active`` of a nearby problem's solution),
+        as in :func:`solve_quadratic_batch`.
 
     Returns
     -------
@@ -112,10 +116,11 @@ def solve_batch(A: np.ndarray, b: np.ndarray, G: np.ndarray | None = None,
     """
     A = np.asarray(A, dtype=float)
     b = np.asarray(b, dtype=float)
-    H = np.einsum("bni,bnj->bij", A, A)
-    c = np.einsum("bni,bn->bi", A, b)
-    const = np.einsum("bn,bn->b", b, b)
-    return solve_quadratic_batch(H, c, const, G, h)
+    At = np.swapaxes(A, 1, 2)
+    H = np.matmul(At, A)
+    c = np.matmul(At, b[:, :, None])[:, :, 0]
+    const = (b * b).sum(axis=1)
+    return solve_quadratic_batch(H, c, const, G, h, guess=guess)
 
 
 def _kkt_fixed(H: np.ndarray, c: np.ndarray, Gall: np.ndarray, hall: np.ndarray,

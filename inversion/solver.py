@@ -517,19 +517,26 @@ def _step(U, TH, Gm, c0, Jc, lam, free, fix, m, guess=None):
 
 
 def _linearised_step(U, TH, Gm, c0, Jc, lam, bounds, m, guess=None):
-    """A step with the volatility box handled by holding violators at their bound."""
+    """A step with the volatility box handled by holding violators at their bound (the
+    rows whose step leaves the box are solved again, the others keep theirs)."""
     lo, hi = bounds
     B, pp = TH.shape
     free = np.ones((B, pp), dtype=bool)
     fix = np.zeros((B, pp))
-    for _ in range(pp + 1):
-        Un, Tn, pred, ok, act = _step(U, TH, Gm, c0, Jc, lam, free, fix, m, guess)
+    Un, Tn, pred, ok, act = _step(U, TH, Gm, c0, Jc, lam, free, fix, m, guess)
+    for _ in range(pp):
         out = free & ((Tn < lo) | (Tn > hi))
-        if not out.any():
+        rows = np.flatnonzero(out.any(axis=1))
+        if rows.size == 0:
             break
-        free &= ~out
-        target = np.where(Tn < lo, lo, hi)
-        fix = np.where(out, target - TH, fix)
+        o = out[rows]
+        free[rows] &= ~o
+        target = np.where(Tn[rows] < lo[rows], lo[rows], hi[rows])
+        fix[rows] = np.where(o, target - TH[rows], fix[rows])
+        g = None if guess is None else guess[rows]
+        res = _step(U[rows], TH[rows], Gm[rows], c0[rows], Jc[rows], lam[rows], free[rows],
+                    fix[rows], m, g)
+        Un[rows], Tn[rows], pred[rows], ok[rows], act[rows] = res
     Tn = np.clip(Tn, lo, hi)
     Un = np.clip(Un, 0.0, None)
     Un = Un / Un.sum(axis=1, keepdims=True)
