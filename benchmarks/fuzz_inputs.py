@@ -221,7 +221,7 @@ def gen_comp_table(rng: random.Random, kind: str) -> Ex:
            "dup-element", "oxide-and-element", "extra-col", "missing-col",
            "sep=", "header-twice", "long-cell", "ppm-huge"]
     if kind == "component":
-        ops += ["iso-header", "iso-header-ok", "name-lib", "kind-bad"]
+        ops += ["iso-header", "iso-header-ok", "iso-header-twice", "name-lib", "kind-bad"]
     op = rng.choice(ops)
     exp = "fail"
     if op == "hostile-value":
@@ -312,10 +312,13 @@ def gen_comp_table(rng: random.Random, kind: str) -> Ex:
     elif op == "iso-header":
         bad = rng.choice(["inf 0.1", "nan 0.2", "0.3 -0.1", "0.3 0", "0.1 nan", "1e5 1",
                           "0.1", "0.1 0.2 0.3", "x y"])
-        com = com + [f"# {rng.choice(['e54Cr', 'e50Ti', 'D17O', 'e48Ca'])}: {bad}"]
+        key = rng.choice(['e54Cr', 'e50Ti', 'D17O', 'e48Ca'])
+        com = [c for c in com if not c.startswith(f"# {key}:")] + [f"# {key}: {bad}"]
     elif op == "iso-header-ok":
-        com = com + ["# e54Cr: 0.50 0.10"]
+        com = [c for c in com if not c.startswith("# e54Cr:")] + ["# e54Cr: 0.50 0.10"]
         exp = "pass"
+    elif op == "iso-header-twice":
+        com = com + ["# e54Cr: 0.50 0.10"]  # the template holds one already
     elif op == "name-lib":
         com = [c for c in com if not c.startswith("# name:")] + [
             f"# name: {rng.choice(['CI', 'EH', 'CV', 'BSE_MS95'])}"]

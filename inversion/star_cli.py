@@ -176,6 +176,9 @@ def _batch(parser: argparse.ArgumentParser):
         if args.scheduler and args.workers is not None:
             raise InputError("--workers applies to a local cluster; with --scheduler the "
                              "cluster decides", field="--workers", value=args.workers)
+        if args.partition_size < 1:  # before a cluster is started
+            raise InputError("must be at least 1", field="--partition-size",
+                             value=args.partition_size)
         client = cluster = None
         if args.scheduler:
             from distributed import Client

@@ -719,14 +719,105 @@ def test_command_line_classes_give_one_line_and_status_2(
         ["star", "star_abundances.csv", "--out", "s", "--star-id", ""],
         ["star", "star_abundances.csv", "--out", "s", "--planet-mass-kg", "1e40"],
         ["star", "star_abundances.csv", "--out", "s", "--pattern", "y" * 300],
+        ["star", "star_abundances.csv", "--out", "s", "--dIW=-1000"],
+        ["star", "star_abundances.csv", "--out", "s", "--seed", "-1"],
         ["batch", "catalog.csv", "--out", "b", "--resume", "--workers", "1"],
+        ["batch", "catalog.csv", "--out", "b2", "--partition-size", "0"],
     ]
     for args in runs:
         assert main(args) == 2, args
         err = capsys.readouterr().err
         assert err.startswith("planetmix: error:") and err.count("\n") == 1, (args, err)
     assert not (tmp_path / "d.svg").exists() and not (tmp_path / "s").exists()
-    assert not (tmp_path / "r").exists()
+    assert not (tmp_path / "r").exists() and not (tmp_path / "b2").exists()
+
+
+def _case_folder(tmp_path: Path, edit: Callable[[str], str] | None = None) -> Path:
+    for name in ("target.csv", "component.csv"):
+        (tmp_path / name).write_text(_template(name), encoding="utf-8")
+    text = _template("case.toml")
+    path = tmp_path / "case.toml"
+    path.write_text(edit(text) if edit else text, encoding="utf-8")
+    return path
+
+
+@pytest.mark.parametrize("special", ["fifo", "dev-zero", "dev-urandom", "sparse", "folder"])
+def test_special_files_are_refused_before_reading(tmp_path: Path, special: str) -> None:
+    """Class: a FIFO as a component, case file or --pattern hung; /dev/zero or
+    /dev/urandom grew memory without bound; a folder gave IsADirectoryError. Every
+    door refuses them at once (an alarm fails the test instead of hanging it)."""
+    import os
+    import signal
+
+    from components.exceptions import InputError
+    from inversion import batch, case, star
+
+    if special == "fifo":
+        path = tmp_path / "in.csv"
+        os.mkfifo(path)
+    elif special == "sparse":
+        path = tmp_path / "in.csv"
+        with open(path, "wb") as fh:
+            fh.truncate(300 * 2 ** 20)  # holes only: no disk used
+    elif special == "folder":
+        path = tmp_path / "in.csv"
+        path.mkdir()
+    else:
+        path = Path("/dev/zero" if special == "dev-zero" else "/dev/urandom")
+    doors = [lambda: case.read_target(path), lambda: case.load_case(path),
+             lambda: star.read_star_table(path), lambda: batch.read_catalogue(path),
+             lambda: star.read_pattern(path),
+             lambda: case._resolve_component(str(path), tmp_path, "case.toml", "c")]
+
+    def hung(*_: object) -> None:
+        raise TimeoutError("a door read a special file")
+
+    old = signal.signal(signal.SIGALRM, hung)
+    try:
+        for door in doors:
+            signal.alarm(10)
+            with pytest.raises(InputError) as err:
+                door()
+            signal.alarm(0)
+            assert str(path) in str(err.value) and "\n" not in str(err.value)
+    finally:
+        signal.alarm(0)
+        signal.signal(signal.SIGALRM, old)
+
+
+@pytest.mark.parametrize("value", ['"banana"', "[0.7, 0.2]", "[0.2, 1.5]", "[true, 0.5]",
+                                   "0.3"])
+def test_cmf_range_is_checked(tmp_path: Path, value: str) -> None:
+    """Class: [fit] cmf_range accepted with any value (even "banana")."""
+    from components.exceptions import InputError
+    from inversion.case import load_case
+
+    path = _case_folder(tmp_path, lambda t: t.replace("# cmf_range = [0.20, 0.35]",
+                                                      f"cmf_range = {value}"))
+    with pytest.raises(InputError) as err:
+        load_case(path)
+    assert err.value.field == "fit.cmf_range"
+    ok = _case_folder(tmp_path, lambda t: t.replace("# cmf_range = [0.20, 0.35]",
+                                                    "cmf_range = [0.20, 0.35]"))
+    assert load_case(ok).cmf_range == (0.20, 0.35)
+
+
+def test_mass_fractions_far_above_100_wt_percent_are_refused(tmp_path: Path) -> None:
+    """Class: a table whose concentrations sum far above 100 wt% (each value plausible
+    on its own) was accepted."""
+    from components.exceptions import InputError
+    from inversion import case
+
+    comments, header, rows = _split(_template("target.csv"))
+    iv, iu = header.index("value"), header.index("unit")
+    for r in rows:
+        if r[iu] == "wt%":
+            r[iv] = f"{float(r[iv]) * 1.6:g}"  # each below 100 wt%, the sum ~160
+    path = tmp_path / "t.csv"
+    path.write_text(_join(comments, header, rows), encoding="utf-8")
+    with pytest.raises(InputError) as err:
+        case.read_target(path, default_uncertainty_pct=10)
+    assert "105" in str(err.value) and str(path) in str(err.value)
 
 
 if __name__ == "__main__":  # pragma: no cover - the report's counts
