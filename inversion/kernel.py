@@ -178,15 +178,21 @@ def solve_core(xp: Any, c: Static, a: Any, D: Any, s0: Any | None = None
         return _solve_feo_numpy(c, a, D, None if s0 is None else s0[..., 0])
     s = start_state(xp, c, tuple(a.shape[:-1])) if s0 is None else s0
     if xp is np:
-        res: dict[str, Any] = {}
-        for _ in range(CORE_ITERATIONS):
-            nxt, res = core_step(np, c, a, D, s)
-            done = _converged(np, nxt, s)
-            s = nxt
-            if done:
-                break
-        return s, res
+        return _plain_iteration(c, a, D, s)
     return _solve_core_jax(c, a, D, s)
+
+
+def _plain_iteration(c: Static, a: np.ndarray, D: np.ndarray, s: np.ndarray
+                     ) -> tuple[np.ndarray, dict[str, np.ndarray]]:
+    """``s <- G(s)`` on numpy over the whole batch until every row has converged."""
+    res: dict[str, Any] = {}
+    for _ in range(CORE_ITERATIONS):
+        nxt, res = core_step(np, c, a, D, s)
+        done = _converged(np, nxt, s)
+        s = nxt
+        if done:
+            break
+    return s, res
 
 
 def _solve_feo_numpy(c: Static, a: np.ndarray, D: np.ndarray, k0: np.ndarray | None
@@ -283,13 +289,7 @@ def solve_feo_element_major(c: Static, at: np.ndarray, Dt: np.ndarray,
         sub = np.flatnonzero(repel)
         a_sub = np.ascontiguousarray(at[:, sub].T)
         D_sub = Dt[:, 0] if Dt.shape[1] == 1 else np.ascontiguousarray(Dt[:, sub].T)
-        sk = np.full((sub.size, 1), K_START)
-        for _ in range(CORE_ITERATIONS):
-            nxt, _ = core_step(np, c, a_sub, D_sub, sk)
-            done = _converged(np, nxt, sk)
-            sk = nxt
-            if done:
-                break
+        sk, _ = _plain_iteration(c, a_sub, D_sub, np.full((sub.size, 1), K_START))
         k = k.copy()
         k[sub] = sk[:, 0]
     mt = at / (1.0 + Dt * k)
