@@ -29,6 +29,7 @@ from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
 
+import numpy as np
 import pytest
 
 TEMPLATES = Path(__file__).resolve().parents[2] / "inversion" / "templates"
@@ -818,6 +819,58 @@ def test_mass_fractions_far_above_100_wt_percent_are_refused(tmp_path: Path) -> 
     with pytest.raises(InputError) as err:
         case.read_target(path, default_uncertainty_pct=10)
     assert "105" in str(err.value) and str(path) in str(err.value)
+
+
+@pytest.mark.parametrize("edit,field", [
+    (lambda t: t.replace("[core.D]\nNi = 26.0\n", "").replace(
+        "mantle_FeO_wt = 8.05", "mantle_FeO_wt = 8.05\nD = true"), "core.D"),
+    (lambda t: t.replace("[isotopes]", "[isotopes_old]").replace(
+        "e54Cr = [0.0, 0.1]\ne50Ti = [0.0, 0.1]\n", "").replace(
+        "[isotopes_old]", "").replace('title = "', 'isotopes = 2\ntitle = "'), "isotopes"),
+    (lambda t: t.replace("[priors]", "[priors_old]").replace(
+        'tau = {dist = "HalfNormal", sigma = 0.05}', "").replace("[priors_old]", "").replace(
+        'title = "', 'priors = -2.5\ntitle = "'), "priors"),
+    (lambda t: t.replace('tau = {dist = "HalfNormal", sigma = 0.05}',
+                         "tau = {dist = [1, 2]}"), "priors.tau"),
+    (lambda t: t.replace('table = "target.csv"', "table = 0.0"), "target.table"),
+    (lambda t: t.replace("# cmf_range = [0.20, 0.35]", 'cmf_range = ["a", 0.7]'),
+     "fit.cmf_range"),
+])
+def test_the_issue_examples_of_wrong_types(tmp_path: Path, edit: Callable[[str], str],
+                                           field: str) -> None:
+    """Class: case values of the wrong type (the issue's own examples) gave
+    AttributeError/TypeError in case.py and bayes.py."""
+    from components.exceptions import InputError
+    from inversion.case import load_case
+
+    with pytest.raises(InputError) as err:
+        load_case(_case_folder(tmp_path, edit))
+    assert str(err.value.field).startswith(field) and "\n" not in str(err.value)
+
+
+def test_a_planet_with_non_finite_results_is_never_a_success() -> None:
+    """Class: star abundances of +-400 dex or uncertainties of 1e300 gave all-NaN
+    planets marked ``ok``. The door refuses such rows; behind it, rows built directly
+    with those values (as a caller of the library could) still come out ``failed``,
+    while a normal star in the same partition is ``ok`` with finite results."""
+    from inversion.batch import CatalogueRow, run_partition
+    from inversion.star import StarInput, StarSettings, earth_calibrated_pattern
+
+    settings = StarSettings(pattern=earth_calibrated_pattern(), draws=50, seed=5)
+    base = {"Fe": 0.0, "Mg": 0.0, "Si": 0.0}
+    err = {"Fe": 0.05, "Mg": 0.05, "Si": 0.05}
+    stars = [("normal", base, err), ("plus400", {**base, "Mg": 400.0}, err),
+             ("minus400", {**base, "Fe": -400.0}, err),
+             ("sigma1e300", base, {**err, "Si": 1e300})]
+    rows = [CatalogueRow(i + 2, sid, StarInput(sid, v, e, ()))
+            for i, (sid, v, e) in enumerate(stars)]
+    out = run_partition(rows, settings).set_index("star_id")
+    medians = [c for c in out.columns if c.endswith("_median")]
+    assert out.loc["normal", "status"] == "ok"
+    assert np.isfinite(out.loc["normal", medians].to_numpy(float)).all()
+    for sid in ("plus400", "minus400", "sigma1e300"):
+        ok = out.loc[sid, "status"] == "ok"
+        assert not ok or np.isfinite(out.loc[sid, medians].to_numpy(float)).all(), sid
 
 
 if __name__ == "__main__":  # pragma: no cover - the report's counts
