@@ -66,7 +66,7 @@ class Static:
     atomic_weight: np.ndarray  # (n,)
     cations: np.ndarray       # (n,)
     mantle_Fe: float | None
-    dIW: float | None
+    dIW: Any                  # float, None (mantle FeO split) or (B,) per row (numpy)
     q_late: np.ndarray        # (n,)
     c_late_R: float
     q_ci: np.ndarray          # (n,)
@@ -112,9 +112,16 @@ def start_state(xp: Any, c: Static, batch: tuple[int, ...]) -> Any:
     """Start of the fixed point, shape ``batch + (d,)`` (d = 1 or 2)."""
     if c.mantle_Fe is not None:
         return xp.full(batch + (1,), K_START)
-    d_fe = 10.0 ** (-c.dIW / 2.0) * 50.0 / 55.0
-    return xp.concatenate([xp.full(batch + (1,), K_START), xp.full(batch + (1,), d_fe)],
-                          axis=-1)
+    d_fe = _fe_ratio(c) * 50.0 / 55.0
+    return xp.concatenate([xp.full(batch + (1,), K_START),
+                           xp.broadcast_to(d_fe, batch + (1,))], axis=-1)
+
+
+def _fe_ratio(c: Static) -> Any:
+    """``10**(-dIW/2)``: a scalar, or (..., 1) for a per-row dIW (batch shape)."""
+    if np.ndim(c.dIW) == 0:
+        return 10.0 ** (-float(c.dIW) / 2.0)
+    return (10.0 ** (-np.asarray(c.dIW, float) / 2.0))[..., None]
 
 
 def core_step(xp: Any, c: Static, a: Any, D: Any, s: Any) -> tuple[Any, dict[str, Any]]:
@@ -155,7 +162,7 @@ def core_step(xp: Any, c: Static, a: Any, D: Any, s: Any) -> tuple[Any, dict[str
     mol_sil = _sum(xp, m / (aw * c.cations))
     mol_met = _sum(xp, xp.maximum(core, 0.0) / aw)
     mbar_met = xp.where(mol_met > 0, M_c / xp.maximum(mol_met, 1e-300), aw[fe])
-    nxt_d = 10.0 ** (-c.dIW / 2.0) * (M_s / mol_sil) / mbar_met
+    nxt_d = _fe_ratio(c) * (M_s / mol_sil) / mbar_met
     nxt = xp.concatenate([xp.maximum(M_c, 0.0) / M_s, nxt_d], axis=-1)
     return nxt, {"mantle": m, "core": core, "M_s": M_s, "M_c": M_c, "D_Fe": nxt_d}
 

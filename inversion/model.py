@@ -574,7 +574,8 @@ def relative_log_retained(p: Problem, vol: np.ndarray) -> np.ndarray:
 
 
 def forward(p: Problem, w: np.ndarray, vol: np.ndarray, lam: np.ndarray | float = 0.0,
-            *, D: np.ndarray | None = None) -> dict[str, np.ndarray]:
+            *, D: np.ndarray | None = None, dIW: np.ndarray | None = None
+            ) -> dict[str, np.ndarray]:
     """Run the forward model for a batch of parameter sets (:func:`inversion.kernel.forward`
     on numpy).
 
@@ -589,6 +590,9 @@ def forward(p: Problem, w: np.ndarray, vol: np.ndarray, lam: np.ndarray | float 
         Late-accretion mass fraction of the final mantle.
     D : ndarray, shape (n,) or (B, n), optional
         Effective partition coefficients (defaults to ``p.D``).
+    dIW : ndarray, shape (B,), optional
+        Per-row redox state of the iron split (a problem with the redox split only;
+        defaults to ``p.dIW``).
 
     Returns
     -------
@@ -606,6 +610,10 @@ def forward(p: Problem, w: np.ndarray, vol: np.ndarray, lam: np.ndarray | float 
     vol = np.broadcast_to(vol, (B, vol.shape[1]))
     lam = np.broadcast_to(np.asarray(lam, float), (B,))
     c = kernel.static_of(p)
+    if dIW is not None:
+        if p.dIW is None:
+            raise ValueError("a per-row dIW needs a problem with the redox iron split")
+        c = replace(c, dIW=np.broadcast_to(np.asarray(dIW, float), (B,)))
     with np.errstate(divide="ignore"):
         out = kernel.forward(np, c, w, vol, lam, p.D if D is None else np.asarray(D, float))
     out.pop("state")

@@ -125,17 +125,14 @@ def posterior_arrays(p: Problem, idata: Any) -> dict[str, np.ndarray]:
 
 def _forward_draws(p: Problem, d: dict[str, np.ndarray]) -> dict[str, Any]:
     """The numpy forward model at the posterior draws; with a sampled dIW (which sets
-    the iron split) one draw at a time, each at its own dIW."""
+    the iron split) each draw at its own dIW (per-row dIW of the forward model)."""
     if "dIW" not in d:
         return forward(p, d["w"], d["vol"], d["lam"], D=d["D"])
-    from dataclasses import replace
+    if p.dIW is None:
+        from dataclasses import replace
 
-    rows = [forward(replace(p, dIW=float(x)), d["w"][i:i + 1], d["vol"][i:i + 1],
-                    d["lam"][i:i + 1], D=d["D"][i:i + 1]) for i, x in enumerate(d["dIW"])]
-    first = rows[0]
-    return {k: (np.concatenate([r[k] for r in rows], axis=0)
-                if isinstance(v, np.ndarray) and v.ndim >= 1 and v.shape[0] == 1 else v)
-            for k, v in first.items()}
+        p = replace(p, dIW=float(np.median(d["dIW"])))
+    return forward(p, d["w"], d["vol"], d["lam"], D=d["D"], dIW=d["dIW"])
 
 
 def posterior_planet(p: Problem, idata: Any, *, planet_mass_kg: float | None = None
