@@ -870,6 +870,12 @@ class Ranking:
         return self.table.copy()
 
 
+#: Hypotheses per screening job (at most): the polish of a job runs as one batch, and
+#: each batch ends in a tail of a few slow rows that costs per call, not per row, so
+#: fewer, larger jobs are faster; the jobs of a size are split evenly over the workers.
+SCREEN_JOB_HYPOTHESES = 256
+
+
 def _solve_nested(p: Problem, max_size: int, settings: FitSettings, *, workers: int = 1,
                   progress: bool = False) -> list[FitResult]:
     """Every mixture of up to ``max_size`` of the problem's blocks, smallest first, each
@@ -881,7 +887,7 @@ def _solve_nested(p: Problem, max_size: int, settings: FitSettings, *, workers: 
     bar = tqdm(total=total, desc="hypotheses", disable=not progress, unit="fit")
     fits: list[FitResult] = []
     solved: dict[tuple[str, ...], FitResult] = {}
-    chunk = 24  # hypotheses per job: large enough to batch, small enough to spread
+    chunk = SCREEN_JOB_HYPOTHESES
     ex = ProcessPoolExecutor(max_workers=workers) if workers > 1 else None
     try:
         for r in range(1, max_size + 1):
