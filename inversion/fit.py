@@ -546,8 +546,11 @@ def _solve_group(p: Problem, subsets: list[tuple[str, ...]], settings: FitSettin
     return out
 
 
-def _result(p: Problem, rec: dict[str, Any], settings: FitSettings) -> FitResult:
-    """Build the FitResult of one hypothesis from its solved record."""
+def _result(p: Problem, rec: dict[str, Any], settings: FitSettings,
+            fwd: dict[str, np.ndarray] | None = None) -> FitResult:
+    """Build the FitResult of one hypothesis from its solved record (``fwd``: the
+    forward model at the answer, with its late-accretion fraction, when computed for
+    several hypotheses at once by :func:`_answers_forward`)."""
     form = p.volatility_form
     K = p.Q.shape[0]
     has_late = p.late_name is not None
@@ -559,9 +562,11 @@ def _result(p: Problem, rec: dict[str, Any], settings: FitSettings) -> FitResult
     vol = rec["theta"]
     w = u[:K] / u[:K].sum()
     v = float(u[K]) if has_late else 0.0
-    fwd0 = forward(p, w[None], vol[None], 0.0)
-    lam = float(lam_from_v(p, np.array([v]), fwd0["M_s"])[0]) if has_late else 0.0
-    fwd = forward(p, w[None], vol[None], lam)
+    if fwd is None:
+        fwd0 = forward(p, w[None], vol[None], 0.0)
+        lam = float(lam_from_v(p, np.array([v]), fwd0["M_s"])[0]) if has_late else 0.0
+        fwd = forward(p, w[None], vol[None], lam)
+    lam = float(fwd["lam"][0]) if has_late else 0.0
     resid = _residual_table(p, fwd)
     iso_pred = _isotope_prediction(p, w, v)
     intervals = _intervals(p, u, vol, settings, rec.get("box")) if settings.intervals else {}
@@ -712,7 +717,31 @@ def _fit_group(args: tuple[Problem, list[tuple[str, ...]], FitSettings,
     """Fit equal-size hypotheses together (one worker's share of a screen)."""
     p, subsets, settings, extra = args
     recs = _solve_group(p, subsets, settings, extra)
-    return [_result(p.subset(s), rec, settings) for s, rec in zip(subsets, recs, strict=True)]
+    fwds = _answers_forward(p, subsets, recs)
+    return [_result(p.subset(s), rec, settings, fw)
+            for s, rec, fw in zip(subsets, recs, fwds, strict=True)]
+
+
+def _answers_forward(p: Problem, subsets: list[tuple[str, ...]],
+                     recs: list[dict[str, Any]]) -> list[dict[str, np.ndarray] | None]:
+    """The forward model at the answers of equal-size hypotheses, in one batch (the
+    late-accretion fraction from the late weight at the answer's core split)."""
+    ok = [h for h, rec in enumerate(recs) if rec.get("feasible")]
+    out: list[dict[str, np.ndarray] | None] = [None] * len(recs)
+    if not ok:
+        return out
+    K = len(subsets[0])
+    ps = p.stacked([subsets[h] for h in ok], 1)
+    U = np.array([recs[h]["u"] for h in ok])
+    TH = np.array([recs[h]["theta"] for h in ok])
+    W = U[:, :K] / U[:, :K].sum(axis=1, keepdims=True)
+    lam = np.zeros(len(ok))
+    if p.late_name is not None:
+        lam = lam_from_v(p, U[:, K], forward(ps, W, TH, 0.0)["M_s"])
+    fwd = forward(ps, W, TH, lam)
+    for i, h in enumerate(ok):
+        out[h] = {key: val[i:i + 1] for key, val in fwd.items()}
+    return out
 
 
 def _isotope_prediction(p: Problem, w: np.ndarray, v: float) -> dict[str, float]:
