@@ -76,8 +76,10 @@ class FitSettings:
                    "warm primal-dual start where a guess exists, enumeration of the active "
                    "sets where neither verifies; cvxpy/CLARABEL above 7 variables) on the "
                    "volatility grid; polish: Levenberg-Marquardt on all parameters "
-                   "(finite-difference Jacobian through the core fixed point, exact QP "
-                   "steps, restoration of infeasible starts); kinked forms: 10 iterations "
+                   "(Jacobian through the core fixed point: residual columns analytic, the "
+                   "core state by the implicit-function derivative of one core step per "
+                   "column, constraint columns by differences; exact QP steps, "
+                   "restoration of infeasible starts); kinked forms: 10 iterations "
                    "on the whole box, then the best four answers of each hypothesis "
                    "within 20% of its best on the smooth piece of T0 they lie in, moving "
                    "to the next piece while they end on its edge")

@@ -16,8 +16,12 @@ a grid. This module polishes a batch of starting points on the whole problem:
 Notes
 -----
 Each iteration is a Levenberg-Marquardt step of the residuals linearised in all
-parameters, with the Jacobian taken by finite differences of the forward model (so the
-dependence of ``k`` on the weights and on theta is included). The volatility step is
+parameters, with the Jacobian taken through the core fixed point (so the dependence of
+``k`` on the weights and on theta is included) without solving it again per column: the
+residual columns are analytic in the mantle ratios, whose change over each column's step
+(the fd_step settings) comes from one core step and the implicit-function derivative at
+the base state (:func:`_jacobian`); the late weight's column is the late component's
+ratios; the constraint columns are differences of their values. The volatility step is
 eliminated in closed form, which leaves a quadratic form in ``u`` alone:
 with ``J_t`` the residual Jacobian of the free volatility parameters and
 ``P = I - J_t (J_t' J_t + lambda S_t)^-1 J_t'``, the step minimises
