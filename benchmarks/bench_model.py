@@ -3,17 +3,27 @@
 Prints, for the four-block demo planet (case_studies/demo/orrin.toml):
 
 - the first compile of the log density and its gradient with empty caches (cold) and
-  again with the caches the first one filled (warm) (nutpie engine), and the compile
-  seconds inside the sampling run (any engine);
+  again with the caches the first one filled (warm): nutpie's compile, or for the
+  engines that compile inside the run (NumPyro) the compile seconds of a run of 5 + 5
+  draws; and the compile seconds inside the sampling run;
 - NUTS sampling of 4 chains x 1000 draws (1000 tuning): seconds, the smallest bulk ESS
   of the free parameters, ESS per second, divergences;
-- batched forward evaluations per second (numpy, 4096 parameter sets).
+- batched forward evaluations per second (numpy, 4096 parameter sets);
+- the cost of one evaluation of the log density and its gradient (CPU microseconds, so
+  that other work on the machine does not enter): inside one XLA loop (how NumPyro runs
+  it) and per Python call (how nutpie calls it), and the end-member variance in the
+  broadcast form of ``kernel.end_member_variance`` against the two products of
+  ``jaxmodel.predictions`` (before/after in the same process, with the ratio).
+
+CPU seconds of the sampling run are printed beside the wall seconds: on a shared machine
+ESS per CPU second is the figure that compares runs made under different loads.
 
 Run from the repository (any tree: the script uses the ``inversion`` package found on
 ``sys.path``, so ``PYTHONPATH=/other/tree python benchmarks/bench_model.py`` measures
 another implementation under the same conditions)::
 
     .venv/bin/python benchmarks/bench_model.py [--draws 1000] [--json FILE]
+        [--engine numpyro --chain-method sequential|vectorized|parallel]
 
 ``benchmarks/compare_model.py`` runs this script on two trees in turn and prints ratios.
 """
@@ -26,18 +36,107 @@ import os
 import subprocess
 import sys
 import tempfile
+import textwrap
 from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[1]
 CASE = ROOT / "case_studies" / "demo" / "orrin.toml"
 
 
-def _child(stage: str, draws: int, cache: str, engine: str) -> dict:
+GRADIENT_CODE = """
+import jax, jax.numpy as jnp
+from jax.flatten_util import ravel_pytree
+from pymc.sampling.jax import get_jaxified_logp
+from inversion import kernel
+from inversion.bayes.priors import _partitioned
+
+
+def loop_us(vg, x0, N=2000):
+    # N evaluations inside one compiled loop, CPU time of the process, best of 5
+    def run(x):
+        def body(i, carry):
+            x, acc = carry
+            v, g = vg(x)
+            return x + 1e-12 * g, acc + v
+        return jax.lax.fori_loop(0, N, body, (x, 0.0))
+    f = jax.jit(run)
+    jax.block_until_ready(f(x0))
+    best = []
+    for _ in range(5):
+        t = time.process_time()
+        jax.block_until_ready(f(x0))
+        best.append(time.process_time() - t)
+    return min(best) / N * 1e6
+
+
+def call_us(vg, x0, N=2000):
+    f = jax.jit(vg)
+    jax.block_until_ready(f(x0))
+    best = []
+    for _ in range(5):
+        t = time.process_time()
+        for _ in range(N):
+            r = f(x0)
+            jax.block_until_ready(r)
+        best.append(time.process_time() - t)
+    return min(best) / N * 1e6
+
+
+m = bayes.build_model(p)
+logp = get_jaxified_logp(m, negative_logp=False)
+ip = m.initial_point()
+x0, unravel = ravel_pytree([jnp.asarray(ip[v.name], dtype=float) for v in m.value_vars])
+vg = jax.value_and_grad(lambda x: logp(unravel(x)))
+out["logp_grad_loop_us"] = loop_us(vg, x0)
+out["logp_grad_call_us"] = call_us(vg, x0)
+# the end-member variance: broadcast form (kernel) against two products (jaxmodel)
+c = kernel.static_of(p)
+fit = np.asarray(p.fit_index)
+part = np.asarray(_partitioned(p))
+D0 = np.asarray(p.D, float)
+Q = np.asarray(p.Q, float)[:, fit]
+S = np.asarray(p.Q_sigma_dex, float)[:, fit]
+QS2 = (Q * S) ** 2
+K = len(p.components)
+z0 = jnp.concatenate([jnp.full(K, 1.0 / K), jnp.array([1300.0, 0.002, 0.003]),
+                      jnp.log10(jnp.asarray(D0[part]))])
+
+
+def density(form):
+    def f(z):
+        w, vol, lam, lD = z[:K], z[K:K + 2], z[K + 2], z[K + 3:]
+        o = kernel.forward(jnp, c, w, vol, lam, jnp.asarray(D0).at[part].set(10.0 ** lD))
+        em = (kernel.end_member_variance(jnp, Q, S, w) if form == "broadcast"
+              else (w * w) @ QS2 / (w @ Q) ** 2)
+        return -0.5 * jnp.sum((o["log10N"][fit] - p.y) ** 2 / (p.sigma ** 2 + em))
+    return jax.value_and_grad(f)
+
+
+for form in ("broadcast", "products", "broadcast", "products"):
+    out.setdefault("em_" + form + "_loop_us", []).append(loop_us(density(form), z0))
+for form in ("broadcast", "products"):
+    out["em_" + form + "_loop_us"] = min(out["em_" + form + "_loop_us"])
+out["em_products_over_broadcast"] = (out["em_products_loop_us"]
+                                     / out["em_broadcast_loop_us"])
+"""
+
+
+def _child(stage: str, draws: int, cache: str, engine: str, chain_method: str,
+           gradient: bool = False) -> dict:
     env = {**os.environ, "PLANETMIX_JAX_CACHE": cache, "NUMBA_CACHE_DIR": cache,
            "PYTENSOR_FLAGS": f"compiledir={cache}/pytensor"}
+    pre = ""
+    if chain_method == "parallel":  # one XLA CPU device per chain, before JAX starts
+        pre = "import jax; jax.config.update('jax_num_cpu_devices', 4)"
     code = f"""
-import json, sys, time
+{pre}
+import json, os, sys, time
 import numpy as np
+try:  # trees before the sampler's split have no engines module
+    import inversion.bayes.engines as engines
+    engines.NUMPYRO_CHAIN_METHOD = {chain_method!r}
+except ImportError:
+    pass
 from inversion.case import load_case
 from inversion.model import compile_problem, forward
 from inversion import bayes
@@ -49,7 +148,13 @@ out["build_seconds"] = time.perf_counter() - t
 if {engine!r} == "nutpie":
     runner = bayes._NutpieModel.build(model)
     out["compile_seconds"] = runner.compile_seconds
+else:  # the engine compiles the whole sampler inside the run: a run of 5 + 5 draws
+    r = bayes.sample(p, bayes.SamplerSettings(draws=5, tune=5, chains=4, seed=1,
+                                              engine={engine!r}),
+                     posterior_predictive=False, log_likelihood=False)
+    out["compile_seconds"] = r.timing["compile_seconds"]
 if {stage!r} == "sample":
+    cpu = time.process_time()
     res = bayes.sample(p, bayes.SamplerSettings(draws={draws}, tune={draws}, chains=4,
                                                  seed=1, engine={engine!r}),
                        posterior_predictive=False,
@@ -58,6 +163,7 @@ if {stage!r} == "sample":
     names = bayes.parameter_names(bayes.build_model(p))
     ess = az.ess(res.idata, var_names=names)
     emin = min(float(ess[n].values.min()) for n in names)
+    out["sample_cpu_seconds"] = time.process_time() - cpu
     out.update(sample_compile_seconds=res.timing["compile_seconds"],
                sampling_seconds=res.timing["sampling_seconds"], ess_bulk_min=emin,
                ess_per_second=emin / res.timing["sampling_seconds"],
@@ -71,6 +177,9 @@ if {stage!r} == "sample":
     for _ in range(5):
         forward(p, w, vol, 0.003)
     out["forward_per_second"] = 5 * B / (time.perf_counter() - t)
+    out["load_average"] = os.getloadavg()[0]
+    if {gradient!r}:
+{textwrap.indent(GRADIENT_CODE, "        ")}
 print("RESULT " + json.dumps(out))
 """
     r = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
@@ -86,16 +195,27 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--draws", type=int, default=1000)
     ap.add_argument("--json", type=Path)
     ap.add_argument("--engine", default="nutpie", help="sampler engine (nutpie, numpyro)")
+    ap.add_argument("--chain-method", default="sequential",
+                    choices=("sequential", "vectorized", "parallel"),
+                    help="NumPyro's way of running the chains (numpyro engine)")
+    ap.add_argument("--no-gradient", action="store_true",
+                    help="skip the per-evaluation cost of the log density and gradient")
     args = ap.parse_args(argv)
     with tempfile.TemporaryDirectory() as cache:
-        cold = _child("compile", args.draws, cache, args.engine)
-        warm = _child("sample", args.draws, cache, args.engine)
-    res = {"engine": args.engine, "cold_compile_seconds": cold.get("compile_seconds"),
+        cold = _child("compile", args.draws, cache, args.engine, args.chain_method)
+        warm = _child("sample", args.draws, cache, args.engine, args.chain_method,
+                      not args.no_gradient)
+    res = {"engine": args.engine, "chain_method": args.chain_method,
+           "cold_compile_seconds": cold.get("compile_seconds"),
            "cold_build_seconds": cold["build_seconds"],
            "warm_compile_seconds": warm.get("compile_seconds"), **{
                k: warm[k] for k in ("sample_compile_seconds", "sampling_seconds",
-                                    "ess_bulk_min", "ess_per_second", "divergences",
-                                    "forward_per_second", "implementation")}}
+                                    "sample_cpu_seconds", "ess_bulk_min", "ess_per_second",
+                                    "divergences", "forward_per_second", "load_average",
+                                    "logp_grad_loop_us", "logp_grad_call_us",
+                                    "em_broadcast_loop_us", "em_products_loop_us",
+                                    "em_products_over_broadcast", "implementation")
+               if k in warm}}
     for k, v in res.items():
         print(f"{k:>24}: {v:.4g}" if isinstance(v, float) else f"{k:>24}: {v}")
     if args.json:

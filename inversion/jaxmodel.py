@@ -56,6 +56,10 @@ def jax_setup() -> Any:
 
     if not _READY:
         jax.config.update("jax_enable_x64", True)
+        # run each call in the calling thread: nutpie calls the log density once per
+        # evaluation and waits for it, and handing a ~30 us computation to a worker
+        # thread and back cost more than the computation (docs/forward_model.md)
+        jax.config.update("jax_cpu_enable_async_dispatch", False)
         try:
             folder = cache_dir()
             folder.mkdir(parents=True, exist_ok=True)
