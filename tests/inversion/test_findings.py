@@ -152,7 +152,9 @@ def test_class_test_recovers_the_difference_within_its_stated_uncertainty(blocks
 @pytest.mark.xfail(strict=True, reason="measured 2026-12-02: detected 23 of 30 (77%) at "
                    "3 sigma with the blocks known exactly (stated 1-sigma 0.076 dex per "
                    "1000 K at 15% noise: 0.3 is 4.0 sigma, 84% expected; 83 of 100 with "
-                   "another seed, benchmarks/class_test_calibration.py power100); 6 of 30 "
+                   "another seed, benchmarks/class_test_calibration.py power100; 23 of 30 "
+                   "again with seed 12 of a rerun, 2026-12-02 session 2: pooled 129 of 160, "
+                   "81%, at the information limit of the Gauss-Newton curvature); 6 of 30 "
                    "with the library's end-member uncertainties (1-sigma 0.145)")
 def test_class_test_power_30_earth_like_bodies():
     """Issue 11 check: 0.3 dex per 1000 K detected in >= 80% of 30 Earth-like bodies."""
