@@ -89,7 +89,7 @@ _SAMPLER_TEXT = {
     "nutpie": "NUTS by nutpie (log density and gradient compiled with JAX; the physics "
               "is inversion.kernel), chains started from the convex optimum (jittered)",
     "numpyro": "NUTS by NumPyro on the same JAX log density (the whole sampler compiled "
-               "by XLA, chains vectorised), chains started from the convex optimum "
+               "by XLA, chains in parallel threads), chains started from the convex optimum "
                "(jittered)",
     "pymc": "NUTS by PyMC (log density compiled through pytensor's C backend), chains "
             "started from the convex optimum (jittered)",

@@ -19,7 +19,7 @@ class SamplerSettings:
     effective draws per chain). ``mass_matrix`` (nutpie only) is one of
     :data:`MASS_MATRICES`. ``engine`` chooses the NUTS implementation:
     ``"numpyro"`` (default; NumPyro's NUTS on the JAX log density, the whole sampler
-    compiled by XLA with the chains vectorised: the fastest to a result on the demo,
+    compiled by XLA, the chains in parallel threads: the fastest to a result on the demo,
     docs/forward_model.md), ``"nutpie"`` (nutpie's NUTS calling the same JAX log
     density from Rust, chains in threads; compiles once and swaps data, which is what
     the calibration runs use) or ``"pymc"`` (PyMC's own NUTS in Python, chains in
