@@ -221,6 +221,9 @@ def _misfit(p: Problem, U: np.ndarray, fw: dict[str, np.ndarray],
                             1e3 * np.minimum(C, 0.0)], axis=1)
         chi2 = (r ** 2).sum(axis=1)
         C = np.zeros((U.shape[0], 0))
+    # the variance travels with the forward quantities (the Jacobian at this point
+    # reads it)
+    fw = {**fw, "var": np.broadcast_to(var, r.shape[:1] + var.shape[1:])}
     return {"r": r, "chi2": chi2, "cons": C, "cmf": cmf, "M_s": M_s,
             "k": fw["state"][:, 0], "fw": fw, "var": var, "ratio": ratio}
 
@@ -424,7 +427,7 @@ def _jacobian(p: Problem, U: np.ndarray, TH: np.ndarray, base: dict[str, np.ndar
     if m > K:
         dratio[:, K] = p.q_late[fi]
     ratio = _ratio(p, U, fw0)
-    var = _variance(p, U)
+    var = fw0["var"] if "var" in fw0 else _variance(p, U)
     with np.errstate(divide="ignore", invalid="ignore"):
         r_fit = (np.log10(ratio / p.q_ci[None, fi]) - p.y[None, :]) / np.sqrt(var)
         Jr = dratio / (_LN10 * ratio * np.sqrt(var))[:, None, :]
