@@ -409,6 +409,10 @@ def _batch_kill_trials(tmp_path: Path, n_kills: int, seed: int) -> int:
         if out.exists():
             got = _batch_table(out)  # every partition on disk is whole
             assert got.empty or got["row"].is_unique
+        if rc == 0 and i < n_kills - 1:
+            # the run finished before the kill: start the next trial afresh (a resumed
+            # run has less left to do, so later kills would land after its end)
+            shutil.rmtree(out)
     done = _run([*args, "--out", "b", "--resume"], tmp_path)
     assert done.returncode == 0, done.stderr
     got = _batch_table(out).sort_values("row").reset_index(drop=True)
