@@ -202,11 +202,6 @@ def predictions(p: Any, partitioned: list[int] | tuple[int, ...] = ()) -> Any:
     has_em = q_sig is not None and bool(np.any(np.asarray(q_sig)[:, fit] > 0))
     Q_fit = np.asarray(p.Q, float)[:, fit]
     S_fit = np.asarray(q_sig, float)[:, fit] if has_em else None
-    # end-member variance as two small products (kernel.end_member_variance in the
-    # form sum_k w_k^2 (Q_ki s_ki)^2 / (sum_k w_k Q_ki)^2): the broadcast (K, m)
-    # form and its gradient cost ~10 us more per log density and gradient (measured,
-    # docs/forward_model.md)
-    QS2_fit = (Q_fit * S_fit) ** 2 if has_em else None
     isotopes = [{k: (np.asarray(v, float) if isinstance(v, np.ndarray) else v)
                  for k, v in d.items()} for d in p.isotopes]
 
@@ -228,7 +223,7 @@ def predictions(p: Any, partitioned: list[int] | tuple[int, ...] = ()) -> Any:
             D = D.at[part].set(10.0 ** log10D)
         out = kernel.forward(jnp, cs, w, vol, lam, D)
         mu = out["log10N"][fit]
-        em = ((w * w) @ QS2_fit / (w @ Q_fit) ** 2 if has_em
+        em = (kernel.end_member_variance(jnp, Q_fit, S_fit, w) if has_em
               else jnp.zeros(fit.size))
         preds, vars_ = [], []
         for iso in isotopes:
