@@ -265,7 +265,8 @@ def solve_feo_element_major(c: Static, at: np.ndarray, Dt: np.ndarray,
     a_fixed = at[fe] + a_s.sum(axis=0)
     k = np.full(B, K_START) if k0 is None else np.array(k0, float)
     frozen = np.zeros(B, dtype=bool)
-    for _ in range(CORE_ITERATIONS):
+    give = np.zeros(B, dtype=bool)  # columns handed to the plain iteration early
+    for it in range(CORE_ITERATIONS):
         den = 1.0 + D_s * k
         m_s = a_s / den
         dm = m_s * D_s / den  # minus dm_s/dk
@@ -280,6 +281,10 @@ def solve_feo_element_major(c: Static, at: np.ndarray, Dt: np.ndarray,
         done = np.abs(k_new - k) <= CORE_RTOL * (1.0 + k)
         k = np.where(frozen, k, k_new)
         frozen |= done
+        # no core (M_c <= 0) after a few steps: Newton wanders on h < 0; the plain
+        # iteration settles such a column (at k = 0) in two steps
+        give |= ~frozen & (M_c <= 0) & (it > 3)
+        frozen |= give
         if frozen.all():
             break
     # a root with dh/dk >= 0 is a repelling fixed point of k = G(k) (G' >= 1 there): the
@@ -291,7 +296,7 @@ def solve_feo_element_major(c: Static, at: np.ndarray, Dt: np.ndarray,
     dm = m_s * D_s / den
     M_s = (Lf + f_s @ m_s) * scale
     dM_s = -(f_s @ dm) * scale
-    repel = ((k > 0) & (dm.sum(axis=0) - F * dM_s - M_s - k * dM_s >= 0)) | ~frozen
+    repel = ((k > 0) & (dm.sum(axis=0) - F * dM_s - M_s - k * dM_s >= 0)) | ~frozen | give
     if repel.any():
         sub = np.flatnonzero(repel)
         a_sub = np.ascontiguousarray(at[:, sub].T)
