@@ -231,32 +231,37 @@ def _impute(comp: pd.Series, ci: pd.Series, els: list[str], classes: pd.Series,
     neighbours' levels, at least :data:`IMPUTE_MIN_SIGMA_DEX`; with no element of the same
     class held, the median over everything held with :data:`IMPUTE_FALLBACK_SIGMA_DEX`.
     """
-    vals = np.empty(len(els))
-    imp = np.zeros(len(els), dtype=bool)
-    sig = np.zeros(len(els))
-    present = [e for e in els if e in comp.index and comp[e] > 0]
-    lognorm = pd.Series({e: np.log10(comp[e] / ci[e]) for e in present}, dtype=float)
-    for j, e in enumerate(els):
-        if e in comp.index and comp[e] > 0:
-            vals[j] = comp[e]
-            continue
-        same = [x for x in present if classes[x] == classes[e]]
-        if geo is not None:
-            fam = [x for x in same if _family(geo[x]) == _family(geo[e])]
-            same = fam or same
-        if same and tc is not None and np.isfinite(tc.get(e, np.nan)):
-            same = sorted(same, key=lambda x: abs(float(tc[x]) - float(tc[e])))
-            same = same[:IMPUTE_NEIGHBOURS]
-        if same:
+    n = len(els)
+    held = comp.reindex(els).to_numpy(float)
+    have = np.nan_to_num(held, nan=0.0) > 0
+    ci_v = ci.reindex(els).to_numpy(float)
+    cls = classes.reindex(els).to_numpy(object)
+    fam = (None if geo is None else
+           np.array([_family(g) for g in geo.reindex(els).to_numpy(object)], dtype=object))
+    tc_v = None if tc is None else tc.reindex(els).to_numpy(float)
+    vals = np.where(have, held, np.nan)
+    imp = ~have
+    sig = np.zeros(n)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        lognorm = np.log10(held / ci_v)
+    present = np.flatnonzero(have)
+    for j in np.flatnonzero(~have):
+        same = present[cls[present] == cls[j]]
+        if fam is not None:
+            in_fam = same[fam[same] == fam[j]]
+            same = in_fam if in_fam.size else same
+        if same.size and tc_v is not None and np.isfinite(tc_v[j]):
+            order = np.argsort(np.abs(tc_v[same] - tc_v[j]), kind="stable")
+            same = same[order[:IMPUTE_NEIGHBOURS]]
+        if same.size:
             levels = lognorm[same]
             level = float(np.median(levels))
-            sig[j] = max(float(levels.std(ddof=1)) if len(same) > 1 else 0.0,
+            sig[j] = max(float(np.std(levels, ddof=1)) if same.size > 1 else 0.0,
                          IMPUTE_MIN_SIGMA_DEX)
         else:
-            level = float(np.median(lognorm))
+            level = float(np.median(lognorm[present]))
             sig[j] = IMPUTE_FALLBACK_SIGMA_DEX
-        vals[j] = ci[e] * 10.0 ** level
-        imp[j] = True
+        vals[j] = ci_v[j] * 10.0 ** level
     return vals, imp, sig
 
 
