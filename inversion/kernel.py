@@ -118,10 +118,11 @@ def start_state(xp: Any, c: Static, batch: tuple[int, ...]) -> Any:
 
 
 def _fe_ratio(c: Static) -> Any:
-    """``10**(-dIW/2)``: a scalar, or (..., 1) for a per-row dIW (batch shape)."""
-    if np.ndim(c.dIW) == 0:
-        return 10.0 ** (-float(c.dIW) / 2.0)
-    return (10.0 ** (-np.asarray(c.dIW, float) / 2.0))[..., None]
+    """``10**(-dIW/2)``: a scalar (a number, or a traced JAX scalar when the sampler
+    infers dIW), or (..., 1) for a per-row numpy dIW (batch shape)."""
+    if isinstance(c.dIW, np.ndarray) and c.dIW.ndim > 0:
+        return (10.0 ** (-c.dIW / 2.0))[..., None]
+    return 10.0 ** (-c.dIW / 2.0)
 
 
 def core_step(xp: Any, c: Static, a: Any, D: Any, s: Any) -> tuple[Any, dict[str, Any]]:
