@@ -162,7 +162,8 @@ def _ctrl_c_fit(tmp_path: Path, case: Path, delay: float) -> None:
     out = tmp_path / "fresh"
     for _ in range(4):
         p = subprocess.Popen([sys.executable, "-c", RUN, "fit", str(case), "--out", str(out)],
-                             stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+                             stdout=subprocess.DEVNULL, stderr=subprocess.PIPE,
+                             preexec_fn=_sigint_default)
         time.sleep(delay)
         p.send_signal(signal.SIGINT)
         err = p.communicate(timeout=120)[1].decode()
@@ -327,6 +328,13 @@ def test_kill_9_during_rank_leaves_whole_results(tmp_path: Path) -> None:
     assert killed >= 3
 
 
+def _sigint_default() -> None:
+    """In the child: SIGINT back to its default. A suite started in the background of a
+    non-interactive shell (``make test &``) inherits SIGINT ignored, and so would every
+    command it starts: the Ctrl-C trials would then test nothing."""
+    signal.signal(signal.SIGINT, signal.SIG_DFL)
+
+
 # --------------------------------------------------------------------------- Ctrl-C early
 def _console_script() -> list[str]:
     """The installed ``planetmix`` command (its first module is inversion.entry)."""
@@ -353,7 +361,7 @@ def test_ctrl_c_while_the_command_loads_gives_one_line_and_130(tmp_path: Path) -
         out = tmp_path / f"o{k}"
         p = subprocess.Popen([*_console_script(), "star", "s.csv", "--out", out.name,
                               "--draws", "20"], cwd=tmp_path, stdout=subprocess.DEVNULL,
-                             stderr=subprocess.PIPE)
+                             stderr=subprocess.PIPE, preexec_fn=_sigint_default)
         time.sleep(delay)
         p.send_signal(signal.SIGINT)
         err = p.communicate(timeout=120)[1].decode()
