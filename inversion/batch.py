@@ -34,6 +34,7 @@ import components
 
 from .exceptions import InputError
 from .handoff import PERCENTILES, STATS
+from .output import _alive
 from .star import (
     STAR_ELEMENTS,
     StarInput,
@@ -65,19 +66,6 @@ PARTS_DIR = "parts"
 BLOCK_DRAWS = 25_000
 _FLAG_COLUMNS = ("row", "star_id", "status", "reason", "solar_ratio", "ci_reference",
                  "not_used", "infeasible_draw_fraction", "n_draws")
-
-
-def _alive(pid: int) -> bool:
-    """Whether process ``pid`` runs (this one counts as running)."""
-    if pid == os.getpid():
-        return True
-    try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return False
-    except PermissionError:
-        return True
-    return True
 
 
 def partition_name(i: int) -> str:

@@ -149,23 +149,10 @@ def pressure_D(p: Any) -> tuple[np.ndarray, Any]:
     (held at their values at the start of the sampling: the convex path iterates them
     with the fitted core, the sampler does not), the problem's own D elsewhere.
     """
-    from . import partitioning as pt
-
-    cc = p.core_conditions
-    chem = _chemistry(tuple(p.elements))
-    mask = np.isin(chem.kind, (1, 2))
-    mask[p.fe_index] = False
-    base = np.asarray(p.D, float)
-    liquidus = "liquidus" in str(cc.get("temperature_from", "")).lower()
-    T_fixed = float(cc["temperature_K"])
-    dIW = float(cc["dIW"])
-    state = np.array([0.5, float(cc["Mbar_sil_g_mol"]), float(cc["Mbar_met_g_mol"]), 0.0,
-                      0.0])
+    mask, D_of = conditions_D(p)
 
     def D_of_P(P: Any, xp: Any = np) -> Any:
-        T = pt.peridotite_liquidus(P, xp=xp) if liquidus else T_fixed
-        Dm = pt.mass_D(chem, P, T, dIW, state, xp=xp)
-        return xp.where(mask, Dm, base)
+        return D_of(P, None, None, xp)
 
     return mask, D_of_P
 

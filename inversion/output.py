@@ -79,6 +79,7 @@ def _side_name(out: Path, kind: str) -> re.Pattern[str]:
 
 
 def _alive(pid: int) -> bool:
+    """Whether process ``pid`` runs (this one counts as running)."""
     if pid == os.getpid():
         return True
     try:
