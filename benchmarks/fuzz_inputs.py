@@ -71,6 +71,11 @@ PLANETMIX = [sys.executable, "-c", "import sys; from inversion.cli import main; 
 if (Path(sys.executable).parent / "planetmix").exists():
     PLANETMIX = [str(Path(sys.executable).parent / "planetmix")]
 
+sys.path.insert(0, str(ROOT))
+# the suite's fuzz test reads the templates the same way
+from tests.inversion.test_inputs_fuzz import _split as csv_parts  # noqa: E402
+from tests.inversion.test_inputs_fuzz import _template as tpl  # noqa: E402
+
 CLASSES = ("error", "traceback", "accepted", "garbage", "rejected_valid", "bad_message")
 
 
@@ -113,17 +118,6 @@ HOSTILE_NUMBERS = ["1e30", "1e300", "-1e300", "nan", "NaN", "inf", "-inf", "Infi
 #: Spellings that are not numbers at all.
 NOT_NUMBERS = ["", "12abc", "1.2.3", "--1", "0x10", "1_000", "1,5", "\u22120.3", "½",
                "１２", "None", "null", "TRUE"]
-
-
-def tpl(name: str) -> str:
-    return (TEMPLATES / name).read_text(encoding="utf-8")
-
-
-def csv_parts(text: str) -> tuple[list[str], list[str], list[list[str]]]:
-    lines = text.splitlines()
-    comments = [ln for ln in lines if ln.startswith("#")]
-    body = [ln for ln in lines if ln.strip() and not ln.startswith("#")]
-    return comments, body[0].split(","), [ln.split(",") for ln in body[1:]]
 
 
 def csv_join(comments: list[str], header: list[str], rows: list[list[str]],
