@@ -116,7 +116,7 @@ out["em_products_over_broadcast"] = (out["em_products_loop_us"]
 
 
 def _child(stage: str, draws: int, cache: str, engine: str, chain_method: str,
-           gradient: bool = False) -> dict:
+           gradient: bool = False, mass: str = "") -> dict:
     env = {**os.environ, "PLANETMIX_JAX_CACHE": cache, "NUMBA_CACHE_DIR": cache,
            "PYTENSOR_FLAGS": f"compiledir={cache}/pytensor"}
     pre = ""
@@ -126,9 +126,10 @@ def _child(stage: str, draws: int, cache: str, engine: str, chain_method: str,
 {pre}
 import json, os, sys, time
 import numpy as np
+import dataclasses
 try:  # trees before the sampler's split have no engines module
     import inversion.bayes.engines as engines
-    engines.NUMPYRO_CHAIN_METHOD = {chain_method!r}
+    engines.NUMPYRO_CHAIN_METHOD = {chain_method!r}  # trees before [sampler] chain_method
 except ImportError:
     pass
 from inversion.case import load_case
@@ -149,10 +150,20 @@ else:  # the engine compiles the whole sampler inside the run: a run of 5 + 5 dr
     out["compile_seconds"] = r.timing["compile_seconds"]
 if {stage!r} == "sample":
     cpu = time.process_time()
-    res = bayes.sample(p, bayes.SamplerSettings(draws={draws}, tune={draws}, chains=4,
-                                                 seed=1, engine={engine!r}),
-                       posterior_predictive=False,
-                       log_likelihood=False)
+    st = bayes.SamplerSettings(draws={draws}, tune={draws}, chains=4, seed=1,
+                               engine={engine!r})
+    names_ = {{f.name for f in dataclasses.fields(st)}}
+    if "chain_method" in names_:
+        st = dataclasses.replace(st, chain_method={chain_method!r})
+    if {mass!r} and "mass_matrix" in names_:
+        st = dataclasses.replace(st, mass_matrix={mass!r})
+    res = bayes.sample(p, st, posterior_predictive=False, log_likelihood=False)
+    stats = res.idata.sample_stats
+    if "n_steps" in stats:  # leapfrog steps per kept draw
+        out["leapfrogs_per_draw"] = float(stats["n_steps"].values.mean())
+        out["leapfrogs_per_draw_median"] = float(np.median(stats["n_steps"].values))
+    elif "tree_size" in stats:
+        out["leapfrogs_per_draw"] = float(stats["tree_size"].values.mean())
     import arviz as az
     names = bayes.parameter_names(bayes.build_model(p))
     ess = az.ess(res.idata, var_names=names)
@@ -192,19 +203,24 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--chain-method", default="parallel",
                     choices=("sequential", "vectorized", "parallel"),
                     help="NumPyro's way of running the chains (numpyro engine)")
+    ap.add_argument("--mass-matrix", default="",
+                    help="[sampler] mass_matrix of the sampling run (default: the settings' "
+                         "default)")
     ap.add_argument("--no-gradient", action="store_true",
                     help="skip the per-evaluation cost of the log density and gradient")
     args = ap.parse_args(argv)
     with tempfile.TemporaryDirectory() as cache:
         cold = _child("compile", args.draws, cache, args.engine, args.chain_method)
         warm = _child("sample", args.draws, cache, args.engine, args.chain_method,
-                      not args.no_gradient)
+                      not args.no_gradient, args.mass_matrix)
     res = {"engine": args.engine, "chain_method": args.chain_method,
+           "mass_matrix": args.mass_matrix or "default",
            "cold_compile_seconds": cold.get("compile_seconds"),
            "cold_build_seconds": cold["build_seconds"],
            "warm_compile_seconds": warm.get("compile_seconds"), **{
                k: warm[k] for k in ("sample_compile_seconds", "sampling_seconds",
                                     "sample_cpu_seconds", "ess_bulk_min", "ess_per_second",
+                                    "leapfrogs_per_draw", "leapfrogs_per_draw_median",
                                     "divergences", "forward_per_second", "load_average",
                                     "logp_grad_loop_us", "logp_grad_call_us",
                                     "em_broadcast_loop_us", "em_products_loop_us",

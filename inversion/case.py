@@ -50,7 +50,7 @@ _ALLOWED: dict[str, set[str]] = {
     "fit": {"isotope_window_sigma", "cmf_range"},
     "accretion": {"stages", "late_stage_fraction", "core_mass_fraction"},
     "sampler": {"draws", "tune", "chains", "seed", "target_accept", "cores", "init",
-                "smc_draws", "smc_chains", "engine", "jitter", "mass_matrix"},
+                "smc_draws", "smc_chains", "engine", "jitter", "mass_matrix", "chain_method"},
 }
 
 

@@ -25,12 +25,6 @@ from .settings import SamplerSettings
 
 __all__ = ["SampleResult", "start_points", "sample"]
 
-#: How NumPyro runs the chains: ``"parallel"`` (one XLA CPU device per chain, in threads;
-#: :func:`inversion.jaxmodel.jax_setup` makes the devices), ``"sequential"`` (one chain
-#: after the other; used when there are fewer devices than chains) or ``"vectorized"``
-#: (one program, the chains in step, each tree as deep as the deepest chain's). Measured
-#: on the demo (docs/forward_model.md): parallel 40 ESS/s, sequential and vectorised 28.
-NUMPYRO_CHAIN_METHOD = "parallel"
 
 @dataclass(frozen=True)
 class SampleResult:
@@ -219,15 +213,17 @@ def _sample(p: Problem, settings: SamplerSettings | None = None, *,
         t1 = time.perf_counter()
         extra: dict[str, Any] = {"init": settings.init}
         if settings.engine == "numpyro":
-            # the whole NUTS loop compiled by XLA (chains: NUMPYRO_CHAIN_METHOD)
+            # the whole NUTS loop compiled by XLA (chains: settings.chain_method)
             from ..jaxmodel import jax_setup
 
             jax = jax_setup()
-            method = NUMPYRO_CHAIN_METHOD
+            method = settings.chain_method
             if method == "parallel" and jax.local_device_count() < settings.chains:
                 method = "sequential"
+            dense = settings.mass_matrix == "dense"
             extra = {"nuts_sampler": "numpyro",
-                     "nuts_sampler_kwargs": {"chain_method": method}}
+                     "nuts_sampler_kwargs": {"chain_method": method,
+                                             "nuts_kwargs": {"dense_mass": dense}}}
         with model:
             idata = pm.sample(draws=settings.draws, tune=settings.tune,
                               chains=settings.chains, cores=cores, random_seed=nuts_seed,

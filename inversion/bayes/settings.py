@@ -8,7 +8,8 @@ from typing import Any
 from ..exceptions import InputError
 from ..options import check_option
 
-__all__ = ["SamplerSettings", "ENGINES", "MASS_MATRICES", "PYMC_INITS", "check_sampler_settings"]
+__all__ = ["SamplerSettings", "ENGINES", "MASS_MATRICES", "CHAIN_METHODS", "PYMC_INITS",
+           "check_sampler_settings"]
 
 @dataclass(frozen=True)
 class SamplerSettings:
@@ -16,8 +17,9 @@ class SamplerSettings:
 
     Defaults: 4 chains of 1000 tuning and 1000 kept draws at target acceptance 0.9,
     which pass the gate on the library's cases (bulk ESS >= 400 needs about 100
-    effective draws per chain). ``mass_matrix`` (nutpie only) is one of
-    :data:`MASS_MATRICES`. ``engine`` chooses the NUTS implementation:
+    effective draws per chain). ``mass_matrix`` is one of :data:`MASS_MATRICES`
+    (which engine takes which is listed there); ``chain_method`` (NumPyro only) one of
+    :data:`CHAIN_METHODS`. ``engine`` chooses the NUTS implementation:
     ``"numpyro"`` (default; NumPyro's NUTS on the JAX log density, the whole sampler
     compiled by XLA, the chains in parallel threads: the fastest to a result on the demo,
     docs/forward_model.md), ``"nutpie"`` (nutpie's NUTS calling the same JAX log
@@ -39,21 +41,37 @@ class SamplerSettings:
     smc_chains: int = 2
     engine: str = "numpyro"
     mass_matrix: str = "draw-variance"
+    chain_method: str = "parallel"
 
 
 #: NUTS implementations (``[sampler] engine``, ``--engine``).
 ENGINES = ("nutpie", "numpyro", "pymc")
-#: Mass-matrix adaptation of the nutpie engine (``[sampler] mass_matrix``):
-#: ``draw-variance`` (diagonal, from the variance of the tuning draws, as Stan and PyMC
-#: adapt it; the default: on the four-block demo planet it gave 1.7-2.6x the minimum
-#: bulk ESS of the gradient-based estimate at 1.6x the time), ``gradient-variance``
-#: (nutpie's own diagonal estimate from draws and gradients), ``low-rank`` (diagonal plus
-#: a low-rank correction for correlated parameters).
-MASS_MATRICES = ("draw-variance", "gradient-variance", "low-rank")
+#: Mass-matrix adaptation (``[sampler] mass_matrix``): ``draw-variance`` (diagonal, from
+#: the variance of the tuning draws, as Stan and PyMC adapt it; every engine, the
+#: default: with nutpie on the four-block demo planet it gave 1.7-2.6x the minimum bulk
+#: ESS of the gradient-based estimate at 1.6x the time), ``gradient-variance`` (nutpie's
+#: own diagonal estimate from draws and gradients; nutpie only), ``low-rank`` (diagonal
+#: plus a low-rank correction for correlated parameters; nutpie only), ``dense`` (the
+#: full covariance of the tuning draws; NumPyro only: on the demo it shortens the kept
+#: trajectories, 20 against 31 leapfrog steps per draw, but tuning takes 1.55x the steps,
+#: so a run costs more; docs/forward_model.md).
+MASS_MATRICES = ("draw-variance", "gradient-variance", "low-rank", "dense")
+#: Which engines take which mass matrix (the others raise an InputError).
+_MASS_ENGINES = {"draw-variance": ("nutpie", "numpyro", "pymc"),
+                 "gradient-variance": ("nutpie",), "low-rank": ("nutpie",),
+                 "dense": ("numpyro",)}
+#: How NumPyro runs the chains (``[sampler] chain_method``): ``parallel`` (the default:
+#: one XLA CPU device per chain, in threads; :func:`inversion.jaxmodel.jax_setup` makes
+#: the devices, and with fewer devices than chains they run one after the other),
+#: ``sequential`` (one after the other) or ``vectorized`` (one program, the chains in
+#: step, each tree as deep as the deepest chain's). Measured on the demo
+#: (docs/forward_model.md): parallel 1.45x the ESS per second of the other two.
+CHAIN_METHODS = ("parallel", "sequential", "vectorized")
 #: PyMC initialisations of the mass matrix (``[sampler] init``; ``engine = "pymc"`` only).
 PYMC_INITS = ("adapt_diag", "jitter+adapt_diag", "adapt_full", "jitter+adapt_full")
 _SAMPLER_KEYS = ("draws", "tune", "chains", "seed", "target_accept", "cores", "engine",
-                 "mass_matrix", "init", "jitter", "smc_draws", "smc_chains", "evidence")
+                 "mass_matrix", "chain_method", "init", "jitter", "smc_draws", "smc_chains",
+                 "evidence")
 
 
 def check_sampler_settings(table: dict[str, Any] | None, *, file: str | None = None,
@@ -94,6 +112,9 @@ def check_sampler_settings(table: dict[str, Any] | None, *, file: str | None = N
             elif k == "mass_matrix":
                 vals[k] = check_option("mass-matrix adaptation", v, MASS_MATRICES, file=file,
                                        field=fld)
+            elif k == "chain_method":
+                vals[k] = check_option("chain method", v, CHAIN_METHODS, file=file,
+                                       field=fld)
             elif k == "init":
                 vals[k] = check_option("sampler init", v, PYMC_INITS, file=file, field=fld)
             else:
@@ -102,4 +123,12 @@ def check_sampler_settings(table: dict[str, Any] | None, *, file: str | None = N
     if vals.get("chains", 4) < 2:
         raise InputError("the gate needs at least 2 chains (R-hat compares chains)",
                          file=file, field="chains", value=vals.get("chains"))
+    engine = vals.get("engine", SamplerSettings.engine)
+    mass = vals.get("mass_matrix", SamplerSettings.mass_matrix)
+    if engine not in _MASS_ENGINES[mass]:
+        fld = ("--mass-matrix" if overrides.get("mass_matrix") is not None
+               else "sampler.mass_matrix")
+        raise InputError(f"mass matrix {mass!r} is not available with engine {engine!r} "
+                         f"(engines taking it: {list(_MASS_ENGINES[mass])})", file=file,
+                         field=fld, value=mass)
     return SamplerSettings(**vals)
