@@ -44,7 +44,8 @@ _ALLOWED: dict[str, set[str]] = {
     "building_blocks": {"candidates", "max_mixture_size"},
     "volatility": {"form", "condensation_table"},
     "core": {"mantle_FeO_wt", "dIW", "D", "partitioning", "pressure_GPa", "temperature_K",
-             "accretion_steps", "depth_fraction", "cmb_pressure_GPa", "dIW_final"},
+             "accretion_steps", "depth_fraction", "cmb_pressure_GPa", "dIW_final",
+             "hse_partitioning"},
     "late_accretion": {"component", "max_fraction"},
     "elements": {"exclude"},
     "fit": {"isotope_window_sigma", "cmf_range"},
@@ -537,6 +538,14 @@ def load_case(path: str | Path, *, staged: bool = False) -> Case:
                              field=f"core.D.{el}", value=el)
         D[el] = _num(val, file=file, field=f"core.D.{el}", nonneg=True)
         check_in_range(D[el], "core_D", file=file, field=f"core.D.{el}")
+    # the HSE: one effective D (constant) or a table of published values; an explicit
+    # [core] D entry wins (docs/partitioning.md, "Highly siderophile elements")
+    from .partitioning import hse_D, hse_sets
+
+    hse = check_option("HSE partitioning", core_raw.get("hse_partitioning", "constant"),
+                       hse_sets(), file=file, field="core.hse_partitioning")
+    for el, val in hse_D(hse).items():
+        D.setdefault(el, val)
     if feo is None and diw is None and "Fe" in comp.index:
         # the observed mantle iron sets the split; recorded as such
         from components import oxide_to_element_factor

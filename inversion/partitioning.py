@@ -57,7 +57,8 @@ __all__ = [
     "mass_D", "molar_to_mass", "mass_to_molar", "ln_gamma", "oxygen_in_metal",
     "peridotite_liquidus", "cmb_pressure", "initial_state", "split_step", "split_outputs",
     "solve_single_stage", "single_stage_unrolled", "split_step_feo", "solve_for_mantle_FeO",
-    "continuous_accretion", "STATE_FIELDS",
+    "continuous_accretion", "STATE_FIELDS", "HSE", "HSE_CONSTANT", "hse_sets",
+    "load_hse_table", "hse_D",
 ]
 
 DATA = components.DATA_DIR / "partitioning"
@@ -78,6 +79,10 @@ T0_INTERACTION = 1873.0
 M_O = 15.999
 _LN10 = float(np.log(10.0))
 _PROVENANCE = ("publication", "typed_copy", "recalled")
+#: The highly siderophile elements.
+HSE = ("Ru", "Rh", "Pd", "Re", "Os", "Ir", "Pt", "Au")
+#: Name of the HSE choice that keeps the one effective D of earth_core_mantle.csv.
+HSE_CONSTANT = "constant"
 
 
 def _read(path: Path, required: list[str], what: str) -> pd.DataFrame:
@@ -131,6 +136,63 @@ def load_regressions(path: str | Path | None = None) -> pd.DataFrame:
         raise InputError("element and source appear twice", file=str(path), row=i + 2,
                          field="source", value=df["source"].iloc[i])
     return df
+
+
+def load_hse_table(path: str | Path | None = None) -> pd.DataFrame:
+    """The HSE metal/silicate D at stated conditions (``hse_high_pressure.csv``), checked.
+
+    Parameters
+    ----------
+    path : str or Path, optional
+        A table of that format (the default is the bundled one).
+
+    Returns
+    -------
+    DataFrame
+        Columns ``set, element, D, P_GPa, T_K, source, provenance, ...``; mass-basis D.
+    """
+    path = Path(path) if path is not None else DATA / "hse_high_pressure.csv"
+    df = _read(path, ["set", "element", "D", "P_GPa", "T_K", "source", "provenance"],
+               "HSE partitioning")
+    for i, row in df.iterrows():
+        if row["element"] not in HSE:
+            raise InputError(f"element must be one of {HSE}", file=str(path),
+                             row=int(i) + 2, field="element", value=row["element"])
+        if not (np.isfinite(float(row["D"])) and float(row["D"]) > 0):
+            raise InputError("D must be a positive number", file=str(path), row=int(i) + 2,
+                             field="D", value=row["D"])
+        if row["set"] == HSE_CONSTANT:
+            raise InputError(f"the set name {HSE_CONSTANT!r} is reserved", file=str(path),
+                             row=int(i) + 2, field="set", value=row["set"])
+    dup = df.duplicated(["set", "element"])
+    if dup.any():
+        i = int(np.flatnonzero(dup)[0])
+        raise InputError("set and element appear twice", file=str(path), row=i + 2,
+                         field="element", value=df["element"].iloc[i])
+    return df
+
+
+def hse_sets(path: str | Path | None = None) -> tuple[str, ...]:
+    """Names accepted by ``[core] hse_partitioning``: ``"constant"`` and the table's sets."""
+    return (HSE_CONSTANT, *sorted(set(load_hse_table(path)["set"])))
+
+
+def hse_D(name: str, path: str | Path | None = None) -> dict[str, float]:
+    """Mass-basis D of the HSE for the choice ``name`` (empty for ``"constant"``).
+
+    Raises
+    ------
+    InputError
+        For a name that is neither ``"constant"`` nor a set of the table.
+    """
+    if name == HSE_CONSTANT:
+        return {}
+    df = load_hse_table(path)
+    if name not in set(df["set"]):
+        raise InputError(f"unknown HSE partitioning; use one of {hse_sets(path)}",
+                         field="core.hse_partitioning", value=name)
+    rows = df[df["set"] == name]
+    return {str(e): float(d) for e, d in zip(rows["element"], rows["D"], strict=True)}
 
 
 def load_interactions(path: str | Path | None = None) -> pd.DataFrame:

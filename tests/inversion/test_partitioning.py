@@ -449,3 +449,70 @@ def test_epsilon_activity_term_by_hand():
     x_i = pt.oxygen_in_metal(ideal, *args)
     x_e = pt.oxygen_in_metal(eps, *args)
     assert float(np.log10(x_e / x_i)) == pytest.approx(0.062 / np.log(10.0), rel=1e-9)
+
+
+# ------------------------------------------------ the HSE: one D or published values
+
+def _earth_case(tmp_path, core_lines: str):
+    """The Earth case (case_studies/earth/case.toml) with extra [core] lines."""
+    from pathlib import Path
+
+    from inversion.case import load_case
+
+    here = Path(__file__).resolve().parents[2] / "case_studies" / "earth"
+    text = (here / "case.toml").read_text()
+    text = text.replace('table = "bse_mcdonough1995.csv"',
+                        f'table = "{(here / "bse_mcdonough1995.csv").as_posix()}"')
+    text = text.replace("[core]\n", "[core]\n" + core_lines + "\n", 1)
+    path = tmp_path / "earth.toml"
+    path.write_text(text)
+    return load_case(path)
+
+
+def test_hse_table_is_complete_and_labelled():
+    table = pt.load_hse_table()
+    for name in pt.hse_sets()[1:]:
+        rows = table[table["set"] == name]
+        assert sorted(rows["element"]) == sorted(pt.HSE), name
+        # every value says where it comes from and whether it was read
+        assert set(rows["provenance"]) <= {"publication", "typed_copy", "recalled"}
+    assert pt.hse_D("constant") == {}
+
+
+def test_hse_choice_reaches_the_model_and_the_mantle_by_hand(tmp_path):
+    """hse_partitioning changes the D the forward model uses; the mantle Pt before late
+    accretion is then bulk / (1 + D k), with k the core/mantle mass ratio (mass balance of
+    docs/partitioning.md)."""
+    from inversion.model import compile_problem, forward
+
+    pc = compile_problem(_earth_case(tmp_path, 'hse_partitioning = "constant"'))
+    ph = compile_problem(_earth_case(tmp_path, 'hse_partitioning = "high-pressure"'))
+    published = pt.hse_D("high-pressure")
+    for el in pt.HSE:
+        if el not in ph.elements:
+            continue
+        i = ph.elements.index(el)
+        # constant: the 1e4 of earth_core_mantle.csv (Walker 2009, recalled)
+        assert pc.D[pc.elements.index(el)] == pytest.approx(1e4)
+        assert ph.D[i] == pytest.approx(published[el])
+    i = ph.elements.index("Pt")
+    w = np.full((1, len(ph.components)), 1.0 / len(ph.components))
+    vol = np.array([[1350.0, 0.002]])
+    mantle = {}
+    for name, p in (("constant", pc), ("high-pressure", ph)):
+        out = forward(p, w, vol, 0.0)
+        k = float(out["k"][0])
+        hand = float(out["bulk"][0, i]) / (1.0 + p.D[i] * k)
+        assert float(out["mantle"][0, i]) == pytest.approx(hand, rel=1e-9)
+        mantle[name] = float(out["mantle"][0, i])
+    # D 500 instead of 1e4 leaves ~20x more Pt in the mantle (k ~ 0.5: (1 + 1e4 k) /
+    # (1 + 500 k))
+    assert mantle["high-pressure"] / mantle["constant"] > 15.0
+
+
+def test_hse_explicit_D_wins_and_unknown_choice_is_refused(tmp_path):
+    case = _earth_case(tmp_path, 'hse_partitioning = "high-pressure"\nD = {Pt = 2e4}')
+    assert case.core.D["Pt"] == 2e4 and case.core.D["Pd"] == pytest.approx(800.0)
+    with pytest.raises(InputError, match="unknown HSE partitioning") as err:
+        _earth_case(tmp_path, 'hse_partitioning = "lowest"')
+    assert err.value.field == "core.hse_partitioning" and "\n" not in str(err.value)
