@@ -27,6 +27,7 @@ import itertools
 import sys
 import tempfile
 import time
+from collections import Counter
 from dataclasses import replace
 from math import comb
 from pathlib import Path
@@ -94,8 +95,10 @@ def main() -> None:
         t_screen[size] = time.perf_counter() - t0
         n = len(ranking.table)
         n_feas = sum(f.feasible for f in ranking.fits)
+        statuses = Counter(f.status for f in ranking.fits)
         print(f"convex screen up to {size}: {n} hypotheses ({n_feas} feasible) in "
-              f"{t_screen[size]:.2f} s ({args.workers} workers) -> {n / t_screen[size]:.0f}/s")
+              f"{t_screen[size]:.2f} s ({args.workers} workers) -> {n / t_screen[size]:.0f}/s; "
+              f"statuses {dict(sorted(statuses.items()))}")
         fits = {f.components: f for f in ranking.fits}
     n_all = len(fits)
 

@@ -445,6 +445,41 @@ class _Start:
     origin: str
 
 
+#: two starts are independent when their starting points are more than this apart in
+#: the scaled parameter space (largest difference over the weights, the late weight and
+#: the volatility parameters as fractions of their box span); far above rounding noise
+#: (1e-12) and far below the spacing of the profile grid and of the weight-space starts
+START_SEPARATION = 1e-3
+INDEPENDENCE_RULE = ("optimal needs >= 2 independent starts (starting points more than "
+                     "independence_distance apart, scaled max-norm: weights, late weight, "
+                     "volatility parameters / box span) reaching the best chi2 within "
+                     "agreement_tolerance_relative; starts closer than that count as one")
+
+
+def _independent_starts(U: np.ndarray, TH: np.ndarray, lo: np.ndarray, hi: np.ndarray
+                        ) -> list[np.ndarray]:
+    """Group starts whose starting points lie within :data:`START_SEPARATION` of each
+    other (single linkage in the scaled max-norm, so the grouping does not depend on
+    the order of the starts or on rounding noise); returns the row indices of each group,
+    groups ordered by their first row."""
+    span = np.where(hi > lo, hi - lo, 1.0)
+    X = np.concatenate([U, (TH - lo) / span], axis=1)
+    n = len(X)
+    close = np.abs(X[:, None, :] - X[None, :, :]).max(axis=2) <= START_SEPARATION
+    label = -np.ones(n, dtype=int)
+    for i in range(n):
+        if label[i] >= 0:
+            continue
+        label[i] = i
+        stack = [i]
+        while stack:
+            j = stack.pop()
+            for k in np.flatnonzero(close[j] & (label < 0)):
+                label[k] = i
+                stack.append(int(k))
+    return [np.flatnonzero(label == g) for g in np.unique(label)]
+
+
 def _solve_group(p: Problem, subsets: list[tuple[str, ...]], settings: FitSettings,
                  extra: list[list[_Start]] | None = None) -> list[dict[str, Any]]:
     """Solve equal-size hypotheses: profile starts plus ``extra`` starts, polished jointly.
@@ -510,26 +545,29 @@ def _solve_group(p: Problem, subsets: list[tuple[str, ...]], settings: FitSettin
         c = pol["chi2"][sel]
         j = sel[int(np.argmin(c))]
         best = float(pol["chi2"][j])
-        # distinct starts only (an extra start may repeat a grid start)
-        uniq: dict[tuple, int] = {}
-        for i in sel:
-            key = (tuple(np.round(U0[i], 12)), tuple(np.round(T0[i], 12)))
-            uniq.setdefault(key, i)
-        distinct = list(uniq.values())
+        # independent starts only (two subsets' optima, or an extra start and a grid
+        # start, can be the same point): see :func:`_independent_starts`
+        groups = _independent_starts(U0[sel], T0[sel], np.array(form.lower, float),
+                                      np.array(form.upper, float))
         tol = settings.agreement * max(abs(best), 1.0)
-        agree = [i for i in distinct if np.isfinite(pol["chi2"][i])
-                 and pol["chi2"][i] - best <= tol]
-        finite = [pol["chi2"][i] for i in distinct if np.isfinite(pol["chi2"][i])]
+        # each independent start's value: the best of the starts that share its point
+        values = [float(np.min(np.where(np.isfinite(pol["chi2"][sel[g]]),
+                                        pol["chi2"][sel[g]], np.inf))) for g in groups]
+        distinct = [int(sel[g[0]]) for g in groups]
+        agree = [v for v in values if np.isfinite(v) and v - best <= tol]
+        finite = [v for v in values if np.isfinite(v)]
         out.append({
             "feasible": True, "u": pol["U"][j].copy(), "theta": pol["TH"][j].copy(),
             "chi2": best, "box": (box_lo[j], box_hi[j]),
             "optimality": {
                 "starts": len(distinct), "agreeing": len(agree),
                 "agreement_tolerance_relative": settings.agreement,
+                "independence_rule": INDEPENDENCE_RULE,
+                "independence_distance": START_SEPARATION,
                 "worst_start_chi2": float(max(finite)) if finite else None,
                 "best_start": starts[h][int(np.argmin(c))].origin,
                 "start_chi2": [float(pol["start_chi2"][i]) for i in distinct],
-                "final_chi2": [float(pol["chi2"][i]) for i in distinct],
+                "final_chi2": values,
                 "iterations": int(pol["iterations"][j])}})
         best_rows.append(j)
     # first-order residual at every answer, in one batch, on the smooth piece it lies in

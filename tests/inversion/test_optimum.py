@@ -126,6 +126,41 @@ def test_screen_nesting() -> None:
     assert pairs >= 6
 
 
+def test_screen_statuses_do_not_depend_on_workers_or_run() -> None:
+    """The certificate counts independent starts (starting points further apart than
+    ``independence_distance``), so rounding noise between runs and between the job
+    splits of 1 and 2 workers cannot change a status or a count."""
+    case = load_case(EARTH)
+    keep = ("CI", "CM", "H", "L", "EH")
+    case = replace(case, candidates=tuple(c for c in case.candidates if c.name in keep),
+                   max_mixture_size=3)
+    runs = []
+    for workers in (1, 2, 1):
+        fits = screen(case, workers=workers).fits
+        runs.append({f.components: (f.status, f.optimality.get("starts"),
+                                    f.optimality.get("agreeing")) for f in fits})
+    assert len(runs[0]) == 25
+    assert runs[0] == runs[1] == runs[2]
+    assert sum(s[0] == "optimal" for s in runs[0].values()) >= 10
+    rec = next(f.optimality for f in fits if f.status == "optimal")
+    assert rec["independence_distance"] > 0 and "independent" in rec["independence_rule"]
+
+
+def test_coincident_starts_count_as_one() -> None:
+    """Two starts closer than the independence distance are one start (whatever their
+    last digits); starts further apart, or a chain of close ones, are grouped as such."""
+    from inversion.fit import START_SEPARATION, _independent_starts
+
+    lo, hi = np.array([1000.0, 0.0]), np.array([1500.0, 0.01])
+    U = np.array([[0.5, 0.5, 0.0], [0.5 + 1e-12, 0.5 - 1e-12, 0.0], [0.2, 0.8, 0.0],
+                  [0.5, 0.5, 0.0], [0.5, 0.5, 0.0]])
+    TH = np.array([[1200.0, 0.002], [1200.0, 0.002], [1200.0, 0.002],
+                   [1200.0 + 0.4 * START_SEPARATION * 500.0, 0.002],
+                   [1200.0 + 2.0 * START_SEPARATION * 500.0, 0.002]])
+    groups = [g.tolist() for g in _independent_starts(U, TH, lo, hi)]
+    assert groups == [[0, 1, 3], [2], [4]]
+
+
 def _copy_case(tmp_path: Path, path: Path, extra: str) -> Path:
     text = path.read_text()
     text = text.replace('table = "', f'table = "{path.parent.as_posix()}/', 1)
