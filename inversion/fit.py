@@ -513,6 +513,14 @@ def _solve_group(p: Problem, subsets: list[tuple[str, ...]], settings: FitSettin
             mine.append(_Start(u, th, "equal weights"))
         if extra is not None:
             mine += extra[h]
+        if len(mine) > 1:
+            # a start that repeats another (within START_SEPARATION) is not polished
+            form_h = get_form(p.volatility_form)
+            groups = _independent_starts(np.array([s.u for s in mine]),
+                                         np.array([s.theta for s in mine]),
+                                         np.array(form_h.lower, float),
+                                         np.array(form_h.upper, float))
+            mine = [mine[int(g[0])] for g in groups]
         starts.append(mine)
     rows = np.array([h for h, st in enumerate(starts) for _ in st], dtype=int)
     if rows.size == 0:
