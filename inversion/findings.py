@@ -10,7 +10,7 @@
   and its p-value (chi2 with one degree of freedom under the null; scaled by the reduced
   chi2 and referred to F when the misfit exceeds the stated uncertainties); from two
   sampled posteriors, the posterior of the difference and the LOO comparison
-  (:func:`class_test_posterior`, not yet called by the sampler);
+  (:func:`class_test_posterior`, run by `planetmix sample --class-test`);
 - the highly siderophile excess as a late-accretion mass;
 - the elements that sit off the fitted model (|z| > 3: residual after volatility, core
   and late accretion), with size, direction and geochemical class;
@@ -166,7 +166,7 @@ def class_test(p: Problem, result: FitResult, settings: FitSettings | None = Non
 
 def class_test_posterior(common: Any, split: Any, *, offset_name: str = "slope_offset",
                          var_name: str | None = None) -> dict[str, Any]:
-    """The Bayesian class test from two sampled posteriors (not yet wired to the sampler).
+    """The Bayesian class test from two sampled posteriors.
 
     Parameters
     ----------
@@ -217,7 +217,7 @@ def class_test_posterior(common: Any, split: Any, *, offset_name: str = "slope_o
                     "pareto_k_max": {k: float(np.nanmax(np.asarray(v.pareto_k)))
                                      for k, v in loos.items()}},
             "prefers": prefers, "statement": statement,
-            "status": "computed from given posteriors; not yet wired to planetmix sample"}
+            "status": "computed from the two sampled posteriors"}
 
 
 def _onset(p: Problem, result: FitResult) -> dict[str, Any]:
