@@ -100,12 +100,12 @@ def condition_ranges(p: Any) -> dict[str, tuple[float, float]]:
 
 
 @lru_cache(maxsize=8)
-def _chemistry(elements: tuple[str, ...]) -> Any:
-    """The compiled regressions of an element axis (read once per axis: the priors, the
-    start points and the posterior products all ask for them)."""
+def _chemistry(elements: tuple[str, ...], activity: str = "ideal") -> Any:
+    """The compiled regressions of an element axis and ``[core] metal_activity`` (read
+    once per axis: the priors, the start points and the posterior products ask for them)."""
     from . import partitioning as pt
 
-    return pt.compile_chemistry(elements, oxygen=False)
+    return pt.compile_chemistry(elements, oxygen=False, activity=activity)
 
 
 def conditions_D(p: Any) -> tuple[np.ndarray, Any]:
@@ -120,15 +120,17 @@ def conditions_D(p: Any) -> tuple[np.ndarray, Any]:
     from . import partitioning as pt
 
     cc = p.core_conditions
-    chem = _chemistry(tuple(p.elements))
+    # the metal activity model of the case; the metal's Si and S (its activities) are held
+    # at their start values like the mean molar masses
+    chem = _chemistry(tuple(p.elements), str(cc.get("metal_activity", "ideal")))
     mask = np.isin(chem.kind, (1, 2))
     mask[p.fe_index] = False
     base = np.asarray(p.D, float)
     liquidus = "liquidus" in str(cc.get("temperature_from", "")).lower()
     T_fixed = float(cc["temperature_K"])
     dIW_fixed = float(cc["dIW"])
-    state = np.array([0.5, float(cc["Mbar_sil_g_mol"]), float(cc["Mbar_met_g_mol"]), 0.0,
-                      0.0])
+    state = np.array([0.5, float(cc["Mbar_sil_g_mol"]), float(cc["Mbar_met_g_mol"]),
+                      float(cc.get("x_Si_metal", 0.0)), float(cc.get("x_S_metal", 0.0))])
 
     def D_of(P: Any, T: Any = None, dIW: Any = None, xp: Any = np) -> Any:
         if T is None:
