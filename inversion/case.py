@@ -45,7 +45,7 @@ _ALLOWED: dict[str, set[str]] = {
     "volatility": {"form", "condensation_table"},
     "core": {"mantle_FeO_wt", "dIW", "D", "partitioning", "pressure_GPa", "temperature_K",
              "accretion_steps", "depth_fraction", "cmb_pressure_GPa", "dIW_final",
-             "hse_partitioning"},
+             "hse_partitioning", "metal_activity"},
     "late_accretion": {"component", "max_fraction"},
     "elements": {"exclude"},
     "fit": {"isotope_window_sigma", "cmf_range"},
@@ -87,6 +87,11 @@ class CoreSettings:
     #: continuous: ``accretion_steps``, ``depth_fraction``, ``cmb_pressure_GPa``,
     #: ``dIW_start``, ``dIW_final`` (:func:`_continuous`)
     continuous: dict[str, float] | None = None
+    #: ``[core] hse_partitioning``: the HSE D set (docs/partitioning.md)
+    hse_partitioning: str = "constant"
+    #: ``[core] metal_activity``: ``ideal`` or ``epsilon`` (the regressions' activity model,
+    #: :data:`inversion.partitioning.ACTIVITY_MODELS`; regression partitioning only)
+    metal_activity: str = "ideal"
 
 
 @dataclass(frozen=True)
@@ -554,7 +559,16 @@ def load_case(path: str | Path, *, staged: bool = False) -> Case:
     if feo is None and diw is None:
         raise InputError("the iron split is unknown: give [core] mantle_FeO_wt or dIW, or Fe "
                          "in the target table", file=file, field="core")
-    core = CoreSettings(feo, diw, D, *_core_conditions(core_raw, D, file))
+    from .partitioning import ACTIVITY_MODELS
+
+    activity = check_option("metal activity model", core_raw.get("metal_activity", "ideal"),
+                            ACTIVITY_MODELS, file=file, field="core.metal_activity")
+    core = CoreSettings(feo, diw, D, *_core_conditions(core_raw, D, file),
+                        hse_partitioning=hse, metal_activity=activity)
+    if activity != "ideal" and core.partitioning == "effective":
+        raise InputError("metal_activity applies to the regressions; it needs partitioning = "
+                         "\"single-stage\" or \"continuous\"", file=file,
+                         field="core.metal_activity", value=activity)
     if core.partitioning == "continuous":
         core = _replace(core, continuous=_continuous(core_raw, diw, file))
     if isinstance(diw, tuple) and core.partitioning != "single-stage":

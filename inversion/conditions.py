@@ -9,8 +9,11 @@ unchanged on those D.
 
 Conventions (those of :mod:`inversion.partitioning`)
 -----------------------------------------------------
-- Molar D on the single-cation oxide basis, ideal mixing (the regressions' ``ideal``
-  evaluation); mass D = molar D x ``Mbar_sil / Mbar_met``.
+- Molar D on the single-cation oxide basis; mass D = molar D x ``Mbar_sil / Mbar_met``.
+  ``[core] metal_activity`` chooses the evaluation of the regressions: ``ideal`` (mole
+  fractions, the default) or ``epsilon`` (the interaction-parameter model of the metal on
+  the rows fitted with activities, at the Si and S mole fractions of the fitted core,
+  iterated with it like ``Mbar_met``).
 - ``Mbar_sil``: mean molar mass per single-cation oxide unit of the *target* silicate
   (the observed mantle the fit explains), over the elements of the mass balance.
 - ``Mbar_met``: mean molar mass per atom of the metal of the *fitted* core (O, which the
@@ -72,17 +75,21 @@ def silicate_molar_mass(p: Any) -> float:
     return float(np.sum(c[ok] * p.oxide_factor[ok]) / np.sum(c[ok] / p.atomic_weight[ok]))
 
 
-def _metal(p: Any, core: np.ndarray) -> tuple[float, float]:
-    """(x_Fe, Mbar_met) of a core given as element masses on the problem's axis."""
+def _metal(p: Any, core: np.ndarray) -> tuple[float, float, float, float]:
+    """(x_Fe, Mbar_met, x_Si, x_S) of a core given as element masses on the problem's
+    axis (mole fractions over the elements of the mass balance; O not counted)."""
     core = np.maximum(np.asarray(core, float), 0.0)
     mol = core / p.atomic_weight
-    return float(mol[p.fe_index] / mol.sum()), float(core.sum() / mol.sum())
+    n = mol.sum()
+    x = {e: float(mol[p.elements.index(e)] / n) if e in p.elements else 0.0
+         for e in ("Si", "S")}
+    return float(mol[p.fe_index] / n), float(core.sum() / n), x["Si"], x["S"]
 
 
-def reference_metal(p: Any) -> tuple[float, float]:
-    """(x_Fe, Mbar_met) of the Earth's core of McDonough (2003) on the problem's
-    elements (``earth_core_mantle.csv``; Fe from its 85.5 wt%, recalled): the start of the
-    fixed point."""
+def reference_metal(p: Any) -> tuple[float, float, float, float]:
+    """(x_Fe, Mbar_met, x_Si, x_S) of the Earth's core of McDonough (2003) on the
+    problem's elements (``earth_core_mantle.csv``; Fe from its 85.5 wt%, recalled): the
+    start of the fixed point."""
     from .model import default_partition
 
     part = default_partition()
@@ -105,7 +112,8 @@ def temperature_at(T: float | str, P: float) -> float:
 
 def at_conditions(p: Any, base_D: np.ndarray, chem: pt.CoreChemistry, P: float, T: float,
                   dIW: float, Mbar_sil: float, Mbar_met: float,
-                  extra: dict[str, Any] | None = None) -> Any:
+                  extra: dict[str, Any] | None = None,
+                  x_light: tuple[float, float] = (0.0, 0.0)) -> Any:
     """The problem with the D of the regression elements at (P, T, dIW).
 
     Parameters
@@ -116,8 +124,10 @@ def at_conditions(p: Any, base_D: np.ndarray, chem: pt.CoreChemistry, P: float, 
     P, T, dIW : pressure [GPa], temperature [K], oxygen fugacity relative to IW.
     Mbar_sil, Mbar_met : mean molar masses [g/mol] of the mass/molar conversion.
     extra : further entries of ``core_conditions``.
+    x_light : (x_Si, x_S) of the metal: the activities of the ``epsilon`` model (the
+        ``ideal`` evaluation does not use them).
     """
-    state = np.array([0.5, Mbar_sil, Mbar_met, 0.0, 0.0])
+    state = np.array([0.5, Mbar_sil, Mbar_met, float(x_light[0]), float(x_light[1])])
     Dm = pt.mass_D(chem, np.asarray(P, float), np.asarray(T, float), np.asarray(dIW, float),
                    state)
     reg = np.isin(chem.kind, (1, 2))
@@ -128,7 +138,9 @@ def at_conditions(p: Any, base_D: np.ndarray, chem: pt.CoreChemistry, P: float, 
                     if D[j] > 0)
     cond = {"partitioning": "single-stage", "pressure_GPa": float(P),
             "temperature_K": float(T), "dIW": float(dIW), "Mbar_sil_g_mol": Mbar_sil,
-            "Mbar_met_g_mol": Mbar_met, "sources": dict(sources), **(extra or {})}
+            "Mbar_met_g_mol": Mbar_met, "metal_activity": chem.activity,
+            "x_Si_metal": float(x_light[0]), "x_S_metal": float(x_light[1]),
+            "sources": dict(sources), **(extra or {})}
     return replace(p, D=D, D_sources=sources, core_conditions=cond)
 
 
@@ -159,7 +171,7 @@ def start_problem(case: Any) -> Any:
         # the effective D until fit_continuous replaces those of the regression elements
         p = compile_problem(replace(case, core=replace(case.core, partitioning="effective")))
         return replace(p, core_conditions={"partitioning": "continuous",
-                                           **case.core.continuous})
+                                           **case.core.continuous, **_choices(case)})
     p = compile_problem(start_case(case))
     ranges = free_conditions(case)
     if ranges and p.core_conditions is not None:
@@ -168,14 +180,22 @@ def start_problem(case: Any) -> Any:
     return p
 
 
+def _choices(case: Any) -> dict[str, Any]:
+    """The ``[core]`` partitioning choices and their sources (``core_conditions``)."""
+    return pt.choice_provenance(getattr(case.core, "hse_partitioning", pt.HSE_CONSTANT),
+                                getattr(case.core, "metal_activity", "ideal"))
+
+
 def _setup(p: Any, case: Any) -> dict[str, Any]:
-    chem = pt.compile_chemistry(p.elements, oxygen=False)
-    x_fe, mbar_met = reference_metal(p)
     cc = case.core
+    chem = pt.compile_chemistry(p.elements, oxygen=False,
+                                activity=getattr(cc, "metal_activity", "ideal"))
+    metal0 = reference_metal(p)
     free = free_conditions(case)
     return {"chem": chem, "base_D": np.asarray(p.D, float).copy(), "T": cc.temperature_K,
             "Mbar_sil": silicate_molar_mass(p), "x_FeO": _x_FeO_target(p),
-            "dIW_fixed": cc.dIW, "x_Fe": x_fe, "Mbar_met": mbar_met, "free": free,
+            "dIW_fixed": cc.dIW, "x_Fe": metal0[0], "Mbar_met": metal0[1],
+            "metal0": metal0, "free": free, "choices": _choices(case),
             "dIW_from": ("inferred over [core] dIW = [low, high] (the model's iron split "
                          "follows it)" if "dIW" in free else
                          "[core] dIW of the case" if cc.dIW is not None else
@@ -192,16 +212,18 @@ def _dIW(s: dict[str, Any], x_fe: float) -> float:
     return 2.0 * math.log10(s["x_FeO"] / x_fe)
 
 
-def _at(p: Any, s: dict[str, Any], P: float, x_fe: float, mbar_met: float,
+def _at(p: Any, s: dict[str, Any], P: float, st: tuple[float, ...],
         extra: dict[str, Any] | None = None, *, T: float | None = None,
         dIW: float | None = None) -> Any:
-    """The problem at pressure P; ``T`` and ``dIW`` override the case's (inferred
-    conditions); a given ``dIW`` also sets the model's iron split."""
+    """The problem at pressure P with the metal ``st = (x_Fe, Mbar_met, x_Si, x_S)``;
+    ``T`` and ``dIW`` override the case's (inferred conditions); a given ``dIW`` also sets
+    the model's iron split."""
     T = temperature_at(s["T"], P) if T is None else float(T)
-    d = _dIW(s, x_fe) if dIW is None else float(dIW)
-    pc = at_conditions(p, s["base_D"], s["chem"], P, T, d, s["Mbar_sil"], mbar_met,
+    d = _dIW(s, st[0]) if dIW is None else float(dIW)
+    pc = at_conditions(p, s["base_D"], s["chem"], P, T, d, s["Mbar_sil"], st[1],
                        {"temperature_from": s["temperature_from"],
-                        "dIW_from": s["dIW_from"], **(extra or {})})
+                        "dIW_from": s["dIW_from"], **s["choices"], **(extra or {})},
+                       x_light=(st[2], st[3]))
     return replace(pc, dIW=d, mantle_Fe=None) if dIW is not None else pc
 
 
@@ -225,39 +247,40 @@ def at_case_conditions(p: Any, case: Any, pressure_GPa: float | None = None) -> 
                              "'planetmix sample' only; give one value for this command",
                              file=case.path, field=f"core.{key}", value=list(v))
     s = _setup(p, case)
-    return _at(p, s, float(P), s["x_Fe"], s["Mbar_met"],
-               {"iterated_with_fit": False})
+    return _at(p, s, float(P), s["metal0"], {"iterated_with_fit": False})
 
 
 def fit_at_conditions(p: Any, case: Any, P: float, settings: Any, *,
-                      previous: Any = None, state: tuple[float, float] | None = None,
+                      previous: Any = None, state: tuple[float, ...] | None = None,
                       setup: dict[str, Any] | None = None) -> tuple[Any, Any, tuple]:
     """Fit at pressure P with (dIW, Mbar_met) iterated with the fitted core.
 
     ``p`` is the effective-D problem of the case. The first fit is a full
     :func:`inversion.fit.fit_problem` unless ``previous`` (a fit at a nearby pressure)
     is given, which then starts a :func:`inversion.fit.refit`; the later iterations refit
-    from the last fit. Returns ``(result, problem, (x_Fe, Mbar_met))``.
+    from the last fit. Returns ``(result, problem, (x_Fe, Mbar_met, x_Si, x_S))``; with
+    ``metal_activity = "epsilon"`` the metal's Si and S are part of the fixed point too
+    (stop when they move by < 5e-4 in mole fraction).
     """
     from .fit import fit_problem, forward_of, refit
 
     s = setup or _setup(p, case)
-    x_fe, mbar = state or (s["x_Fe"], s["Mbar_met"])
+    st = tuple(state or s["metal0"])
+    eps = s["chem"].activity == "epsilon"
     res, pc = previous, None
     for it in range(1, STATE_ITERATIONS + 1):
-        pc = _at(p, s, P, x_fe, mbar, {"iterated_with_fit": True, "fixed_point_fits": it})
+        pc = _at(p, s, P, st, {"iterated_with_fit": True, "fixed_point_fits": it})
         res = fit_problem(pc, settings) if res is None else refit(pc, res, settings)
         if not res.feasible:
             break
-        core = forward_of(pc, res)["core"][0]
-        x_new, m_new = _metal(pc, core)
-        moved = (abs(_dIW(s, x_new) - _dIW(s, x_fe)), abs(m_new - mbar) / mbar)
-        x_fe, mbar = x_new, m_new
-        if moved[0] < 2e-3 and moved[1] < 1e-3:
+        new = _metal(pc, forward_of(pc, res)["core"][0])
+        moved = (abs(_dIW(s, new[0]) - _dIW(s, st[0])), abs(new[1] - st[1]) / st[1],
+                 max(abs(new[2] - st[2]), abs(new[3] - st[3])) if eps else 0.0)
+        st = new
+        if moved[0] < 2e-3 and moved[1] < 1e-3 and moved[2] < 5e-4:
             break
-    pc = _at(p, s, P, x_fe, mbar, {"iterated_with_fit": True,
-                                   "fixed_point_fits": it})
-    return res, pc, (x_fe, mbar)
+    pc = _at(p, s, P, st, {"iterated_with_fit": True, "fixed_point_fits": it})
+    return res, pc, st
 
 
 def _crossing(f: Any, a: float, b: float) -> float:
@@ -411,13 +434,13 @@ def infer_conditions(p: Any, case: Any, settings: Any) -> tuple[Any, Any]:
     span = hi - lo
     fixed_P = None if "pressure_GPa" in free else float(case.core.pressure_GPa)
     quick = replace(settings, intervals=False)
-    state = (s["x_Fe"], s["Mbar_met"])
+    state = s["metal0"]
 
-    def problem(theta: np.ndarray, st: tuple[float, float], extra: dict | None = None) -> Any:
+    def problem(theta: np.ndarray, st: tuple[float, ...], extra: dict | None = None) -> Any:
         P, T, d = _cond_values(s, names, theta, fixed_P)
-        return _at(p, s, P, st[0], st[1], extra, T=T, dIW=d)
+        return _at(p, s, P, st, extra, T=T, dIW=d)
 
-    def conditional(theta0: np.ndarray, res: Any, st: tuple[float, float], grid: bool
+    def conditional(theta0: np.ndarray, res: Any, st: tuple[float, ...], grid: bool
                     ) -> np.ndarray:
         def f(z: np.ndarray) -> float:
             c = _chi2_of(_evaluate(problem(lo + z * span, st), res, quick))
@@ -474,7 +497,7 @@ def infer_conditions(p: Any, case: Any, settings: Any) -> tuple[Any, Any]:
 
 def _joint_curvature(pc: Any, res: Any, settings: Any, names: list[str],
                      theta: np.ndarray, lo: np.ndarray, hi: np.ndarray, problem: Any,
-                     state: tuple[float, float]) -> dict[str, Any]:
+                     state: tuple[float, ...]) -> dict[str, Any]:
     """Laplace intervals, correlations, pulls and the Ni-Co-only rank at the optimum."""
     from .solver import curvature
 
@@ -560,13 +583,14 @@ def fit_continuous(p: Any, case: Any, settings: Any) -> tuple[Any, Any]:
     from .fit import fit_problem, forward_of, refit
 
     c = dict(case.core.continuous)
-    chem0 = pt.compile_chemistry(p.elements, oxygen=False)
+    activity = getattr(case.core, "metal_activity", "ideal")
+    chem0 = pt.compile_chemistry(p.elements, oxygen=False, activity=activity)
     reg = np.isin(chem0.kind, (1, 2))
     reg[p.fe_index] = False
     base = np.asarray(p.D, float).copy()
     fixed = {e: float(base[j]) for j, e in enumerate(p.elements)
              if not reg[j] and base[j] > 0 and j != p.fe_index}
-    chem = pt.compile_chemistry(p.elements, D_fixed=fixed, oxygen=False)
+    chem = pt.compile_chemistry(p.elements, D_fixed=fixed, oxygen=False, activity=activity)
     quick = replace(settings, intervals=False)
     pc = replace(p, dIW=c["dIW_final"]) if p.dIW is not None else p
     res, D = None, base
@@ -594,7 +618,7 @@ def fit_continuous(p: Any, case: Any, settings: Any) -> tuple[Any, Any]:
         src = dict(chem.sources)
         sources = tuple((e, src[e] if reg[j] else "effective")
                         for j, e in enumerate(p.elements) if D[j] > 0)
-        cond = {"partitioning": "continuous", **c, "sources": dict(sources),
+        cond = {"partitioning": "continuous", **c, **_choices(case), "sources": dict(sources),
                 "steps": [{"pressure_GPa": float(P), "temperature_K": float(T),
                            "dIW": float(d)} for P, T, d in zip(acc["P"], acc["T"],
                                                                acc["dIW"], strict=True)],

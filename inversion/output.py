@@ -283,6 +283,16 @@ def provenance(*, tables: list[str], extra: dict[str, Any] | None = None,
     return out
 
 
+def _core_choices(case: Any) -> dict[str, Any]:
+    """``[core]`` partitioning model, HSE set and metal activity model, with sources."""
+    from .partitioning import choice_provenance
+
+    cc = case.core
+    return {"partitioning": cc.partitioning,
+            **choice_provenance(getattr(cc, "hse_partitioning", "constant"),
+                                getattr(cc, "metal_activity", "ideal"))}
+
+
 def case_provenance(case: Any, p: Any, *, tables: list[str] | None = None,
                     extra: dict[str, Any] | None = None) -> dict[str, Any]:
     """Provenance of a result computed from a case file and its compiled problem.
@@ -298,6 +308,7 @@ def case_provenance(case: Any, p: Any, *, tables: list[str] | None = None,
             "reference_element": p.reference, "condensation_table": p.condensation_table,
             "normaliser": getattr(p, "normaliser", "CI"), "iron_split": core,
             "partition_coefficients": dict(zip(p.elements, map(float, p.D), strict=True)),
+            "core_partitioning": _core_choices(case),
             "uncertainty_defaulted": list(case.target.uncertainty_defaulted)}
     info.update(extra or {})
     return provenance(

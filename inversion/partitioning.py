@@ -58,7 +58,7 @@ __all__ = [
     "peridotite_liquidus", "cmb_pressure", "initial_state", "split_step", "split_outputs",
     "solve_single_stage", "single_stage_unrolled", "split_step_feo", "solve_for_mantle_FeO",
     "continuous_accretion", "STATE_FIELDS", "HSE", "HSE_CONSTANT", "hse_sets",
-    "load_hse_table", "hse_D",
+    "load_hse_table", "hse_D", "choice_provenance",
 ]
 
 DATA = components.DATA_DIR / "partitioning"
@@ -193,6 +193,54 @@ def hse_D(name: str, path: str | Path | None = None) -> dict[str, float]:
                          field="core.hse_partitioning", value=name)
     rows = df[df["set"] == name]
     return {str(e): float(d) for e, d in zip(rows["element"], rows["D"], strict=True)}
+
+
+def choice_provenance(hse_partitioning: str = HSE_CONSTANT, metal_activity: str = "ideal"
+                      ) -> dict[str, Any]:
+    """What the ``[core] hse_partitioning`` and ``metal_activity`` choices stand for, with
+    their sources (the ``core_conditions`` block and the provenance of fit.json and
+    sample.json).
+
+    Examples
+    --------
+    >>> choice_provenance()["metal_activity"]["model"]
+    'ideal'
+    """
+    if hse_partitioning == HSE_CONSTANT:
+        part = pd.read_csv(DATA / "earth_core_mantle.csv", comment="#").set_index("element")
+        rows = part.loc[[e for e in HSE if e in part.index]]
+        hse = {"choice": HSE_CONSTANT,
+               "description": "one effective D of earth_core_mantle.csv for every HSE",
+               "D": {str(e): float(d) for e, d in rows["D"].items()},
+               "sources": sorted(set(rows["source"].astype(str))),
+               "table": "components/data/partitioning/earth_core_mantle.csv"}
+    else:
+        table = load_hse_table()
+        rows = table[table["set"] == hse_partitioning]
+        hse = {"choice": hse_partitioning,
+               "description": "mass-basis D at stated conditions (not following P, T, dIW)",
+               "D": hse_D(hse_partitioning),
+               "sources": sorted(set(rows["source"].astype(str))),
+               "provenance": sorted(set(rows["provenance"].astype(str))),
+               "table": "components/data/partitioning/hse_high_pressure.csv"}
+    if metal_activity not in ACTIVITY_MODELS:
+        raise InputError(f"activity model must be one of {ACTIVITY_MODELS}",
+                         field="core.metal_activity", value=metal_activity)
+    act: dict[str, Any] = {"model": metal_activity}
+    if metal_activity == "ideal":
+        act["description"] = "every regression evaluated with mole fractions (gamma = 1)"
+        act["sources"] = []
+    else:
+        inter = load_interactions()
+        reg = load_regressions()
+        act["description"] = ("interaction-parameter model of liquid iron (1873 K, scaled "
+                              "T0/T) on the regression rows fitted with activities")
+        act["applies_to"] = sorted({f"{e} ({s})" for e, s, a in zip(
+            reg["element"], reg["source"], reg["activity"], strict=True) if a == "epsilon"})
+        act["sources"] = sorted(set(inter["source"].astype(str)))
+        act["provenance"] = sorted(set(inter["provenance"].astype(str)))
+        act["table"] = "components/data/partitioning/interaction_parameters.csv"
+    return {"hse_partitioning": hse, "metal_activity": act}
 
 
 def load_interactions(path: str | Path | None = None) -> pd.DataFrame:

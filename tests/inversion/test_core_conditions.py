@@ -237,7 +237,8 @@ def test_fixed_point_of_the_metal(tmp_path) -> None:
     path, _ = _simulate(tmp_path, 0.01, seed=3)
     case = load_case(path)
     p = compile_problem(case, pressure_GPa=TRUE_P)
-    res, pc, (x_fe, mbar) = fit_at_conditions(p, case, TRUE_P, FitSettings(intervals=False))
+    res, pc, (x_fe, mbar, *_) = fit_at_conditions(p, case, TRUE_P,
+                                                  FitSettings(intervals=False))
     from inversion.fit import forward_of
 
     core = np.maximum(forward_of(pc, res)["core"][0], 0)
