@@ -60,6 +60,11 @@ DELTA_CHI2_95 = 3.841
 #: Fixed point of (dIW, Mbar_met) with the fit: stop when dIW moves < 0.002 and Mbar_met
 #: by < 1e-3 relative (D by < 0.0005 dex), after at most this many fits.
 STATE_ITERATIONS = 8
+#: With ``metal_activity = "epsilon"`` the metal's Si and S join the fixed point: their
+#: plain iteration oscillates (more Si in the metal raises gamma_Si and lowers D_Si), so
+#: they move by this fraction of each step, for at most this many fits.
+X_LIGHT_DAMPING = 0.5
+STATE_ITERATIONS_EPSILON = 20
 #: Resolution [GPa] of the minimum and of the interval ends.
 PRESSURE_TOL_GPA = 0.25
 LIQUIDUS = "peridotite liquidus, Fiquet et al. (2010)"
@@ -138,7 +143,7 @@ def at_conditions(p: Any, base_D: np.ndarray, chem: pt.CoreChemistry, P: float, 
                     if D[j] > 0)
     cond = {"partitioning": "single-stage", "pressure_GPa": float(P),
             "temperature_K": float(T), "dIW": float(dIW), "Mbar_sil_g_mol": Mbar_sil,
-            "Mbar_met_g_mol": Mbar_met, "metal_activity": chem.activity,
+            "Mbar_met_g_mol": Mbar_met, "metal_activity": {"model": chem.activity},
             "x_Si_metal": float(x_light[0]), "x_S_metal": float(x_light[1]),
             "sources": dict(sources), **(extra or {})}
     return replace(p, D=D, D_sources=sources, core_conditions=cond)
@@ -206,6 +211,16 @@ def _setup(p: Any, case: Any) -> dict[str, Any]:
                                  else "[core] temperature_K of the case")}
 
 
+def _next_metal(s: dict[str, Any], st: tuple[float, ...], new: tuple[float, ...]
+                ) -> tuple[float, ...]:
+    """The next metal state of the fixed point: ``new`` (ideal), or with the Si and S
+    mole fractions damped by :data:`X_LIGHT_DAMPING` (epsilon)."""
+    if s["chem"].activity != "epsilon":
+        return tuple(new)
+    return (new[0], new[1], *(a + X_LIGHT_DAMPING * (b - a)
+                              for a, b in zip(st[2:], new[2:], strict=True)))
+
+
 def _dIW(s: dict[str, Any], x_fe: float) -> float:
     if s["dIW_fixed"] is not None:
         return float(s["dIW_fixed"])
@@ -260,7 +275,7 @@ def fit_at_conditions(p: Any, case: Any, P: float, settings: Any, *,
     is given, which then starts a :func:`inversion.fit.refit`; the later iterations refit
     from the last fit. Returns ``(result, problem, (x_Fe, Mbar_met, x_Si, x_S))``; with
     ``metal_activity = "epsilon"`` the metal's Si and S are part of the fixed point too
-    (stop when they move by < 5e-4 in mole fraction).
+    (stop when they move by < 5e-4 in mole fraction; damped, :data:`X_LIGHT_DAMPING`).
     """
     from .fit import fit_problem, forward_of, refit
 
@@ -268,7 +283,7 @@ def fit_at_conditions(p: Any, case: Any, P: float, settings: Any, *,
     st = tuple(state or s["metal0"])
     eps = s["chem"].activity == "epsilon"
     res, pc = previous, None
-    for it in range(1, STATE_ITERATIONS + 1):
+    for it in range(1, (STATE_ITERATIONS_EPSILON if eps else STATE_ITERATIONS) + 1):
         pc = _at(p, s, P, st, {"iterated_with_fit": True, "fixed_point_fits": it})
         res = fit_problem(pc, settings) if res is None else refit(pc, res, settings)
         if not res.feasible:
@@ -276,7 +291,7 @@ def fit_at_conditions(p: Any, case: Any, P: float, settings: Any, *,
         new = _metal(pc, forward_of(pc, res)["core"][0])
         moved = (abs(_dIW(s, new[0]) - _dIW(s, st[0])), abs(new[1] - st[1]) / st[1],
                  max(abs(new[2] - st[2]), abs(new[3] - st[3])) if eps else 0.0)
-        st = new
+        st = _next_metal(s, st, new)
         if moved[0] < 2e-3 and moved[1] < 1e-3 and moved[2] < 5e-4:
             break
     pc = _at(p, s, P, st, {"iterated_with_fit": True, "fixed_point_fits": it})
@@ -468,7 +483,7 @@ def infer_conditions(p: Any, case: Any, settings: Any) -> tuple[Any, Any]:
         if not res.feasible:
             break
         core = forward_of(problem(theta, state), res)["core"][0]
-        state = _metal(p, core)
+        state = _next_metal(s, state, _metal(p, core))
         new = conditional(theta, res, state, grid=it == 0)
         moved = float(np.max(np.abs(new - theta) / span))
         theta = new

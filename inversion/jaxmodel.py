@@ -122,7 +122,7 @@ def conditions_D(p: Any) -> tuple[np.ndarray, Any]:
     cc = p.core_conditions
     # the metal activity model of the case; the metal's Si and S (its activities) are held
     # at their start values like the mean molar masses
-    chem = _chemistry(tuple(p.elements), str(cc.get("metal_activity", "ideal")))
+    chem = _chemistry(tuple(p.elements), (cc.get("metal_activity") or {}).get("model", "ideal"))
     mask = np.isin(chem.kind, (1, 2))
     mask[p.fe_index] = False
     base = np.asarray(p.D, float)

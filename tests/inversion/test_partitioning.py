@@ -542,3 +542,124 @@ def test_hse_explicit_D_wins_and_unknown_choice_is_refused(tmp_path):
     with pytest.raises(InputError, match="unknown HSE partitioning") as err:
         _earth_case(tmp_path, 'hse_partitioning = "lowest"')
     assert err.value.field == "core.hse_partitioning" and "\n" not in str(err.value)
+
+
+# ------------------------------------------------ [core] metal_activity in the case file
+
+def _ln_gamma_by_hand(x_si: float, x_s: float, T: float) -> tuple[float, float]:
+    """ln gamma_Ni and ln gamma_Fe of the epsilon model (docs/partitioning.md) from the
+    values of interaction_parameters.csv typed here: ln gamma0_Ni = -0.416 (gamma0 0.66),
+    eps_Ni^S = -0.049, eps_Ni^Si = 1.19, eps_Si^Si = 12.4, eps_Si^S = 9.14, eps_S^S =
+    -5.65 (Steelmaking Data Sourcebook copy and Huang et al. 2020, Table 1)."""
+    s = 1873.0 / T
+    ln_ni = s * (-0.416 - 0.049 * x_s + 1.19 * x_si)
+    quad = 12.4 * x_si ** 2 + 2 * 9.14 * x_si * x_s - 5.65 * x_s ** 2
+    return ln_ni, -0.5 * s * quad
+
+
+@pytest.mark.parametrize("core, match", [
+    ('partitioning = "single-stage"\npressure_GPa = 40.0\ndIW = -2.0\n'
+     'metal_activity = "perfect"', "ideal"),
+    ('dIW = -2.0\nmetal_activity = "epsilon"', "single-stage"),
+])
+def test_metal_activity_key_is_checked(tmp_path, core, match):
+    from inversion.case import load_case
+    from tests.inversion.test_core_conditions import _case
+
+    with pytest.raises(InputError, match=match) as err:
+        load_case(_case(tmp_path, "[core]\n" + core))
+    assert err.value.field == "core.metal_activity" and "\n" not in str(err.value)
+
+
+def test_metal_activity_reaches_the_convex_and_the_sampler_D(tmp_path):
+    """metal_activity = "epsilon" changes the regression D of the compiled problem by the
+    activity term of Fischer et al.'s (2015) activity fit, -log10 gamma_Ni + log10
+    gamma_Fe for Ni (n = 2), at the metal's Si and S recorded in core_conditions (here
+    the reference core of McDonough 2003); W, Nb or Ta (ideal fits) do not move; the
+    sampler's D (jaxmodel.pressure_D, numpy and JAX) are the convex path's."""
+    from inversion.case import load_case
+    from inversion.jaxmodel import jax_setup, pressure_D
+    from inversion.model import compile_problem
+    from tests.inversion.test_core_conditions import _case
+
+    core = '[core]\npartitioning = "single-stage"\npressure_GPa = 40.0\ndIW = -2.0\n'
+    pi = compile_problem(load_case(_case(tmp_path, core)))
+    pe = compile_problem(load_case(_case(tmp_path, core + 'metal_activity = "epsilon"')))
+    c = pe.core_conditions
+    assert c["metal_activity"]["model"] == "epsilon"
+    assert pi.core_conditions["metal_activity"]["model"] == "ideal"
+    x_si, x_s = c["x_Si_metal"], c["x_S_metal"]
+    assert 0.05 < x_si < 0.2 and 0.0 < x_s < 0.05  # the Earth's core: 6 and 1.9 wt%
+    ln_ni, ln_fe = _ln_gamma_by_hand(x_si, x_s, c["temperature_K"])
+    ni = pe.elements.index("Ni")
+    w = next(pe.elements.index(e) for e in ("W", "Nb", "Ta") if e in pe.elements)
+    shift = np.log10(pe.D[ni] / pi.D[ni])
+    assert shift == pytest.approx((-ln_ni + ln_fe) / np.log(10.0), abs=1e-9)
+    assert pe.D[w] == pytest.approx(pi.D[w], rel=1e-12)
+    _, D_of_P = pressure_D(pe)
+    np.testing.assert_allclose(D_of_P(40.0), pe.D, rtol=1e-12)
+    jax_setup()
+    import jax.numpy as jnp
+
+    np.testing.assert_allclose(np.asarray(D_of_P(jnp.asarray(40.0), jnp)), pe.D,
+                               rtol=1e-12)
+
+
+def test_fit_json_and_sample_summary_name_the_core_choices(tmp_path):
+    """planetmix fit with metal_activity = "epsilon" and hse_partitioning =
+    "high-pressure": core_conditions and the provenance name both, with their source
+    keys; the epsilon fit iterates the metal's Si and S to those of its own core (fixed
+    point to 5e-4 in mole fraction); the sample summary's core_conditions carry the same
+    entries (bayes_cli._posterior_conditions with no sampled condition)."""
+    import json
+    from types import SimpleNamespace
+
+    from inversion.bayes_cli import _posterior_conditions
+    from inversion.case import load_case
+    from inversion.cli import main
+    from inversion.fit import forward_of
+    from tests.inversion.test_core_conditions import _simulate
+
+    path, _ = _simulate(tmp_path, 0.01, seed=5)
+    text = path.read_text().replace("pressure_GPa = [10.0, 80.0]", "pressure_GPa = 40.0")
+    path.write_text(text.replace('[core]\n', '[core]\nmetal_activity = "epsilon"\n'
+                                 'hse_partitioning = "high-pressure"\n', 1))
+    assert main(["fit", str(path), "--out", str(tmp_path / "out")]) == 0
+    fit = json.loads((tmp_path / "out" / "fit.json").read_text())
+    c = fit["core_conditions"]
+    assert c["metal_activity"]["model"] == "epsilon"
+    assert {"steelmaking1988", "huang2020"} <= set(c["metal_activity"]["sources"])
+    assert "Ni (fischer2015)" in c["metal_activity"]["applies_to"]
+    assert c["hse_partitioning"]["choice"] == "high-pressure"
+    assert set(c["hse_partitioning"]["sources"]) == set(
+        pt.load_hse_table().query("set == 'high-pressure'")["source"])
+    prov = fit["provenance"]["core_partitioning"]
+    assert prov["metal_activity"]["model"] == "epsilon"
+    assert prov["hse_partitioning"]["D"]["Pt"] == pytest.approx(pt.hse_D("high-pressure")["Pt"])
+    # the metal's Si and S at the fixed point of the fit
+    from inversion.conditions import fit_at_conditions, start_problem
+    from inversion.fit import FitSettings
+
+    case = load_case(path)
+    res, pc, st = fit_at_conditions(start_problem(case), case, 40.0,
+                                    FitSettings(intervals=False))
+    core = np.maximum(forward_of(pc, res)["core"][0], 0.0)
+    mol = core / pc.atomic_weight
+    for el, x in (("Si", st[2]), ("S", st[3])):
+        assert x == pytest.approx(mol[pc.elements.index(el)] / mol.sum(), abs=5e-4)
+    summary = _posterior_conditions(pc, SimpleNamespace(posterior={}))
+    assert summary["metal_activity"]["model"] == "epsilon"
+    assert summary["hse_partitioning"]["choice"] == "high-pressure"
+
+
+def test_choice_provenance_of_the_defaults():
+    """The defaults: the one D = 1e4 of earth_core_mantle.csv (Walker 2009, recalled) and
+    the ideal evaluation (no activity sources)."""
+    d = pt.choice_provenance()
+    assert d["hse_partitioning"]["choice"] == "constant"
+    assert set(d["hse_partitioning"]["D"].values()) == {1e4}
+    assert d["hse_partitioning"]["sources"] == ["walker2009"]
+    assert d["metal_activity"] == {"model": "ideal", "description": d["metal_activity"][
+        "description"], "sources": []}
+    with pytest.raises(InputError, match="activity model"):
+        pt.choice_provenance(metal_activity="perfect")
