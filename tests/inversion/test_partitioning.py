@@ -6,6 +6,8 @@ of it, published statements read in abstracts, or "from memory" where recalled.
 
 from __future__ import annotations
 
+from pathlib import Path
+
 import numpy as np
 import pytest
 from scipy.optimize import brentq, minimize_scalar
@@ -287,46 +289,116 @@ def test_mars_core_is_sulfur_rich_and_its_mass_seismic(mars):
     assert 0.20 <= float(o["cmf"]) <= 0.27
 
 
-@pytest.mark.xfail(strict=True, reason="evaluated ideal (the default), Ni and Co of the Wanke "
-                   "& Dreibus mantle are fitted at 6.8-7.3 GPa on the Fiquet liquidus, below the "
-                   "published 10-20 GPa; with the metal's activities they reach 11.3 and 16.5 "
-                   "GPa (next test; docs/partitioning.md)")
-def test_mars_equilibration_pressure(mars):
-    """Published single-stage Mars: ~14 +- 3 GPa (Righter & Chabot 2011, MAPS 46, 157;
-    Rai & van Westrenen 2013, JGR Planets 118, 1195; both from memory)."""
-    els, a, chem = mars
-
-    def ni(P):
-        o = pt.solve_for_mantle_FeO(a, P, pt.peridotite_liquidus(P), 0.179, chem)
-        return np.log10(o["mantle"][els.index("Ni")] / o["M_s"] / 400e-6)
-
-    P = brentq(ni, 1.0, 40.0, xtol=0.05)
-    assert 10.0 <= P <= 20.0
+MARS_CASE = (Path(__file__).resolve().parents[2] / "case_studies" / "mars"
+             / "case_core.toml")
+#: Published single-stage Mars: ~14 +- 3 GPa (Righter & Chabot 2011, MAPS 46, 157; Rai &
+#: van Westrenen 2013, JGR Planets 118, 1195; both from memory); 10-20 GPa in issue 15.
+MARS_PRESSURE_GPA = (10.0, 20.0)
 
 
-def test_mars_equilibration_pressure_with_metal_activities(mars):
-    """With the metal's activities (activity="epsilon": gamma0 of Ni, Co and the S and Si
-    interaction parameters of the Steelmaking Data Sourcebook, read in a public digitised
-    copy; interaction_parameters.csv) Ni and Co of the Wanke & Dreibus (1988) mantle (400
-    and 68 ppm, from memory) are matched at 11.3 and 16.5 GPa on the liquidus, inside the
-    published single-stage Mars range of ~14 +- 3 GPa (Righter & Chabot 2011, MAPS 46, 157;
-    Rai & van Westrenen 2013, JGR Planets 118, 1195; both from memory; 10-20 GPa in the
-    issue); the core keeps 10-17 wt% S and a CMF of 0.20-0.27 (as the ideal test above).
-    Most of the shift comes from gamma0 of Ni and Co (with them alone: 10.5 and 17.5 GPa);
-    the S terms alone move Ni to 8.1 GPa and leave Co at 7.6 GPa."""
-    els, a, chem_ideal = mars
-    chem = pt.compile_chemistry(els, activity="epsilon")
+def _mars_ni_co_pressures(mars, chem):
+    """Pressures on the liquidus at which the split leaves the Wanke & Dreibus (1988)
+    mantle's Ni and Co (400 and 68 ppm, from memory), dIW set by its 17.9 wt% FeO."""
+    els, a, _ = mars
 
     def offset(P, el, obs):
         o = pt.solve_for_mantle_FeO(a, P, pt.peridotite_liquidus(P), 0.179, chem)
         return np.log10(o["mantle"][els.index(el)] / o["M_s"] / obs)
 
-    for el, obs in (("Ni", 400e-6), ("Co", 68e-6)):
-        P = brentq(offset, 1.0, 40.0, args=(el, obs), xtol=0.05)
-        assert 10.0 <= P <= 20.0, (el, P)
+    return {el: brentq(offset, 1.0, 40.0, args=(el, obs), xtol=0.05)
+            for el, obs in (("Ni", 400e-6), ("Co", 68e-6))}
+
+
+def test_mars_equilibration_pressure_ideal(mars):
+    """Documents the ideal evaluation (mole fractions for the activity fits of Fischer et
+    al. 2015): Ni and Co of the Wanke & Dreibus mantle are matched at 6.8 and 7.3 GPa on
+    the Fiquet liquidus (or at 10-12 GPa some 270-430 K below it, docs/partitioning.md),
+    both below the published range; this is why the Mars case evaluates them with
+    activities (next test)."""
+    els, _, chem = mars
+    P = _mars_ni_co_pressures(mars, chem)
+    assert P["Ni"] == pytest.approx(6.8, abs=0.2) and P["Co"] == pytest.approx(7.3, abs=0.2)
+    assert max(P.values()) < MARS_PRESSURE_GPA[0]
+
+
+def test_mars_equilibration_pressure(mars):
+    """With the metal activity model of the Mars case as configured
+    (case_studies/mars/case_core.toml: metal_activity = "epsilon", gamma0 of Ni and Co
+    and the S and Si interaction parameters of the Steelmaking Data Sourcebook, read in a
+    public digitised copy; interaction_parameters.csv) Ni and Co of the Wanke & Dreibus
+    (1988) mantle are matched at 11.3 and 16.5 GPa on the liquidus, inside the published
+    single-stage Mars range (MARS_PRESSURE_GPA); the core keeps 10-17 wt% S and a CMF of
+    0.20-0.27 (as the S-rich bulk test above). Most of the shift from the ideal 6.8 and
+    7.3 GPa comes from gamma0 of Ni and Co (with them alone: 10.5 and 17.5 GPa); the S
+    terms alone move Ni to 8.1 GPa and leave Co at 7.6 GPa."""
+    from inversion.case import load_case
+
+    activity = load_case(MARS_CASE).core.metal_activity
+    els, a, _ = mars
+    chem = pt.compile_chemistry(els, activity=activity)
+    P = _mars_ni_co_pressures(mars, chem)
+    for el, v in P.items():
+        assert MARS_PRESSURE_GPA[0] <= v <= MARS_PRESSURE_GPA[1], (el, v)
     o = pt.solve_for_mantle_FeO(a, 14.0, pt.peridotite_liquidus(14.0), 0.179, chem)
     assert 0.10 <= float(o["core_wt"][els.index("S")]) <= 0.17
     assert 0.20 <= float(o["cmf"]) <= 0.27
+
+
+@pytest.fixture(scope="module")
+def mars_case_fit():
+    """planetmix fit of case_studies/mars/case_core.toml (pressure inferred over [3, 30]
+    GPa on the liquidus, the case's metal activity model): result, problem, core wt%."""
+    from inversion.case import load_case
+    from inversion.conditions import infer_conditions, start_problem
+    from inversion.fit import FitSettings, forward_of
+
+    case = load_case(MARS_CASE)
+    res, pc = infer_conditions(start_problem(case), case, FitSettings(cmf_range=case.cmf_range))
+    fwd = forward_of(pc, res)
+    core = dict(zip(pc.elements, 100.0 * fwd["core"][0] / fwd["M_c"][0], strict=True))
+    return res, pc, core
+
+
+#: Published core S of Mars [wt%]: ~5-10 (Wang & Becker 2017, EPSL 463, 56, as reported by
+#: https://www.trr170-lateaccretion.de/news/trr-170-nasas-insight-mission, read), <= 7
+#: (Yoshizaki & McDonough 2020, GCA 273, 137, abstract read), 14.24 (Dreibus & Wanke 1987
+#: table, read in ESA SP-1231 p. 86 on yumpu.com; the model of Wanke & Dreibus 1988).
+MARS_CORE_S_WT = (5.0, 15.0)
+#: Seismic CMF of Mars: 0.21-0.27 from the core radius 1830 +- 40 km and core density
+#: 5.7-6.3 g/cm3 of Stahler et al. (2021, Science 373, 443; from memory) and the mass
+#: 6.417e23 kg (case_studies/mars/README.md, "Core size").
+MARS_SEISMIC_CMF = (0.21, 0.27)
+
+
+def test_mars_case_core_mass_fraction(mars_case_fit):
+    """The Mars case (core formation at the inferred pressure, the Wang & Becker S fitted)
+    gives a core mass inside the seismic range: measured 0.213 (at its lower edge)."""
+    res, pc, _ = mars_case_fit
+    assert res.feasible
+    assert MARS_SEISMIC_CMF[0] <= res.core_mass_fraction <= MARS_SEISMIC_CMF[1]
+    # with the case's activity model, and a pressure interval that reaches into the
+    # published range (measured 9.0 GPa, 95% profile interval [4.0, 13.1])
+    c = pc.core_conditions
+    assert c["metal_activity"]["model"] == "epsilon"
+    assert c["pressure_inferred"]["interval_95"][1] >= 11.0  # 14 - 3 GPa
+
+
+@pytest.mark.xfail(strict=True, reason="measured: the Mars case's core holds 0.79 wt% S (0.82 "
+                   "ideal, 1.47 with the effective D): the volatility trend of Na, K and Mn "
+                   "leaves 0.18 wt% S in the bulk, and with the Earth-calibrated D_S = 76 the "
+                   "mantle's 360 ppm is two-thirds late veneer (docs/partitioning.md)")
+def test_mars_case_core_sulfur(mars_case_fit):
+    _, _, core = mars_case_fit
+    assert MARS_CORE_S_WT[0] <= core["S"] <= MARS_CORE_S_WT[1], core["S"]
+
+
+@pytest.mark.xfail(strict=True, reason="measured: the whole pattern puts the Mars case's "
+                   "single stage at 9.0 GPa (95% [4.0, 13.1]; ideal 4.5 GPa [<= 3.0, 8.4]), "
+                   "just below the published 10-20 GPa that Ni and Co alone reach")
+def test_mars_case_pressure_in_the_published_range(mars_case_fit):
+    _, pc, _ = mars_case_fit
+    P = pc.core_conditions["pressure_GPa"]
+    assert MARS_PRESSURE_GPA[0] <= P <= MARS_PRESSURE_GPA[1], P
 
 
 # ------------------------------------------------------------------- continuous accretion
