@@ -171,8 +171,6 @@ def _sample(p: Problem, settings: SamplerSettings | None = None, *,
            progress: bool = False, y: np.ndarray | None = None,
            posterior_predictive: bool = True, log_likelihood: bool = True) -> SampleResult:
     """:func:`sample` without the warning filters."""
-    import pymc as pm
-
     from ..fit import fit_problem
 
     settings = settings or SamplerSettings()
@@ -187,14 +185,24 @@ def _sample(p: Problem, settings: SamplerSettings | None = None, *,
         fit = fit_problem(obs_p)
     jitter_seed = int(rng.integers(0, 2**31 - 1))
     t_fit = time.perf_counter() - t0
-    model = build_model(p, priors, y=y)
     cores = settings.cores or min(settings.chains, os.cpu_count() or 1)
-    if settings.engine == "pymc":
+    extra_timing: dict[str, float] = {}
+    if settings.engine == "numpyro":
+        # NumPyro's NUTS on the exported log density (inversion.bayes.warm): a run of a
+        # model already in the cache loads it and never builds the PyMC model
+        idata, inits, t_compile, t_nuts, names, extra_timing = _sample_exported(
+            p, priors, fit, settings, y=y, seed=nuts_seed, jitter_seed=jitter_seed,
+            progress=progress)
+        model = None
+    else:
+        model = build_model(p, priors, y=y)
+        names = parameter_names(model)
+    if model is not None and settings.engine == "pymc":
         # PyMC runs parallel chains in forked processes, and a process forked after JAX
         # has started its threads deadlocks (seen: two idle children, no progress): the
         # model's physics is a JAX operation, so PyMC's chains run one after the other
         cores = 1
-    if settings.engine == "nutpie":
+    if model is not None and settings.engine == "nutpie":
         if progress:
             print("compiling the log density and its gradient (JAX; cached on disk for "
                   "the next run of the same model) ...", file=sys.stderr, flush=True)
@@ -207,29 +215,18 @@ def _sample(p: Problem, settings: SamplerSettings | None = None, *,
         idata, inits, t_nuts = runner.run(p, priors, fit, settings, cores=cores,
                                           seed=nuts_seed, jitter_seed=jitter_seed,
                                           progress=progress)
-    else:
+    elif model is not None:  # PyMC's own NUTS
+        import pymc as pm
+
         inits = start_points(p, priors, fit, settings.chains,
                              np.random.default_rng(jitter_seed), settings.jitter)
         t1 = time.perf_counter()
-        extra: dict[str, Any] = {"init": settings.init}
-        if settings.engine == "numpyro":
-            # the whole NUTS loop compiled by XLA (chains: settings.chain_method)
-            from ..jaxmodel import jax_setup
-
-            jax = jax_setup()
-            method = settings.chain_method
-            if method == "parallel" and jax.local_device_count() < settings.chains:
-                method = "sequential"
-            dense = settings.mass_matrix == "dense"
-            extra = {"nuts_sampler": "numpyro",
-                     "nuts_sampler_kwargs": {"chain_method": method,
-                                             "nuts_kwargs": {"dense_mass": dense}}}
         with model:
             idata = pm.sample(draws=settings.draws, tune=settings.tune,
                               chains=settings.chains, cores=cores, random_seed=nuts_seed,
                               initvals=inits, target_accept=settings.target_accept,
                               progressbar=progress, compute_convergence_checks=False,
-                              **extra)
+                              init=settings.init)
         # PyMC compiles inside pm.sample; its own sampling_time excludes that
         t_nuts = float(idata.posterior.attrs.get("sampling_time", time.perf_counter() - t1))
         t_compile = time.perf_counter() - t1 - t_nuts
@@ -237,11 +234,12 @@ def _sample(p: Problem, settings: SamplerSettings | None = None, *,
         add_log_likelihood(p, idata)
     if posterior_predictive:
         add_posterior_predictive(p, idata, np.random.default_rng(ppc_seed))
-    names = parameter_names(model)
     diag = diagnose(idata, names)
     lml = None
     smc_info: dict[str, Any] = {}
     if settings.evidence:
+        import pymc as pm
+
         t2 = time.perf_counter()
         with build_model(p, priors, y=y):
             smc = pm.sample_smc(draws=settings.smc_draws, chains=settings.smc_chains,
@@ -264,10 +262,67 @@ def _sample(p: Problem, settings: SamplerSettings | None = None, *,
              "order; the engine splits nuts_seed into one stream per chain"}
     start = {"fit_status": getattr(fit, "status", None), "initial_values": inits}
     timing = {"fit_seconds": t_fit, "compile_seconds": t_compile,
-              "sampling_seconds": t_nuts, "total_seconds": time.perf_counter() - t0}
+              "sampling_seconds": t_nuts, **extra_timing,
+              "total_seconds": time.perf_counter() - t0}
     return SampleResult(idata=idata, diagnostics=diag, settings=settings, seeds=seeds,
                         priors=priors, start=start, timing=timing,
                         log_marginal_likelihood=lml, smc=smc_info)
+
+
+def _sample_exported(p: Problem, priors: dict[str, dict[str, Any]], fit: Any,
+                     settings: SamplerSettings, *, y: np.ndarray | None, seed: int,
+                     jitter_seed: int, progress: bool
+                     ) -> tuple[Any, list[dict[str, Any]], float, float, list[str],
+                                dict[str, float]]:
+    """NumPyro's NUTS on the exported log density of :mod:`inversion.bayes.warm`.
+
+    Returns the InferenceData, the start points, the compile seconds (the exported log
+    density loaded from the cache or built and written, and its value and gradient at
+    the start points compiled, or loaded from XLA's cache, and evaluated), the sampling
+    seconds (NumPyro's tracing and the compile or cache load of its program included),
+    the free parameters' names and extra timing entries (``log_density_cached``: 1 when
+    the exported log density came from the cache, 0 when it was built).
+
+    Start points as PyMC's NumPyro path made them for this engine before: the convex
+    optimum jittered by :func:`start_points`, mapped to the unconstrained space, plus a
+    uniform jitter in [-1, 1] on every coordinate (PyMC's ``jitter``; here from a
+    generator seeded with ``(jitter_seed, 1)``); a chain whose start has a non-finite
+    log density or gradient (the core-iron support) draws its uniform jitter again, at
+    most 10 times. The start points returned are the constrained values of the starts
+    actually used.
+    """
+    from ..jaxmodel import jax_setup
+    from .warm import load_or_build, sample_numpyro
+
+    jax = jax_setup()
+    t1 = time.perf_counter()
+    em = load_or_build(p, priors, y)
+    vg = jax.jit(lambda X: jax.lax.map(em.logp_grad.call, X))
+    inits = start_points(p, priors, fit, settings.chains,
+                         np.random.default_rng(jitter_seed), settings.jitter)
+    x_opt = np.stack([em.to_unconstrained(iv) for iv in inits])
+    u = np.random.default_rng([jitter_seed, 1])
+    x0 = x_opt + u.uniform(-1.0, 1.0, x_opt.shape)
+    for _ in range(10):
+        v, grad = vg(x0)
+        bad = ~(np.isfinite(np.asarray(v)) & np.all(np.isfinite(np.asarray(grad)), axis=1))
+        if not bad.any():
+            break
+        x0[bad] = x_opt[bad] + u.uniform(-1.0, 1.0, (int(bad.sum()), x0.shape[1]))
+    inits = [em.to_constrained(x) for x in x0]
+    t_compile = time.perf_counter() - t1
+    method = settings.chain_method
+    if method == "parallel" and jax.local_device_count() < settings.chains:
+        method = "sequential"
+    idata, t_nuts = sample_numpyro(em, x0, draws=settings.draws, tune=settings.tune,
+                                   chains=settings.chains, seed=seed,
+                                   target_accept=settings.target_accept,
+                                   chain_method=method,
+                                   dense_mass=settings.mass_matrix == "dense",
+                                   progress=progress)
+    extra = {"log_density_cached": float(em.origin == "loaded"),
+             "log_density_seconds": em.seconds}
+    return idata, inits, t_compile, t_nuts, em.parameter_names, extra
 
 
 def _unconstrain_function(model: Any, order: list[str] | None = None):
