@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import sys
 from pathlib import Path
 from typing import Any
 
@@ -159,15 +160,20 @@ def _sample(parser: argparse.ArgumentParser):
             # conditions given as [low, high] are parameters: start at mid-range
             from dataclasses import replace
 
-            from .conditions import free_conditions, start_problem
+            from .conditions import free_conditions, sampling_start, start_problem
 
             p = start_problem(case)
             if "pressure_GPa" in free_conditions(case):
                 p = replace(p, core_conditions={
                     **p.core_conditions,
                     "pressure_range_GPa": list(free_conditions(case)["pressure_GPa"])})
+            if not args.quiet:
+                print("convex fit at the core-formation conditions (the sampler's start "
+                      "and its held metal) ...", file=sys.stderr, flush=True)
+            # the sampler holds the metal at the convex fit's converged state
+            p, fit0 = sampling_start(p, case)
         else:
-            p = compile_problem(case)
+            p, fit0 = compile_problem(case), None
         priors = check_priors(p, case.priors, file=case.path)
         settings = check_sampler_settings(case.sampler, file=case.path, draws=args.draws,
                                           tune=args.tune, chains=args.chains, seed=args.seed,
@@ -178,7 +184,7 @@ def _sample(parser: argparse.ArgumentParser):
                              "class-split twin; this case uses the "
                              f"{p.volatility_form!r} form", file=case.path,
                              field="volatility.form", value=p.volatility_form)
-        result = sample(p, settings, priors=priors, progress=not args.quiet)
+        result = sample(p, settings, priors=priors, fit=fit0, progress=not args.quiet)
         extra: dict[str, Any] = {}
         if args.class_test:
             extra["class_test"] = _class_test(p, settings, priors, result,
@@ -271,7 +277,9 @@ def _posterior_conditions(p: Any, idata: Any) -> dict[str, Any]:
         held = [k for k in ("temperature_K", "dIW") if k not in sampled]
         cc["sampled"] = (", ".join(sampled) + " (Uniform priors over the case's ranges); "
                          + (" and ".join(held) + " as the case gives them; " if held else "")
-                         + "the mean molar masses held at their start values")
+                         + ("the mean molar masses and the metal's Si and S held at the "
+                            "convex fit's values" if cc.get("metal_held_from") else
+                            "the mean molar masses held at their start values"))
     return cc
 
 

@@ -185,6 +185,43 @@ def start_problem(case: Any) -> Any:
     return p
 
 
+#: ``core_conditions`` entries of the convex fit's problem that the sampler holds fixed
+#: (it samples the conditions but does not iterate the metal with the draws).
+HELD_METAL = ("Mbar_sil_g_mol", "Mbar_met_g_mol", "x_Si_metal", "x_S_metal")
+
+
+def sampling_start(p: Any, case: Any, settings: Any = None) -> tuple[Any, Any]:
+    """The problem ``planetmix sample`` runs for a single-stage case, and its convex fit.
+
+    ``p`` is :func:`start_problem`'s problem (the conditions at mid-range, the metal of
+    the reference core). The convex fit at the case's conditions (:func:`infer_conditions`
+    when some are ``[low, high]``, else :func:`fit_at_conditions`) iterates the metal's
+    mean molar mass, iron split and, with ``metal_activity = "epsilon"``, its Si and S
+    with the fitted core; the sampler holds those at the fit's converged values (not at
+    the reference core's), so that at the fitted conditions its D are the convex fit's.
+    The conditions inferred by the fit are the sampler's start points; the ranges stay.
+
+    Returns ``(problem, fit)``; an infeasible fit returns ``(p, None)`` (the sampler then
+    fits ``p`` itself for its start points).
+    """
+    from .fit import FitSettings
+
+    settings = settings or FitSettings(cmf_range=case.cmf_range)
+    if free_conditions(case):
+        res, pc = infer_conditions(p, case, settings)
+    else:
+        res, pc, _ = fit_at_conditions(p, case, float(case.core.pressure_GPa), settings)
+    if res is None or not res.feasible:
+        return p, None
+    cc = {k: v for k, v in pc.core_conditions.items() if k != "conditions_inferred"}
+    ranges = (p.core_conditions or {}).get("ranges")
+    if ranges:
+        cc["ranges"] = ranges
+    cc["metal_held_from"] = ("the convex fit at its conditions (" + ", ".join(HELD_METAL)
+                             + "; held while sampling)")
+    return replace(pc, core_conditions=cc), res
+
+
 def _choices(case: Any) -> dict[str, Any]:
     """The ``[core]`` partitioning choices and their sources (``core_conditions``)."""
     return pt.choice_provenance(getattr(case.core, "hse_partitioning", pt.HSE_CONSTANT),

@@ -735,3 +735,36 @@ def test_choice_provenance_of_the_defaults():
         "description"], "sources": []}
     with pytest.raises(InputError, match="activity model"):
         pt.choice_provenance(metal_activity="perfect")
+
+
+def test_sampler_holds_the_convex_fits_metal_not_the_reference_core(tmp_path):
+    """planetmix sample on a single-stage case starts from the convex fit at the inferred
+    conditions (conditions.sampling_start): the metal's Si and S and mean molar masses
+    the sampler holds are the fit's own core's (fixed point to 5e-4 in mole fraction),
+    not the reference core's (McDonough 2003, x_Si ~ 0.11) that start_problem holds; at
+    the fitted pressure the sampler's D (jaxmodel.conditions_D) are the convex fit's
+    (1e-12 relative); the pressure range stays the case's and the start pressure is the
+    fitted one. Synthetic body of test_core_conditions (simulate, then fit)."""
+    from inversion.case import load_case
+    from inversion.conditions import _metal, sampling_start, start_problem
+    from inversion.fit import forward_of
+    from inversion.jaxmodel import condition_ranges, conditions_D
+    from tests.inversion.test_core_conditions import _simulate
+
+    path, _ = _simulate(tmp_path, 0.01, seed=5)
+    path.write_text(path.read_text().replace('[core]\n', '[core]\nmetal_activity = '
+                                             '"epsilon"\n', 1))
+    case = load_case(path)
+    p0 = start_problem(case)
+    ps, res = sampling_start(p0, case)
+    assert res is not None and res.feasible
+    cc, c0 = ps.core_conditions, p0.core_conditions
+    own = _metal(ps, forward_of(ps, res)["core"][0])  # (x_Fe, Mbar_met, x_Si, x_S)
+    assert abs(cc["x_Si_metal"] - own[2]) < 5e-4 and abs(cc["x_S_metal"] - own[3]) < 5e-4
+    assert abs(cc["x_Si_metal"] - c0["x_Si_metal"]) > 5e-3  # not the reference core
+    assert cc["Mbar_met_g_mol"] == pytest.approx(own[1], rel=1e-3)
+    assert condition_ranges(ps) == {"pressure_GPa": (10.0, 80.0)}
+    mask, D_of = conditions_D(ps)
+    np.testing.assert_allclose(D_of(cc["pressure_GPa"]), ps.D, rtol=1e-12)
+    assert mask.any() and cc["pressure_GPa"] != pytest.approx(45.0)  # not mid-range
+    assert "metal_held_from" in cc and "conditions_inferred" not in cc
