@@ -15,6 +15,10 @@ Prints, for the four-block demo planet (case_studies/demo/orrin.toml):
   variance of ``kernel.end_member_variance`` rewritten as two small products (an A/B in
   the same process, interleaved, with the ratio; measured no faster, so not adopted).
 
+The compile of the log density and gradient alone, cold and warm, of the exported path
+that the default engine runs and of the PyMC/pytensor path before it, in separate
+processes: ``benchmarks/bench_compile.py``.
+
 CPU seconds of the sampling run are printed beside the wall seconds: on a shared machine
 ESS per CPU second is the figure that compares runs made under different loads.
 

@@ -22,10 +22,12 @@ class SamplerSettings:
     :data:`CHAIN_METHODS`. ``engine`` chooses the NUTS implementation:
     ``"numpyro"`` (default; NumPyro's NUTS on the JAX log density, the whole sampler
     compiled by XLA, the chains in parallel threads: the fastest to a result on the demo,
-    docs/forward_model.md), ``"nutpie"`` (nutpie's NUTS calling the same JAX log
-    density from Rust, chains in threads; compiles once and swaps data, which is what
-    the calibration runs use) or ``"pymc"`` (PyMC's own NUTS in Python, chains in
-    processes; slowest per draw, kept for cross-checks).
+    docs/forward_model.md; the log density is exported to disk keyed by the model, so a
+    second run loads it without building the PyMC model, :mod:`inversion.bayes.warm`),
+    ``"nutpie"`` (nutpie's NUTS calling the same JAX log density from Rust, chains in
+    threads; compiles once and swaps data, which is what the calibration runs use) or
+    ``"pymc"`` (PyMC's own NUTS in Python, chains in processes; slowest per draw, kept
+    for cross-checks).
     """
 
     draws: int = 1000
