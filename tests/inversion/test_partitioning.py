@@ -768,3 +768,44 @@ def test_sampler_holds_the_convex_fits_metal_not_the_reference_core(tmp_path):
     np.testing.assert_allclose(D_of(cc["pressure_GPa"]), ps.D, rtol=1e-12)
     assert mask.any() and cc["pressure_GPa"] != pytest.approx(45.0)  # not mid-range
     assert "metal_held_from" in cc and "conditions_inferred" not in cc
+
+
+# ------------------------------------------ HSE rows read (not recalled) and their values
+
+_READ = {"publication", "typed_copy"}  # the provenance labels of a value read here
+
+
+def test_hse_rows_read_carry_a_url_and_the_statement_read():
+    """Every row of hse_high_pressure.csv whose value was read (provenance publication or
+    typed_copy) names the page (url) and the words read (read_statement); Re is such a row
+    (Bennett & Brenan 2013, read 2026-12-03), the rest stay recalled."""
+    table = pt.load_hse_table()
+    read = table[table["provenance"].isin(_READ)]
+    assert "Re" in set(read["element"])
+    for _, row in read.iterrows():
+        assert str(row["url"]).startswith("https://"), row["element"]
+        assert len(str(row["read_statement"]).strip()) > 40, row["element"]
+    assert set(table["provenance"]) - _READ == {"recalled"}
+
+
+def test_hse_read_Re_is_the_published_regression_and_reaches_the_model(tmp_path):
+    """Re of the high-pressure set: log10 D = 0.50e4 / T + 3.73 at 2 GPa, dIW +1.75 to +2
+    (Bennett & Brenan 2013, EPSL 361, 320; the abstract read in the data-set record
+    https://b2find.eudat.eu/dataset/91722762-1ef7-56dd-a6f6-6944adbd39da), evaluated at
+    the row's 2573 K (the top of the experiments' 1673-2573 K): D = 4.71e5. The D the
+    forward model uses for every read row is the csv's."""
+    from inversion.model import compile_problem
+
+    table = pt.load_hse_table()
+    row = table[(table["set"] == "high-pressure") & (table["element"] == "Re")].iloc[0]
+    assert row["source"] == "bennett2013" and row["provenance"] in _READ
+    assert float(row["P_GPa"]) == 2.0 and float(row["T_K"]) == 2573.0
+    published = 10.0 ** (0.50e4 / 2573.0 + 3.73)  # Bennett & Brenan (2013), read
+    assert float(row["D"]) == pytest.approx(published, rel=1e-3)
+    assert pt.hse_D("high-pressure")["Re"] == pytest.approx(published, rel=1e-3)
+    ph = compile_problem(_earth_case(tmp_path, 'hse_partitioning = "high-pressure"'))
+    read = table[(table["set"] == "high-pressure") & table["provenance"].isin(_READ)]
+    for el, d in zip(read["element"], read["D"], strict=True):
+        assert ph.D[ph.elements.index(el)] == pytest.approx(float(d), rel=1e-12), el
+    prov = pt.choice_provenance("high-pressure")["hse_partitioning"]
+    assert "bennett2013" in prov["sources"] and "typed_copy" in prov["provenance"]
