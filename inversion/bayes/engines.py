@@ -319,7 +319,8 @@ def _sample_exported(p: Problem, priors: dict[str, dict[str, Any]], fit: Any,
                                    target_accept=settings.target_accept,
                                    chain_method=method,
                                    dense_mass=settings.mass_matrix == "dense",
-                                   progress=progress)
+                                   progress=progress,
+                                   warmup_tree_depth=settings.warmup_tree_depth)
     extra = {"log_density_cached": float(em.origin == "loaded"),
              "log_density_seconds": em.seconds}
     return idata, inits, t_compile, t_nuts, em.parameter_names, extra

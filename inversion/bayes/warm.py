@@ -389,14 +389,16 @@ def _stats(mcmc: Any) -> dict[str, np.ndarray]:
 
 def sample_numpyro(em: ExportedModel, x0: np.ndarray, *, draws: int,
                    tune: int, chains: int, seed: int, target_accept: float,
-                   chain_method: str, dense_mass: bool, progress: bool = False
-                   ) -> tuple[Any, float]:
+                   chain_method: str, dense_mass: bool, progress: bool = False,
+                   warmup_tree_depth: int = 10) -> tuple[Any, float]:
     """NUTS by NumPyro on the exported log density; returns the InferenceData and the
     sampling seconds (NumPyro's tracing, the compile or cache load of its program, the
     draws, and the map back to the constrained space).
 
     ``x0``: (chains, n) start points in the unconstrained space
-    (:meth:`ExportedModel.to_unconstrained` of the start values).
+    (:meth:`ExportedModel.to_unconstrained` of the start values). ``warmup_tree_depth``:
+    the deepest tree during the warm-up (the kept draws go to depth 10;
+    :data:`inversion.bayes.settings.WARMUP_TREE_DEPTH_RANGE`).
     """
     import arviz as az
     import jax
@@ -407,7 +409,8 @@ def sample_numpyro(em: ExportedModel, x0: np.ndarray, *, draws: int,
     t = time.perf_counter()
     x0 = np.asarray(x0, float)
     kernel = NUTS(potential_fn=em.potential(), target_accept_prob=target_accept,
-                  adapt_step_size=True, adapt_mass_matrix=True, dense_mass=dense_mass)
+                  adapt_step_size=True, adapt_mass_matrix=True, dense_mass=dense_mass,
+                  max_tree_depth=(int(warmup_tree_depth), 10))
     mcmc = MCMC(kernel, num_warmup=tune, num_samples=draws, num_chains=chains,
                 postprocess_fn=None, chain_method=chain_method, progress_bar=progress)
     key = jax.random.PRNGKey(seed)
