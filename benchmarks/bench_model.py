@@ -120,7 +120,7 @@ out["em_products_over_broadcast"] = (out["em_products_loop_us"]
 
 
 def _child(stage: str, draws: int, cache: str, engine: str, chain_method: str,
-           gradient: bool = False, mass: str = "") -> dict:
+           gradient: bool = False, mass: str = "", depth: int = 0) -> dict:
     env = {**os.environ, "PLANETMIX_JAX_CACHE": cache, "NUMBA_CACHE_DIR": cache,
            "PYTENSOR_FLAGS": f"compiledir={cache}/pytensor"}
     pre = ""
@@ -161,6 +161,8 @@ if {stage!r} == "sample":
         st = dataclasses.replace(st, chain_method={chain_method!r})
     if {mass!r} and "mass_matrix" in names_:
         st = dataclasses.replace(st, mass_matrix={mass!r})
+    if {depth!r} and "warmup_tree_depth" in names_:
+        st = dataclasses.replace(st, warmup_tree_depth={depth!r})
     res = bayes.sample(p, st, posterior_predictive=False, log_likelihood=False)
     stats = res.idata.sample_stats
     if "n_steps" in stats:  # leapfrog steps per kept draw
@@ -210,15 +212,19 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--mass-matrix", default="",
                     help="[sampler] mass_matrix of the sampling run (default: the settings' "
                          "default)")
+    ap.add_argument("--warmup-tree-depth", type=int, default=0,
+                    help="[sampler] warmup_tree_depth of the sampling run (numpyro; default: "
+                         "the settings' default)")
     ap.add_argument("--no-gradient", action="store_true",
                     help="skip the per-evaluation cost of the log density and gradient")
     args = ap.parse_args(argv)
     with tempfile.TemporaryDirectory() as cache:
         cold = _child("compile", args.draws, cache, args.engine, args.chain_method)
         warm = _child("sample", args.draws, cache, args.engine, args.chain_method,
-                      not args.no_gradient, args.mass_matrix)
+                      not args.no_gradient, args.mass_matrix, args.warmup_tree_depth)
     res = {"engine": args.engine, "chain_method": args.chain_method,
            "mass_matrix": args.mass_matrix or "default",
+           "warmup_tree_depth": args.warmup_tree_depth or "default",
            "cold_compile_seconds": cold.get("compile_seconds"),
            "cold_build_seconds": cold["build_seconds"],
            "warm_compile_seconds": warm.get("compile_seconds"), **{
