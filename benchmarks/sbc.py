@@ -38,7 +38,7 @@ def main() -> None:
     ap.add_argument("--bins", type=int, default=10)
     ap.add_argument("--seed", type=int, default=0)
     ap.add_argument("--out", default="sbc_ranks.csv")
-    ap.add_argument("--engine", default="nutpie", choices=["nutpie", "pymc"])
+    ap.add_argument("--engine", default="nutpie", choices=["nutpie", "numpyro", "pymc"])
     ap.add_argument("--cores", type=int, default=2, help="threads for the chains (nutpie)")
     args = ap.parse_args()
     bse = components.load("BSE_MS95").composition

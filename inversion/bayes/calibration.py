@@ -164,7 +164,7 @@ def sbc(p: Problem, n_replicates: int, *, draws: int = 200, tune: int = 200, cha
     rows = []
     runner = _NutpieModel.build(model) if engine == "nutpie" else None
     step = None
-    if runner is None:
+    if engine == "pymc":
         with model:
             step = pm.NUTS(target_accept=settings.target_accept)
     for r in tqdm(range(n_replicates), desc="SBC replicates", disable=not progress):
@@ -181,7 +181,15 @@ def sbc(p: Problem, n_replicates: int, *, draws: int = 200, tune: int = 200, cha
         fit = fit_problem(p_rep)
         if eps is not None and not fit.feasible:  # start from the chemistry alone
             fit = fit_problem(_replace(p_rep, isotopes=()))
-        if runner is not None:
+        if engine == "numpyro":
+            # the default engine as `planetmix sample` runs it (the exported log density
+            # of this replicate's data; the warm-up tree cap of the settings)
+            from .engines import sample as _sample_run
+
+            st = _replace(settings, seed=int(rng.integers(2**31 - 1)))
+            idata = _sample_run(p_rep, st, priors=priors, fit=fit,
+                                posterior_predictive=False, log_likelihood=False).idata
+        elif runner is not None:
             idata, _, _ = runner.run(p, priors, fit, settings, cores=cores,
                                      seed=int(rng.integers(2**31 - 1)),
                                      jitter_seed=int(rng.integers(2**31 - 1)),
