@@ -326,27 +326,35 @@ def _sample_exported(p: Problem, priors: dict[str, dict[str, Any]], fit: Any,
     return idata, inits, t_compile, t_nuts, em.parameter_names, extra
 
 
-def _unconstrain_function(model: Any, order: list[str] | None = None):
-    """Compiled map from constrained values of the free parameters (a dict) to the flat
-    unconstrained vector, in the order of the value variables named in ``order`` (the
-    sampler's order; default ``model.free_RVs``)."""
-    import pytensor
+def unconstrain_graph(model: Any, rvs: list[Any]) -> tuple[list[Any], Any]:
+    """The pytensor graph from constrained values of the free variables ``rvs`` (one
+    input each) to their flat unconstrained vector (PyMC's forward transforms, in that
+    order): ``(inputs, output)``."""
     import pytensor.tensor as pt
 
-    rvs = list(model.free_RVs)
-    if order is not None:
-        by_value = {model.rvs_to_values[rv].name: rv for rv in rvs}
-        rvs = [by_value[n] for n in order]
-    ins, outs, names = [], [], []
+    ins, flat = [], []
     for rv in rvs:
         x = rv.type()
         tr = model.rvs_to_transforms.get(rv)
         y = tr.forward(x, *rv.owner.inputs) if tr is not None else x
         ins.append(x)
-        outs.append(pt.as_tensor_variable(y).ravel())
-        names.append(rv.name)
-    fn = pytensor.function(ins, pt.concatenate(outs), mode="FAST_COMPILE",
-                           on_unused_input="ignore")
+        flat.append(pt.as_tensor_variable(y).ravel())
+    return ins, pt.concatenate(flat)
+
+
+def _unconstrain_function(model: Any, order: list[str] | None = None):
+    """Compiled map from constrained values of the free parameters (a dict) to the flat
+    unconstrained vector, in the order of the value variables named in ``order`` (the
+    sampler's order; default ``model.free_RVs``)."""
+    import pytensor
+
+    rvs = list(model.free_RVs)
+    if order is not None:
+        by_value = {model.rvs_to_values[rv].name: rv for rv in rvs}
+        rvs = [by_value[n] for n in order]
+    names = [rv.name for rv in rvs]
+    ins, out = unconstrain_graph(model, rvs)
+    fn = pytensor.function(ins, out, mode="FAST_COMPILE", on_unused_input="ignore")
     return lambda values: np.asarray(fn(*(np.asarray(values[n], float) for n in names)))
 
 

@@ -249,7 +249,6 @@ def _export(p: Any, priors: dict[str, dict[str, Any]], y: np.ndarray | None
     """Build the PyMC model and export (lower) its three functions."""
     import jax
     import jax.numpy as jnp
-    import pytensor.tensor as pt
     from jax import export
     from pymc.backends.arviz import (
         coords_and_dims_for_inferencedata,
@@ -277,15 +276,11 @@ def _export(p: Any, priors: dict[str, dict[str, Any]], y: np.ndarray | None
     outs = list(get_default_varnames(model.unobserved_value_vars, include_transformed=False))
     post_fn = get_jaxified_graph(inputs=values, outputs=outs)
     # constrained free values -> unconstrained flat vector, in the order of value_vars
+    from .engines import unconstrain_graph
+
     rvs = [model.values_to_rvs[v] for v in values]
-    ins, flat = [], []
-    for rv in rvs:
-        xv = rv.type()
-        tr = model.rvs_to_transforms.get(rv)
-        yv = tr.forward(xv, *rv.owner.inputs) if tr is not None else xv
-        ins.append(xv)
-        flat.append(pt.as_tensor_variable(yv).ravel())
-    unc_fn = get_jaxified_graph(inputs=ins, outputs=[pt.concatenate(flat)])
+    ins, flat = unconstrain_graph(model, rvs)
+    unc_fn = get_jaxified_graph(inputs=ins, outputs=[flat])
     x_spec = jax.ShapeDtypeStruct((n,), jnp.float64)
     e_logp = export.export(jax.jit(jax.value_and_grad(lambda x: logp_fn(unravel(x)))))(
         x_spec)
