@@ -189,6 +189,12 @@ def sbc(p: Problem, n_replicates: int, *, draws: int = 200, tune: int = 200, cha
             st = _replace(settings, seed=int(rng.integers(2**31 - 1)))
             idata = _sample_run(p_rep, st, priors=priors, fit=fit,
                                 posterior_predictive=False, log_likelihood=False).idata
+            # every replicate compiles its own program (its data are constants of the
+            # exported function); JAX keeps each in memory, and after ~70 replicates
+            # LLVM could not map more code ("Cannot allocate memory", seen here)
+            import jax
+
+            jax.clear_caches()
         elif runner is not None:
             idata, _, _ = runner.run(p, priors, fit, settings, cores=cores,
                                      seed=int(rng.integers(2**31 - 1)),
