@@ -321,6 +321,18 @@ def test_mars_equilibration_pressure_ideal(mars):
     assert max(P.values()) < MARS_PRESSURE_GPA[0]
 
 
+def test_mars_equilibration_pressure_siebert2012(mars):
+    """The other Ni and Co rows of the table, Siebert et al. (2012, EPSL 321, 189; read in
+    the typed copy of Rubie et al. 2015, Table S1), fitted with mole fractions and so
+    evaluated ideal as fitted: Ni and Co of the Wanke & Dreibus mantle land at 5.9 GPa
+    each on the liquidus, below the published range as well (docs/partitioning.md)."""
+    els, _, _ = mars
+    chem = pt.compile_chemistry(els, choice={"Ni": "siebert2012", "Co": "siebert2012"})
+    P = _mars_ni_co_pressures(mars, chem)
+    assert P["Ni"] == pytest.approx(5.9, abs=0.2) and P["Co"] == pytest.approx(5.9, abs=0.2)
+    assert max(P.values()) < MARS_PRESSURE_GPA[0]
+
+
 def test_mars_equilibration_pressure(mars):
     """With the metal activity model of the Mars case as configured
     (case_studies/mars/case_core.toml: metal_activity = "epsilon", gamma0 of Ni and Co
