@@ -157,21 +157,20 @@ def _sample(parser: argparse.ArgumentParser):
 
         case = load_case(args.case)
         if case.core.partitioning == "single-stage":
-            # conditions given as [low, high] are parameters: start at mid-range
+            # conditions given as [low, high] are parameters; the sampler starts at the
+            # convex fit's conditions and holds the metal at its converged state
             from dataclasses import replace
 
             from .conditions import free_conditions, sampling_start, start_problem
 
-            p = start_problem(case)
+            if not args.quiet:
+                print("convex fit at the core-formation conditions (the sampler's start "
+                      "and its held metal) ...", file=sys.stderr, flush=True)
+            p, fit0 = sampling_start(start_problem(case), case)
             if "pressure_GPa" in free_conditions(case):
                 p = replace(p, core_conditions={
                     **p.core_conditions,
                     "pressure_range_GPa": list(free_conditions(case)["pressure_GPa"])})
-            if not args.quiet:
-                print("convex fit at the core-formation conditions (the sampler's start "
-                      "and its held metal) ...", file=sys.stderr, flush=True)
-            # the sampler holds the metal at the convex fit's converged state
-            p, fit0 = sampling_start(p, case)
         else:
             p, fit0 = compile_problem(case), None
         priors = check_priors(p, case.priors, file=case.path)

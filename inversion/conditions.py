@@ -224,20 +224,17 @@ def sampling_start(p: Any, case: Any, settings: Any = None) -> tuple[Any, Any]:
 
 def _choices(case: Any) -> dict[str, Any]:
     """The ``[core]`` partitioning choices and their sources (``core_conditions``)."""
-    return pt.choice_provenance(getattr(case.core, "hse_partitioning", pt.HSE_CONSTANT),
-                                getattr(case.core, "metal_activity", "ideal"))
+    return pt.choice_provenance(case.core.hse_partitioning, case.core.metal_activity)
 
 
 def _setup(p: Any, case: Any) -> dict[str, Any]:
     cc = case.core
-    chem = pt.compile_chemistry(p.elements, oxygen=False,
-                                activity=getattr(cc, "metal_activity", "ideal"))
+    chem = pt.compile_chemistry(p.elements, oxygen=False, activity=cc.metal_activity)
     metal0 = reference_metal(p)
     free = free_conditions(case)
     return {"chem": chem, "base_D": np.asarray(p.D, float).copy(), "T": cc.temperature_K,
             "Mbar_sil": silicate_molar_mass(p), "x_FeO": _x_FeO_target(p),
-            "dIW_fixed": cc.dIW, "x_Fe": metal0[0], "Mbar_met": metal0[1],
-            "metal0": metal0, "free": free, "choices": _choices(case),
+            "dIW_fixed": cc.dIW, "metal0": metal0, "free": free, "choices": _choices(case),
             "dIW_from": ("inferred over [core] dIW = [low, high] (the model's iron split "
                          "follows it)" if "dIW" in free else
                          "[core] dIW of the case" if cc.dIW is not None else
@@ -635,7 +632,7 @@ def fit_continuous(p: Any, case: Any, settings: Any) -> tuple[Any, Any]:
     from .fit import fit_problem, forward_of, refit
 
     c = dict(case.core.continuous)
-    activity = getattr(case.core, "metal_activity", "ideal")
+    activity = case.core.metal_activity
     chem0 = pt.compile_chemistry(p.elements, oxygen=False, activity=activity)
     reg = np.isin(chem0.kind, (1, 2))
     reg[p.fe_index] = False

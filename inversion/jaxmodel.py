@@ -120,8 +120,9 @@ def conditions_D(p: Any) -> tuple[np.ndarray, Any]:
     from . import partitioning as pt
 
     cc = p.core_conditions
-    # the metal activity model of the case; the metal's Si and S (its activities) are held
-    # at their start values like the mean molar masses
+    # the metal activity model of the case; the metal's Si and S (its activities) and the
+    # mean molar masses are held at the values in core_conditions (planetmix sample: the
+    # convex fit's converged metal, conditions.sampling_start)
     chem = _chemistry(tuple(p.elements), (cc.get("metal_activity") or {}).get("model", "ideal"))
     mask = np.isin(chem.kind, (1, 2))
     mask[p.fe_index] = False

@@ -285,12 +285,9 @@ def provenance(*, tables: list[str], extra: dict[str, Any] | None = None,
 
 def _core_choices(case: Any) -> dict[str, Any]:
     """``[core]`` partitioning model, HSE set and metal activity model, with sources."""
-    from .partitioning import choice_provenance
+    from .conditions import _choices
 
-    cc = case.core
-    return {"partitioning": cc.partitioning,
-            **choice_provenance(getattr(cc, "hse_partitioning", "constant"),
-                                getattr(cc, "metal_activity", "ideal"))}
+    return {"partitioning": case.core.partitioning, **_choices(case)}
 
 
 def case_provenance(case: Any, p: Any, *, tables: list[str] | None = None,

@@ -12,7 +12,7 @@ from ..exceptions import InputError
 from ..model import Problem, forward
 from ..options import check_option
 from ..volatility import get_form
-from .engines import _NutpieModel, start_points
+from .engines import _NutpieModel, sample, start_points
 from .posterior import _with_y, posterior_arrays
 from .priors import _partitioned, default_priors
 from .pymc_model import STUDENT_NU, build_model
@@ -145,7 +145,9 @@ def sbc(p: Problem, n_replicates: int, *, draws: int = 200, tune: int = 200, cha
     from tqdm import tqdm
 
     from ..fit import fit_problem
+    from ..jaxmodel import jax_setup
 
+    jax = jax_setup()
     check_option("sampler engine", engine, ENGINES)
     check_option("sbc blocks", blocks, ("fixed", "drawn"))
     if blocks == "drawn" and getattr(p, "Q_sigma_dex", None) is None:
@@ -158,10 +160,12 @@ def sbc(p: Problem, n_replicates: int, *, draws: int = 200, tune: int = 200, cha
         p = _replace(p, Q_sigma_dex=None)
     priors = priors or default_priors(p)
     rng = np.random.default_rng(seed)
-    model = build_model(p, priors)
     settings = SamplerSettings(draws=draws, tune=tune, chains=chains, seed=seed,
                                engine=engine, cores=cores)
     rows = []
+    # nutpie and PyMC compile one model and swap its data; the default engine exports
+    # each replicate's log density as `planetmix sample` does
+    model = build_model(p, priors) if engine != "numpyro" else None
     runner = _NutpieModel.build(model) if engine == "nutpie" else None
     step = None
     if engine == "pymc":
@@ -182,18 +186,12 @@ def sbc(p: Problem, n_replicates: int, *, draws: int = 200, tune: int = 200, cha
         if eps is not None and not fit.feasible:  # start from the chemistry alone
             fit = fit_problem(_replace(p_rep, isotopes=()))
         if engine == "numpyro":
-            # the default engine as `planetmix sample` runs it (the exported log density
-            # of this replicate's data; the warm-up tree cap of the settings)
-            from .engines import sample as _sample_run
-
             st = _replace(settings, seed=int(rng.integers(2**31 - 1)))
-            idata = _sample_run(p_rep, st, priors=priors, fit=fit,
-                                posterior_predictive=False, log_likelihood=False).idata
+            idata = sample(p_rep, st, priors=priors, fit=fit, posterior_predictive=False,
+                           log_likelihood=False).idata
             # every replicate compiles its own program (its data are constants of the
             # exported function); JAX keeps each in memory, and after ~70 replicates
             # LLVM could not map more code ("Cannot allocate memory", seen here)
-            import jax
-
             jax.clear_caches()
         elif runner is not None:
             idata, _, _ = runner.run(p, priors, fit, settings, cores=cores,

@@ -188,21 +188,24 @@ def _sample(p: Problem, settings: SamplerSettings | None = None, *,
     cores = settings.cores or min(settings.chains, os.cpu_count() or 1)
     extra_timing: dict[str, float] = {}
     if settings.engine == "numpyro":
+        from dataclasses import replace as dc_replace
+
+        from ..jaxmodel import jax_setup
+
+        if (settings.chain_method == "parallel"
+                and jax_setup().local_device_count() < settings.chains):
+            # JAX started with fewer CPU devices than chains (it was used before
+            # jax_setup could ask for them): the chains run one after the other, which
+            # gives other draws than parallel ones, so the result records what ran
+            settings = dc_replace(settings, chain_method="sequential")
         # NumPyro's NUTS on the exported log density (inversion.bayes.warm): a run of a
         # model already in the cache loads it and never builds the PyMC model
         idata, inits, t_compile, t_nuts, names, extra_timing = _sample_exported(
             p, priors, fit, settings, y=y, seed=nuts_seed, jitter_seed=jitter_seed,
             progress=progress)
-        model = None
-    else:
+    elif settings.engine == "nutpie":
         model = build_model(p, priors, y=y)
         names = parameter_names(model)
-    if model is not None and settings.engine == "pymc":
-        # PyMC runs parallel chains in forked processes, and a process forked after JAX
-        # has started its threads deadlocks (seen: two idle children, no progress): the
-        # model's physics is a JAX operation, so PyMC's chains run one after the other
-        cores = 1
-    if model is not None and settings.engine == "nutpie":
         if progress:
             print("compiling the log density and its gradient (JAX; cached on disk for "
                   "the next run of the same model) ...", file=sys.stderr, flush=True)
@@ -215,9 +218,15 @@ def _sample(p: Problem, settings: SamplerSettings | None = None, *,
         idata, inits, t_nuts = runner.run(p, priors, fit, settings, cores=cores,
                                           seed=nuts_seed, jitter_seed=jitter_seed,
                                           progress=progress)
-    elif model is not None:  # PyMC's own NUTS
+    else:  # PyMC's own NUTS
         import pymc as pm
 
+        model = build_model(p, priors, y=y)
+        names = parameter_names(model)
+        # PyMC runs parallel chains in forked processes, and a process forked after JAX
+        # has started its threads deadlocks (seen: two idle children, no progress): the
+        # model's physics is a JAX operation, so PyMC's chains run one after the other
+        cores = 1
         inits = start_points(p, priors, fit, settings.chains,
                              np.random.default_rng(jitter_seed), settings.jitter)
         t1 = time.perf_counter()
@@ -311,13 +320,10 @@ def _sample_exported(p: Problem, priors: dict[str, dict[str, Any]], fit: Any,
         x0[bad] = x_opt[bad] + u.uniform(-1.0, 1.0, (int(bad.sum()), x0.shape[1]))
     inits = [em.to_constrained(x) for x in x0]
     t_compile = time.perf_counter() - t1
-    method = settings.chain_method
-    if method == "parallel" and jax.local_device_count() < settings.chains:
-        method = "sequential"
     idata, t_nuts = sample_numpyro(em, x0, draws=settings.draws, tune=settings.tune,
                                    chains=settings.chains, seed=seed,
                                    target_accept=settings.target_accept,
-                                   chain_method=method,
+                                   chain_method=settings.chain_method,
                                    dense_mass=settings.mass_matrix == "dense",
                                    progress=progress,
                                    warmup_tree_depth=settings.warmup_tree_depth)

@@ -41,6 +41,7 @@ import shutil
 import tempfile
 import time
 from dataclasses import dataclass, fields, is_dataclass
+from functools import lru_cache
 from pathlib import Path
 from typing import Any
 
@@ -117,9 +118,11 @@ def _versions() -> dict[str, str]:
     return out
 
 
+@lru_cache(maxsize=1)
 def _source_digest() -> str:
     """SHA-256 of the ``inversion`` package's Python source and the partitioning tables
-    (what a changed model is made of even at the same package version)."""
+    (what a changed model is made of even at the same package version); read once per
+    process."""
     h = hashlib.sha256()
     import components
 
@@ -219,10 +222,6 @@ class ExportedModel:
         return np.asarray(self.unconstrain.call(*args))
 
 
-def _digest(path: Path) -> str:
-    return hashlib.sha256(path.read_bytes()).hexdigest()
-
-
 def _load(folder: Path, key: str) -> ExportedModel | None:
     """The entry in ``folder`` if its record, key and file digests all match, else None."""
     from jax import export
@@ -237,9 +236,7 @@ def _load(folder: Path, key: str) -> ExportedModel | None:
             if hashlib.sha256(blob).hexdigest() != meta["digests"][name]:
                 return None
             funcs.append(export.deserialize(bytearray(blob)))
-    except (OSError, ValueError, KeyError, TypeError):
-        return None
-    except Exception:  # a deserialiser's own error on a damaged file: rebuild
+    except Exception:  # unreadable, malformed, or the deserialiser's error: rebuild
         return None
     return ExportedModel(key, *funcs, meta=meta, origin="loaded", seconds=0.0)
 

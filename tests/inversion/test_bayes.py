@@ -198,53 +198,47 @@ def test_same_seed_same_draws(synthetic_run):
                                       first.posterior[name].values)
 
 
+def _other_draws_same_posterior(synthetic_run, overrides):
+    """Sample the fixture's case with ``[sampler]`` ``overrides`` (2 chains x 300 + 300,
+    seed 7): other draws than the fixture's run (the settings reach the sampler) of the
+    same posterior (the means of T0, slope and tau within 4 Monte Carlo standard errors
+    of the difference). Returns the checked settings."""
+    import arviz as az
+
+    case = load_case(synthetic_run["case"])
+    p = compile_problem(case)
+    settings = bayes.check_sampler_settings({**case.sampler, **overrides},
+                                            draws=300, tune=300, chains=2, seed=7, cores=1)
+    other = bayes.sample(p, settings, priors=bayes.check_priors(p, case.priors),
+                         posterior_predictive=False, log_likelihood=False).idata
+    first = az.from_netcdf(str(synthetic_run["out"] / "posterior.nc"))
+    for name in ("T0", "slope", "tau"):
+        a, b = other.posterior[name], first.posterior[name]
+        assert not np.array_equal(a.values, b.values)
+        se = np.hypot(float(az.mcse(other, var_names=[name])[name]),
+                      float(az.mcse(first, var_names=[name])[name]))
+        assert abs(float(a.mean()) - float(b.mean())) < 4 * se
+    return settings
+
+
 def test_dense_mass_and_chain_method_reach_numpyro(synthetic_run):
     """[sampler] mass_matrix = "dense" and chain_method change how NumPyro samples
     (other draws from the same seed) but not what (the same posterior as the default
     diagonal, parallel run of the fixture, within 4 Monte Carlo standard errors of the
     difference)."""
-    import arviz as az
-
-    case = load_case(synthetic_run["case"])
-    p = compile_problem(case)
-    settings = bayes.check_sampler_settings({**case.sampler, "mass_matrix": "dense",
-                                             "chain_method": "vectorized"},
-                                            draws=300, tune=300, chains=2, seed=7, cores=1)
-    dense = bayes.sample(p, settings, priors=bayes.check_priors(p, case.priors),
-                         posterior_predictive=False, log_likelihood=False).idata
-    first = az.from_netcdf(str(synthetic_run["out"] / "posterior.nc"))
-    for name in ("T0", "slope", "tau"):
-        a, b = dense.posterior[name], first.posterior[name]
-        assert not np.array_equal(a.values, b.values)
-        se = np.hypot(float(az.mcse(dense, var_names=[name])[name]),
-                      float(az.mcse(first, var_names=[name])[name]))
-        assert abs(float(a.mean()) - float(b.mean())) < 4 * se
+    _other_draws_same_posterior(synthetic_run, {"mass_matrix": "dense",
+                                                "chain_method": "vectorized"})
 
 
 def test_warmup_tree_depth_reaches_numpyro_and_keeps_the_posterior(synthetic_run):
     """[sampler] warmup_tree_depth (default 5) caps NumPyro's trees during the warm-up
     only: the fixture's run (default) and a run with the cap lifted (10, NumPyro's own
     default) from the same seed give other draws (the setting reaches the sampler) of
-    the same posterior (means within 4 Monte Carlo standard errors of the difference);
-    the kept draws may be deeper than the warm-up cap. The speed figure is in
-    benchmarks/bench_model.py (--warmup-tree-depth); the setting is checked."""
-    import arviz as az
-
-    case = load_case(synthetic_run["case"])
-    p = compile_problem(case)
-    first = az.from_netcdf(str(synthetic_run["out"] / "posterior.nc"))
-    assert int(first.sample_stats["tree_depth"].max()) > 0
-    settings = bayes.check_sampler_settings({**case.sampler, "warmup_tree_depth": 10},
-                                            draws=300, tune=300, chains=2, seed=7, cores=1)
+    the same posterior (means within 4 Monte Carlo standard errors of the difference).
+    The speed figure is in benchmarks/bench_model.py (--warmup-tree-depth); the setting
+    is checked."""
+    settings = _other_draws_same_posterior(synthetic_run, {"warmup_tree_depth": 10})
     assert settings.warmup_tree_depth == 10 and bayes.SamplerSettings().warmup_tree_depth == 5
-    deep = bayes.sample(p, settings, priors=bayes.check_priors(p, case.priors),
-                        posterior_predictive=False, log_likelihood=False).idata
-    for name in ("T0", "slope", "tau"):
-        a, b = deep.posterior[name], first.posterior[name]
-        assert not np.array_equal(a.values, b.values)
-        se = np.hypot(float(az.mcse(deep, var_names=[name])[name]),
-                      float(az.mcse(first, var_names=[name])[name]))
-        assert abs(float(a.mean()) - float(b.mean())) < 4 * se
     for bad in (0, 11, 2.5, True):
         with pytest.raises(InputError, match="whole number in") as err:
             bayes.check_sampler_settings({"warmup_tree_depth": bad}, file="case.toml")

@@ -325,7 +325,9 @@ def test_mars_equilibration_pressure_siebert2012(mars):
     """The other Ni and Co rows of the table, Siebert et al. (2012, EPSL 321, 189; read in
     the typed copy of Rubie et al. 2015, Table S1), fitted with mole fractions and so
     evaluated ideal as fitted: Ni and Co of the Wanke & Dreibus mantle land at 5.9 GPa
-    each on the liquidus, below the published range as well (docs/partitioning.md)."""
+    each on the liquidus, below the published range as well (docs/partitioning.md).
+    5.9 is this code's value measured 2026-12-03 (a guard on the evaluation, not a
+    published number); the published range is MARS_PRESSURE_GPA's."""
     els, _, _ = mars
     chem = pt.compile_chemistry(els, choice={"Ni": "siebert2012", "Co": "siebert2012"})
     P = _mars_ni_co_pressures(mars, chem)
@@ -440,8 +442,13 @@ def test_accretion_conserves_mass_and_follows_its_path(earth):
 
 @pytest.fixture(scope="module")
 def jnp():
-    jax = pytest.importorskip("jax")
-    jax.config.update("jax_enable_x64", True)
+    # JAX started the project's way (double precision, one CPU device per chain): a
+    # JAX started here with its defaults leaves later tests of this process one device,
+    # and NumPyro's chains then run one after the other with other draws
+    pytest.importorskip("jax")
+    from inversion.jaxmodel import jax_setup
+
+    jax_setup()
     import jax.numpy as jnp
     return jnp
 

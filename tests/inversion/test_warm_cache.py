@@ -176,6 +176,41 @@ print("RESULT " + json.dumps({{"cached": r.timing["log_density_cached"],
     np.testing.assert_array_equal(warm_draws["lp"], cold.idata.sample_stats["lp"].values)
 
 
+def test_chain_method_recorded_is_the_one_that_ran(small, cache, tmp_path):
+    """A process that started JAX itself (one CPU device) before planetmix: parallel
+    chains cannot run, the chains run one after the other, and the result's settings say
+    "sequential" (the draws of the two methods differ in the last digits, so the record
+    must name the method that made them); this process (jax_setup's devices) keeps
+    "parallel"."""
+    p, priors, case = small
+    code = f"""
+import json, sys
+import jax
+jax.config.update("jax_enable_x64", True)
+jax.numpy.zeros(1).block_until_ready()  # JAX started with its defaults: one CPU device
+from inversion import bayes
+from inversion.case import load_case
+from inversion.model import compile_problem
+p = compile_problem(load_case({str(case)!r}))
+r = bayes.sample(p, bayes.SamplerSettings(draws=5, tune=5, chains=2, seed=3),
+                 posterior_predictive=False, log_likelihood=False)
+print("RESULT " + json.dumps({{"devices": jax.local_device_count(),
+                              "method": r.settings.chain_method}}))
+"""
+    # without the parent's XLA_FLAGS (importing pymc.sampling.jax adds a forced device
+    # count to them), so that the child's JAX starts with its own default
+    env = {k: v for k, v in os.environ.items() if k != "XLA_FLAGS"}
+    env["PLANETMIX_EXPORT_CACHE"] = str(cache)
+    r = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                       env=env, cwd=REPO, timeout=600)
+    line = [x for x in r.stdout.splitlines() if x.startswith("RESULT ")]
+    assert line, r.stderr[-3000:]
+    assert json.loads(line[0][7:]) == {"devices": 1, "method": "sequential"}
+    here = bayes.sample(p, replace(SETTINGS, draws=5, tune=5), priors=priors,
+                        posterior_predictive=False, log_likelihood=False)
+    assert here.settings.chain_method == "parallel"
+
+
 def test_damaged_or_stale_entries_are_rebuilt_never_used(small, tmp_path):
     """A truncated function file, an entry recorded under another key and an unreadable
     record are each ignored and written again; the rebuilt entry then loads."""
