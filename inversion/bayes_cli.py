@@ -195,7 +195,9 @@ def _sample(parser: argparse.ArgumentParser):
         t = result.timing
         print(f"{case.title}: {'+'.join(p.components)}, {settings.chains} chains x "
               f"{settings.draws} draws (seed {settings.seed}; {settings.engine}: compile "
-              f"{t['compile_seconds']:.1f} s, sampling {t['sampling_seconds']:.1f} s)")
+              f"{t['compile_seconds']:.1f} s, sampling {t['sampling_seconds']:.1f} s"
+              + (f" of which {t['sampler_program_seconds']:.1f} s preparing the sampler's "
+                 "program" if "sampler_program_seconds" in t else "") + ")")
         print("  weights (" + p.reference + " basis, median [5%, 95%]): " + "; ".join(
             f"{k} {_fmt(v, spec='.3f')}" for k, v in post["weights"].items()))
         from .cli import _unit

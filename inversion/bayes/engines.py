@@ -327,8 +327,10 @@ def _sample_exported(p: Problem, priors: dict[str, dict[str, Any]], fit: Any,
                                    dense_mass=settings.mass_matrix == "dense",
                                    progress=progress,
                                    warmup_tree_depth=settings.warmup_tree_depth)
+    prog = float(idata.posterior.attrs["sampler_program_seconds"])
     extra = {"log_density_cached": float(em.origin == "loaded"),
-             "log_density_seconds": em.seconds}
+             "log_density_seconds": em.seconds, "sampler_program_seconds": prog,
+             "chains_seconds": t_nuts - prog}
     return idata, inits, t_compile, t_nuts, em.parameter_names, extra
 
 

@@ -379,13 +379,56 @@ def _stats(mcmc: Any) -> dict[str, np.ndarray]:
     return data
 
 
+#: JAX's recorded spans of tracing, lowering and compiling (a compile served by the
+#: persistent cache included), whose union :class:`_ProgramClock` measures.
+_PROGRAM_EVENTS = ("/jax/core/compile/jaxpr_trace_duration",
+                   "/jax/core/compile/jaxpr_to_mlir_module_duration",
+                   "/jax/core/compile/backend_compile_duration")
+_SPANS: list[list[tuple[float, float]]] = []
+
+
+def _on_span(event: str, start: float, end: float, **_: Any) -> None:
+    if _SPANS and event in _PROGRAM_EVENTS:
+        _SPANS[-1].append((start, end))
+
+
+class _ProgramClock:
+    """Wall seconds JAX spends preparing programs inside a ``with`` block: the union of
+    its trace, lowering and compile (or cache load) time spans (nested spans, such as an
+    inner function traced inside an outer one, counted once)."""
+
+    _registered = False
+
+    def __enter__(self) -> _ProgramClock:
+        import jax
+
+        if not _ProgramClock._registered:
+            jax.monitoring.register_event_time_span_listener(_on_span)
+            _ProgramClock._registered = True
+        _SPANS.append([])
+        self.seconds = 0.0
+        return self
+
+    def __exit__(self, *exc: Any) -> None:
+        spans = sorted(_SPANS.pop())
+        total, end = 0.0, -np.inf
+        for a, b in spans:
+            if b > end:
+                total += b - max(a, end)
+                end = b
+        self.seconds = total
+
+
 def sample_numpyro(em: ExportedModel, x0: np.ndarray, *, draws: int,
                    tune: int, chains: int, seed: int, target_accept: float,
                    chain_method: str, dense_mass: bool, progress: bool = False,
                    warmup_tree_depth: int = 10) -> tuple[Any, float]:
     """NUTS by NumPyro on the exported log density; returns the InferenceData and the
     sampling seconds (NumPyro's tracing, the compile or cache load of its program, the
-    draws, and the map back to the constrained space).
+    draws, and the map back to the constrained space). Of these, the seconds JAX spent
+    preparing programs (tracing, lowering, compiling or loading from the persistent
+    cache) are the posterior attribute ``sampler_program_seconds``
+    (:class:`_ProgramClock`); the rest ran the chains and the map.
 
     ``x0``: (chains, n) start points in the unconstrained space
     (:meth:`ExportedModel.to_unconstrained` of the start values). ``warmup_tree_depth``:
@@ -408,18 +451,22 @@ def sample_numpyro(em: ExportedModel, x0: np.ndarray, *, draws: int,
     key = jax.random.PRNGKey(seed)
     if chains > 1:
         key = jax.random.split(key, chains)
-    mcmc.run(key, init_params=jnp.asarray(x0 if chains > 1 else x0[0]),
-             extra_fields=("num_steps", "potential_energy", "energy",
-                           "adapt_state.step_size", "accept_prob", "diverging"))
-    raw = np.asarray(mcmc.get_samples(group_by_chain=True)).reshape(chains, draws, -1)
-    stats = _stats(mcmc)
-    flat = jnp.asarray(raw.reshape(chains * draws, -1))
-    outs = jax.jit(lambda X: jax.lax.map(em.constrain.call, X))(flat)
-    post = {name: np.asarray(o).reshape(chains, draws, *o.shape[1:])
-            for name, o in zip(em.outputs, outs, strict=True)}
+    with _ProgramClock() as clock:
+        mcmc.run(key, init_params=jnp.asarray(x0 if chains > 1 else x0[0]),
+                 extra_fields=("num_steps", "potential_energy", "energy",
+                               "adapt_state.step_size", "accept_prob", "diverging"))
+        raw = np.asarray(mcmc.get_samples(group_by_chain=True)).reshape(chains, draws, -1)
+        stats = _stats(mcmc)
+        flat = jnp.asarray(raw.reshape(chains * draws, -1))
+        outs = jax.jit(lambda X: jax.lax.map(em.constrain.call, X))(flat)
+        post = {name: np.asarray(o).reshape(chains, draws, *o.shape[1:])
+                for name, o in zip(em.outputs, outs, strict=True)}
     seconds = time.perf_counter() - t
     meta = em.meta
     attrs = {"sampling_time": seconds, "tuning_steps": tune,
+             # of the sampling time: NumPyro's program traced, lowered and compiled (or
+             # loaded from JAX's persistent cache); the rest runs the chains
+             "sampler_program_seconds": clock.seconds,
              "inference_library": "numpyro",
              "inference_library_version": numpyro.__version__,
              "exported_log_density": em.key}

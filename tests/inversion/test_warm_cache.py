@@ -278,3 +278,44 @@ def test_key_follows_the_data_and_the_priors(small):
     }
     assert k not in keys.values()
     assert len(set(keys.values())) == len(keys)
+
+
+def test_program_clock_counts_nested_spans_once(monkeypatch):
+    """The union of JAX's trace/lower/compile spans, checked against a hand computation:
+    spans [0, 2] and [1, 3] (an inner trace inside an outer one, overlapping) and [5, 6]
+    cover 3 + 1 = 4 s; an event of another kind ([10, 20], a dispatch) is not counted."""
+    events = warm._PROGRAM_EVENTS
+    with warm._ProgramClock() as clock:
+        warm._on_span(events[0], 0.0, 2.0)
+        warm._on_span(events[1], 1.0, 3.0)
+        warm._on_span(events[2], 5.0, 6.0)
+        warm._on_span("/jax/core/pjit/dispatch", 10.0, 20.0)
+        warm._on_span(events[0], 5.5, 5.8)  # nested inside [5, 6]
+    assert clock.seconds == pytest.approx(4.0, abs=1e-12)
+
+
+def test_sampler_program_time_is_a_part_of_the_sampling_time(cold):
+    """The cold run compiles NumPyro's program: the seconds JAX spent preparing it are
+    positive, at most the sampling time, and the chains' seconds are the rest; an
+    independent clock of the same kind (jax.jit(...).lower().compile() of a fresh
+    function timed by perf_counter) is counted by the clock to within its own time."""
+    import time
+
+    import jax
+    import jax.numpy as jnp
+
+    t = cold.timing
+    assert 0.0 < t["sampler_program_seconds"] <= t["sampling_seconds"]
+    assert t["chains_seconds"] == pytest.approx(
+        t["sampling_seconds"] - t["sampler_program_seconds"], rel=1e-12)
+    salt = float(np.random.default_rng().integers(1, 10**9))  # not in any cache
+
+    def fresh(x):
+        return jnp.sin(x * salt).sum() + jnp.cumsum(x).max()
+
+    with warm._ProgramClock() as clock:
+        t0 = time.perf_counter()
+        jax.jit(fresh).lower(jnp.ones(7)).compile()
+        wall = time.perf_counter() - t0
+    # most of a fresh function's lower-and-compile is the preparation the clock counts
+    assert 0.5 * wall <= clock.seconds <= wall * 1.001 + 1e-4
