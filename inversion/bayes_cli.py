@@ -194,10 +194,12 @@ def _sample(parser: argparse.ArgumentParser):
         post = data["posterior"]
         t = result.timing
         print(f"{case.title}: {'+'.join(p.components)}, {settings.chains} chains x "
-              f"{settings.draws} draws (seed {settings.seed}; {settings.engine}: compile "
-              f"{t['compile_seconds']:.1f} s, sampling {t['sampling_seconds']:.1f} s"
-              + (f" of which {t['sampler_program_seconds']:.1f} s preparing the sampler's "
-                 "program" if "sampler_program_seconds" in t else "") + ")")
+              f"{settings.draws} draws (seed {settings.seed}, {settings.engine})")
+        print(f"  time: compile {t['compile_seconds']:.1f} s, sampling "
+              f"{t['sampling_seconds']:.1f} s" + (
+                  f" ({t['sampler_program_seconds']:.1f} s preparing the sampler's program, "
+                  f"{t['chains_seconds']:.1f} s the chains)"
+                  if "sampler_program_seconds" in t else ""))
         print("  weights (" + p.reference + " basis, median [5%, 95%]): " + "; ".join(
             f"{k} {_fmt(v, spec='.3f')}" for k, v in post["weights"].items()))
         from .cli import _unit
@@ -214,16 +216,18 @@ def _sample(parser: argparse.ArgumentParser):
         if data["log_marginal_likelihood"] is not None:
             print(f"  log marginal likelihood (SMC): {data['log_marginal_likelihood']:.2f}")
         d = data["diagnostics"]
-        print(f"  diagnostics: R-hat max {d['rhat_max']:.4f} (<= {d['thresholds']['rhat_max']}),"
-              f" bulk ESS min {d['ess_bulk_min']:.0f} (>= "
-              f"{d['thresholds']['ess_bulk_min']:.0f}), divergences {d['divergences']} "
-              "[Vehtari et al. 2021]")
+        print(f"  diagnostics [Vehtari et al. 2021]: R-hat max {d['rhat_max']:.4f} (<= "
+              f"{d['thresholds']['rhat_max']}),")
+        print(f"    bulk ESS min {d['ess_bulk_min']:.0f} (>= "
+              f"{d['thresholds']['ess_bulk_min']:.0f}), divergences {d['divergences']}")
         for row in data.get("off_trend", [])[:8]:
             print(f"  off trend: {row['element']} ({row['class']}) lies "
                   f"{abs(row['residual_dex']):.2f} dex {row['direction']} (z = "
                   f"{row['z']:+.1f}; posterior-predictive p = {row['tail_probability']:.2g})")
-        print(f"  written to {args.out}/posterior.nc, summary.csv, planet_draws.parquet, "
-              "outliers.csv, diagnostics.json, sample.json, planet.json (hand-off)")
+        print(f"  written to {args.out}/:")
+        print("    posterior.nc, summary.csv, planet_draws.parquet, outliers.csv, "
+              "diagnostics.json,")
+        print("    sample.json, planet.json (hand-off)")
         if "class_test" in extra:
             print(f"  class test (Bayesian): {extra['class_test']['statement']}")
         cc = extra.get("core_conditions", {})

@@ -8,6 +8,8 @@ being *reported* consistently, not for passing at these sizes. Larger calibratio
 
 from __future__ import annotations
 
+import contextlib
+import io
 import json
 from dataclasses import replace
 from pathlib import Path
@@ -90,9 +92,11 @@ def synthetic_run(tmp_path_factory):
     folder = tmp_path_factory.mktemp("bayes")
     case, truth, cmf = synthetic_body(folder)
     out = folder / "out_true"
-    code = main(["sample", str(case), "--out", str(out), *SETTINGS])
+    printed = io.StringIO()
+    with contextlib.redirect_stdout(printed):
+        code = main(["sample", str(case), "--out", str(out), *SETTINGS])
     return {"folder": folder, "case": case, "truth": truth, "cmf": cmf, "out": out,
-            "code": code}
+            "code": code, "printed": printed.getvalue()}
 
 
 # The model itself (the single implementation in inversion/kernel.py, its JAX form and
@@ -123,6 +127,23 @@ def test_priors_override_and_reject(tmp_path):
 
 
 # --------------------------------------------------------------------------- runs
+def test_sample_prints_its_seconds_within_100_columns(synthetic_run):
+    """The printed summary fits a 100-column terminal (the output folder's own path
+    apart), and its time line gives the
+    seconds that sample.json records (rounded as printed): the sampling of the default
+    engine split into the preparation of NumPyro's program and the chains."""
+    printed = synthetic_run["printed"]
+    folder = str(synthetic_run["out"])  # the user's own path, as long as they chose it
+    assert printed and max(len(line.replace(folder, "")) for line in printed.splitlines()
+                           ) <= 100, printed
+    t = json.loads((synthetic_run["out"] / "sample.json").read_text())["timing_seconds"]
+    line = next(x for x in printed.splitlines() if x.startswith("  time: "))
+    assert line == (f"  time: compile {t['compile_seconds']:.1f} s, sampling "
+                    f"{t['sampling_seconds']:.1f} s ({t['sampler_program_seconds']:.1f} s "
+                    f"preparing the sampler's program, {t['chains_seconds']:.1f} s the "
+                    "chains)")
+
+
 def test_sample_writes_every_file_and_the_gate(synthetic_run):
     out = synthetic_run["out"]
     for name in ("posterior.nc", "summary.csv", "planet_draws.parquet", "outliers.csv",
