@@ -291,8 +291,11 @@ def test_mars_core_is_sulfur_rich_and_its_mass_seismic(mars):
 
 MARS_CASE = (Path(__file__).resolve().parents[2] / "case_studies" / "mars"
              / "case_core.toml")
-#: Published single-stage Mars: ~14 +- 3 GPa (Righter & Chabot 2011, MAPS 46, 157; Rai &
-#: van Westrenen 2013, JGR Planets 118, 1195; both from memory); 10-20 GPa in issue 15.
+#: Published single-stage Mars: 14 +- 3 GPa (Yang et al. 2015, Meteoritics & Planet. Sci.,
+#: doi:10.1111/maps.12384, abstract read at http://karmaka.de/?p=2970: "core formation at
+#: intermediate pressures (14 +- 3 GPa) in a magma ocean on Mars"; also Righter & Chabot
+#: 2011, MAPS 46, 157 and Rai & van Westrenen 2013, JGR Planets 118, 1195, from memory);
+#: the 10-20 GPa used here contains it.
 MARS_PRESSURE_GPA = (10.0, 20.0)
 
 
