@@ -129,9 +129,9 @@ def test_priors_override_and_reject(tmp_path):
 # --------------------------------------------------------------------------- runs
 def test_sample_prints_its_seconds_within_100_columns(synthetic_run):
     """The printed summary fits a 100-column terminal (the output folder's own path
-    apart), and its time line gives the
-    seconds that sample.json records (rounded as printed): the sampling of the default
-    engine split into the preparation of NumPyro's program and the chains."""
+    apart), and its time line gives the seconds that sample.json records (rounded as
+    printed): the default engine's sampling split into the preparation of NumPyro's
+    program and the chains."""
     printed = synthetic_run["printed"]
     folder = str(synthetic_run["out"])  # the user's own path, as long as they chose it
     assert printed and max(len(line.replace(folder, "")) for line in printed.splitlines()

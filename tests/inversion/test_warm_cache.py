@@ -280,7 +280,7 @@ def test_key_follows_the_data_and_the_priors(small):
     assert len(set(keys.values())) == len(keys)
 
 
-def test_program_clock_counts_nested_spans_once(monkeypatch):
+def test_program_clock_counts_nested_spans_once():
     """The union of JAX's trace/lower/compile spans, checked against a hand computation:
     spans [0, 2] and [1, 3] (an inner trace inside an outer one, overlapping) and [5, 6]
     cover 3 + 1 = 4 s; an event of another kind ([10, 20], a dispatch) is not counted."""
@@ -296,9 +296,10 @@ def test_program_clock_counts_nested_spans_once(monkeypatch):
 
 def test_sampler_program_time_is_a_part_of_the_sampling_time(cold):
     """The cold run compiles NumPyro's program: the seconds JAX spent preparing it are
-    positive, at most the sampling time, and the chains' seconds are the rest; an
-    independent clock of the same kind (jax.jit(...).lower().compile() of a fresh
-    function timed by perf_counter) is counted by the clock to within its own time."""
+    positive, at most the sampling time, and the chains' seconds are the rest; against
+    an independent clock (perf_counter around ``jax.jit(...).lower().compile()`` of a
+    function traced anew, compiled or loaded from the cache: both are preparation) the
+    clock counts most of that time and never more."""
     import time
 
     import jax
@@ -308,10 +309,8 @@ def test_sampler_program_time_is_a_part_of_the_sampling_time(cold):
     assert 0.0 < t["sampler_program_seconds"] <= t["sampling_seconds"]
     assert t["chains_seconds"] == pytest.approx(
         t["sampling_seconds"] - t["sampler_program_seconds"], rel=1e-12)
-    salt = float(np.random.default_rng().integers(1, 10**9))  # not in any cache
-
     def fresh(x):
-        return jnp.sin(x * salt).sum() + jnp.cumsum(x).max()
+        return jnp.sin(x).sum() + jnp.cumsum(x).max()
 
     with warm._ProgramClock() as clock:
         t0 = time.perf_counter()
